@@ -1,0 +1,3 @@
+from locate.cli import main
+
+main()
