@@ -45,7 +45,8 @@ _CRAMER = (
 )
 
 
-def water_vapour_mole_fraction(temperature_c, relative_humidity, pressure_kpa=REFERENCE_PRESSURE_KPA):
+def water_vapour_mole_fraction(temperature_c, relative_humidity,
+                               pressure_kpa=REFERENCE_PRESSURE_KPA):
     """Mole fraction of water vapour in moist air.
 
     Parameters
@@ -174,7 +175,8 @@ def travel_time_s(source_m, mic_m, sound_speed_mps, wind_mps=None):
     rw = np.einsum("...i,...i->...", r, w)
     a = c**2 - np.einsum("...i,...i->...", w, w)
     if np.any(a <= 0):
-        raise ValueError(f"wind speed must be below the sound speed, got |w|^2 - c^2 = {-np.min(a)!r}")
+        raise ValueError("wind speed must be below the sound speed, "
+                         f"got |w|^2 - c^2 = {-np.min(a)!r}")
     # Numerically stable form of the positive root: |r|^2 / (rw + sqrt(rw^2 + a |r|^2)).
     disc = np.sqrt(rw**2 + a * dist2)
     with np.errstate(invalid="ignore", divide="ignore"):

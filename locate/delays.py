@@ -1,0 +1,494 @@
+"""Time differences of arrival between microphones, with their uncertainty.
+
+Method, per analysed span (all pairs at once, one forward FFT per channel):
+
+1. **Coarse lag** - GCC-PHAT (Knapp & Carter 1976, IEEE Trans. ASSP 24(4) 320-327): the
+   cross-spectrum of every pair is whitened to unit magnitude over the analysis band and
+   transformed back; the highest peak inside the pair's geometric search window
+   (``|delay| <= distance / c + margin``) is the coarse lag.  The peak height, its height over
+   the correlation floor and the next-highest separate peak give the quality flag.
+2. **Fine delay** - the delay that maximises the continuous maximum-likelihood-weighted
+   cross-correlation  sum_k  W_k |G_k| cos(phi_k + omega_k tau)  (Newton steps on the exact
+   cosine sum, so there is no interpolation bias), with the Hannan-Thomson weight
+   W = gamma^2 / (|G| (1 - gamma^2)) from the magnitude-squared coherence gamma^2 (Carter 1987,
+   Proc. IEEE 75(2) 236-255).  The coherence is estimated by smoothing the cross- and
+   auto-spectra over frequency after the coarse lag is removed, and bias-corrected for its
+   number of degrees of freedom.
+3. **Uncertainty** - the variance of each pair's delay follows Carter's bound
+   var = [2 T  integral (2 pi f)^2 gamma^2 / (1 - gamma^2) df]^-1, and the covariance between
+   pairs that share a microphone follows from the same linearised phase-error model, with the
+   per-microphone noise-to-signal ratio of every frequency recovered from the pairwise
+   coherences (log|G_ij| = (log S_i + log S_j)/2, least squares over pairs).
+
+Sign convention: ``delay_s`` of pair (i, j) is ``t_j - t_i``: positive when the sound reaches
+mic j later than mic i.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import fft as sfft
+
+__all__ = [
+    "DelaySet",
+    "all_pairs",
+    "geometric_max_lag_s",
+    "gcc_phat",
+    "estimate_delays",
+    "WEAK_PEAK_SCORE",
+    "AMBIGUOUS_RATIO",
+]
+
+WEAK_PEAK_SCORE = 6.0
+"""A GCC-PHAT peak less than this many floor standard deviations above the floor is 'weak'."""
+
+AMBIGUOUS_RATIO = 0.7
+"""A separate correlation peak at least this fraction of the highest makes a pair 'ambiguous'."""
+
+_COHERENCE_DOF = 32.0  # degrees of freedom of the frequency-smoothed coherence estimate
+_MIN_BAND_COHERENCE = 0.05  # bias-corrected coherence below which a bin carries no signal
+
+
+@dataclass
+class DelaySet:
+    """Delays for every analysed microphone pair of one span.
+
+    Attributes
+    ----------
+    pairs : ndarray, shape (P, 2)
+        Mic indices (i, j), i < j.
+    delay_s : ndarray, shape (P,)
+        t_j - t_i, seconds.
+    sd_s : ndarray, shape (P,)
+        Standard deviation of each delay, seconds.
+    covariance_s2 : ndarray, shape (P, P)
+        Covariance of the delays (pairs sharing a mic are correlated).
+    peak : ndarray, shape (P,)
+        GCC-PHAT peak height (1 for a perfectly coherent pair).
+    score : ndarray, shape (P,)
+        Peak height above the correlation floor, in floor standard deviations.
+    second_ratio : ndarray, shape (P,)
+        Height of the next separate peak relative to the highest.
+    quality : tuple of str
+        'good', 'weak' or 'ambiguous' per pair.
+    t_s, duration_s : float
+        Start and length of the analysed span, seconds into the recording.
+    band_hz : tuple of float
+        Band that carried the signal (lo, hi), Hz.
+    sample_rate_hz : float
+    max_lag_s : ndarray, shape (P,)
+        Half-width of each pair's search window.
+    curves : list of dict or None
+        Per pair ``{"lags_s", "correlation"}`` inside the search window (when asked for).
+    warnings : list of str
+    """
+
+    pairs: np.ndarray
+    delay_s: np.ndarray
+    sd_s: np.ndarray
+    covariance_s2: np.ndarray
+    peak: np.ndarray
+    score: np.ndarray
+    second_ratio: np.ndarray
+    quality: tuple
+    t_s: float
+    duration_s: float
+    band_hz: tuple
+    sample_rate_hz: float
+    max_lag_s: np.ndarray
+    curves: list | None = None
+    warnings: list = field(default_factory=list)
+
+    @property
+    def n_mics(self) -> int:
+        return int(self.pairs.max()) + 1 if len(self.pairs) else 0
+
+    def subset(self, keep) -> DelaySet:
+        """The same set restricted to the pairs where ``keep`` (bool, shape (P,)) is true."""
+        keep = np.asarray(keep, dtype=bool)
+        idx = np.flatnonzero(keep)
+        return DelaySet(
+            pairs=self.pairs[idx], delay_s=self.delay_s[idx], sd_s=self.sd_s[idx],
+            covariance_s2=self.covariance_s2[np.ix_(idx, idx)], peak=self.peak[idx],
+            score=self.score[idx], second_ratio=self.second_ratio[idx],
+            quality=tuple(self.quality[k] for k in idx), t_s=self.t_s,
+            duration_s=self.duration_s, band_hz=self.band_hz,
+            sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s[idx],
+            curves=None if self.curves is None else [self.curves[k] for k in idx],
+            warnings=list(self.warnings),
+        )
+
+    def to_dicts(self, mic_names) -> list[dict]:
+        """Per-pair dictionaries for the result JSON (``"delays"`` entries)."""
+        out = []
+        for k, (i, j) in enumerate(self.pairs):
+            out.append({
+                "mics": [mic_names[i], mic_names[j]],
+                "delay_s": float(self.delay_s[k]),
+                "sd_s": float(self.sd_s[k]),
+                "peak": float(self.peak[k]),
+                "quality": self.quality[k],
+                "search_s": [-float(self.max_lag_s[k]), float(self.max_lag_s[k])],
+            })
+        return out
+
+
+def all_pairs(n_mics: int) -> np.ndarray:
+    """All pairs (i, j) with i < j, shape (n(n-1)/2, 2), in row order."""
+    i, j = np.triu_indices(int(n_mics), k=1)
+    return np.stack([i, j], axis=1)
+
+
+def geometric_max_lag_s(mic_positions_m, pairs, sound_speed_mps, *, wind_speed_mps=0.0,
+                        margin_s=5e-4):
+    """Largest physically possible |delay| of each pair: distance / (c - |w|) + margin.
+
+    Parameters
+    ----------
+    mic_positions_m : array_like, shape (N, 3)
+    pairs : array_like, shape (P, 2)
+    sound_speed_mps : float
+    wind_speed_mps : float
+        Wind speed; sound can cover a baseline no faster than c + |w| and the bound is taken
+        against c - |w| to stay conservative.
+    margin_s : float or array_like (P,)
+        Extra half-width for clock and temperature uncertainty.
+
+    Returns
+    -------
+    ndarray, shape (P,)
+    """
+    pos = np.asarray(mic_positions_m, dtype=float)
+    pairs = np.asarray(pairs, dtype=int)
+    dist = np.linalg.norm(pos[pairs[:, 1]] - pos[pairs[:, 0]], axis=-1)
+    c_slow = float(sound_speed_mps) - abs(float(wind_speed_mps))
+    return dist / c_slow * 1.02 + np.asarray(margin_s, dtype=float)
+
+
+def _band_mask(freqs_hz, band_hz, sample_rate_hz):
+    lo, hi = (20.0, 0.45 * sample_rate_hz) if band_hz is None else band_hz
+    return (freqs_hz >= lo) & (freqs_hz <= hi)
+
+
+def gcc_phat(x, y, sample_rate_hz, *, max_lag_s=None, band_hz=None):
+    """GCC-PHAT cross-correlation of two signals (Knapp & Carter 1976).
+
+    Parameters
+    ----------
+    x, y : array_like, shape (T,)
+        The two signals (mic i, mic j).
+    sample_rate_hz : float
+    max_lag_s : float, optional
+        Return only lags with |lag| <= max_lag_s.
+    band_hz : (float, float), optional
+        Frequency band over which the whitened cross-spectrum is kept.
+
+    Returns
+    -------
+    lags_s : ndarray, shape (L,)
+    correlation : ndarray, shape (L,)
+        Normalised so that two identical, delayed signals give a peak of 1.
+
+    Notes
+    -----
+    The peak lies at ``t_y - t_x``: positive when the sound reaches ``y`` later than ``x``
+    (the same lag as the peak of ``scipy.signal.correlate(y, x)`` with
+    ``scipy.signal.correlation_lags(len(y), len(x))``).
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    fs = float(sample_rate_hz)
+    nfft = sfft.next_fast_len(x.size + y.size - 1, real=True)
+    freqs = sfft.rfftfreq(nfft, 1.0 / fs)
+    mask = _band_mask(freqs, band_hz, fs)
+    g = np.conj(sfft.rfft(x, nfft)) * sfft.rfft(y, nfft)
+    g = np.where(mask, g / np.maximum(np.abs(g), 1e-300), 0.0)
+    r = sfft.irfft(g, nfft) / max(sfft.irfft(mask.astype(float), nfft)[0], 1e-300)
+    lags = np.arange(-(x.size - 1), y.size)
+    if max_lag_s is not None:
+        lim = int(np.floor(max_lag_s * fs))
+        lags = lags[np.abs(lags) <= lim]
+    return lags / fs, r[lags % nfft]
+
+
+def _coherent_band(freqs, coherence, mask):
+    """Contiguous band holding the coherent signal: 0.5 %..99.5 % of the coherent weight.
+
+    ``coherence`` is the (bias-corrected) median coherence over pairs, shape (K,).  Scattered
+    noise bins carry a negligible share of the weight gamma^2 / (1 - gamma^2), so the band
+    does not stretch to reach them.
+    """
+    wts = np.where(mask, coherence / (1.0 - coherence), 0.0)
+    wts = np.where(coherence > 2 * _MIN_BAND_COHERENCE, wts, 0.0)
+    total = wts.sum()
+    if total <= 0 or np.count_nonzero(wts) < 8:
+        return None
+    cum = np.cumsum(wts) / total
+    lo = freqs[np.searchsorted(cum, 0.005)]
+    hi = freqs[min(np.searchsorted(cum, 0.995), len(freqs) - 1)]
+    # widen by 5 % each side so the band edges keep their (small) coherent contribution
+    return mask & (freqs >= lo / 1.05) & (freqs <= hi * 1.05)
+
+
+def _smooth(a, width, axis=-1):
+    """Moving average of ``width`` bins along ``axis`` (edges use the available bins)."""
+    width = max(int(width), 1)
+    if width == 1:
+        return a
+    a = np.moveaxis(a, axis, -1)
+    pad = width // 2
+    cs = np.cumsum(np.pad(a, [(0, 0)] * (a.ndim - 1) + [(pad + 1, pad)]), axis=-1)
+    num = cs[..., width:] - cs[..., :-width]
+    ones = np.cumsum(np.pad(np.ones(a.shape[-1]), (pad + 1, pad)))
+    den = ones[width:] - ones[:-width]
+    return np.moveaxis(num[..., : a.shape[-1]] / den[: a.shape[-1]], -1, axis)
+
+
+def _coarse_peaks(r, max_lag_samp, fs, band_hz):
+    """Integer + parabolic peak of each row of r (circular lags), with quality measures."""
+    n_pairs, nfft = r.shape
+    big = int(max_lag_samp.max())
+    lags = np.arange(-big, big + 1)
+    seg = r[:, lags % nfft]  # (P, 2L+1)
+    inside = np.abs(lags)[None, :] <= max_lag_samp[:, None]
+    masked = np.where(inside, seg, -np.inf)
+    k = np.argmax(masked, axis=1)
+    rows = np.arange(n_pairs)
+    peak = seg[rows, k]
+    km = np.clip(k - 1, 0, seg.shape[1] - 1)
+    kp = np.clip(k + 1, 0, seg.shape[1] - 1)
+    y0, y1, y2 = seg[rows, km], peak, seg[rows, kp]
+    den = y0 - 2 * y1 + y2
+    frac = np.where(den < 0, 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
+    frac = np.clip(frac, -0.5, 0.5)
+    lag0_s = (lags[k] + frac) / fs
+    # main-lobe exclusion: 3/4 of a period of the band centre, at least 2 samples
+    lo, hi = band_hz
+    lobe = max(2.0, 0.75 * fs / max(0.5 * (lo + hi), 1.0))
+    away = np.abs(lags[None, :] - lags[k][:, None]) > lobe
+    floor_vals = np.where(inside & away, seg, np.nan)
+    with np.errstate(invalid="ignore"):
+        med = np.nanmedian(floor_vals, axis=1)
+        mad = np.nanmedian(np.abs(floor_vals - med[:, None]), axis=1) * 1.4826
+    n_floor = np.sum(inside & away, axis=1)
+    score = np.where(n_floor > 8, (peak - med) / np.maximum(mad, 1e-12), np.inf)
+    # next separate local maximum
+    locmax = np.zeros_like(seg, dtype=bool)
+    locmax[:, 1:-1] = (seg[:, 1:-1] > seg[:, :-2]) & (seg[:, 1:-1] >= seg[:, 2:])
+    cand = np.where(locmax & inside & away, seg, -np.inf)
+    second = cand.max(axis=1)
+    second_ratio = np.where(np.isfinite(second) & (peak > 0), second / np.maximum(peak, 1e-12),
+                            0.0)
+    return lag0_s, peak, score, np.clip(second_ratio, 0.0, None), seg, lags, inside
+
+
+def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=None,
+                    offsets_s=None, t_s=0.0, keep_curves=False):
+    """Delays, uncertainties and quality for microphone pairs of one span.
+
+    Parameters
+    ----------
+    signals : array_like, shape (N, T)
+        Time-aligned recordings of N mics, time on the last axis.
+    sample_rate_hz : float
+    max_lag_s : float or array_like, shape (P,)
+        Half-width of each pair's lag search window (see :func:`geometric_max_lag_s`).
+    band_hz : (float, float), optional
+        Analysis band.  Default: found from the data - the bins where the pairs are coherent
+        (signal above the noise), within 20 Hz .. 0.45 fs.
+    pairs : array_like, shape (P, 2), optional
+        Pairs to analyse (default: all pairs i < j).
+    offsets_s : array_like, shape (N,), optional
+        Sub-sample clock corrections: the true arrival time at mic i is its time in
+        ``signals`` plus ``offsets_s[i]``; the returned delays include them.
+    t_s : float
+        Time of the first sample, seconds into the recording (kept on the result).
+    keep_curves : bool
+        Keep each pair's GCC-PHAT curve inside its search window (for diagnostics plots).
+
+    Returns
+    -------
+    DelaySet
+
+    Notes
+    -----
+    Positive delay: the sound reaches mic j later than mic i.
+    """
+    x = np.asarray(signals, dtype=float)
+    if x.ndim != 2 or x.shape[0] < 2:
+        raise ValueError(f"signals must have shape (n_mics >= 2, n_samples), got {x.shape!r}")
+    n_mics, n_samp = x.shape
+    fs = float(sample_rate_hz)
+    pairs = all_pairs(n_mics) if pairs is None else np.asarray(pairs, dtype=int).reshape(-1, 2)
+    n_pairs = len(pairs)
+    max_lag_s = np.broadcast_to(np.asarray(max_lag_s, dtype=float), (n_pairs,)).copy()
+    max_lag_samp = np.minimum(np.ceil(max_lag_s * fs).astype(int) + 1, n_samp - 1)
+    x = x - x.mean(axis=1, keepdims=True)
+    nfft = sfft.next_fast_len(n_samp + int(max_lag_samp.max()) + 1, real=True)
+    freqs = sfft.rfftfreq(nfft, 1.0 / fs)
+    omega = 2 * np.pi * freqs
+    spec = sfft.rfft(x, nfft, axis=-1)  # (N, K), one forward transform per channel
+    ii, jj = pairs[:, 0], pairs[:, 1]
+    cross = np.conj(spec[ii]) * spec[jj]  # (P, K); phase -omega*delay
+    mag = np.abs(cross)
+    unit = cross / np.maximum(mag, 1e-300)
+
+    def phat_peaks(mask):
+        norm = max(sfft.irfft(mask.astype(float), nfft)[0], 1e-300)
+        r = sfft.irfft(np.where(mask, unit, 0.0), nfft, axis=-1) / norm
+        lo_hi = (float(freqs[mask].min()), float(freqs[mask].max())) if mask.any() else (0, fs / 2)
+        return _coarse_peaks(r, max_lag_samp, fs, lo_hi), lo_hi
+
+    mask = _band_mask(freqs, band_hz, fs)
+    if not mask.any():
+        raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
+    (lag0, peak, score, second, seg, lags, inside), lo_hi = phat_peaks(mask)
+
+    # Coherence after removing the coarse lag (frequency smoothing, Daniell estimator).
+    width = int(np.ceil(_COHERENCE_DOF * nfft / n_samp))
+    dof = width * n_samp / nfft
+    rot = cross * np.exp(1j * omega[None, :] * lag0[:, None])
+    s_cross = _smooth(rot.real, width) + 1j * _smooth(rot.imag, width)
+    s_auto = _smooth(np.abs(spec) ** 2, width)  # (N, K)
+    denom = np.maximum(s_auto[ii] * s_auto[jj], 1e-300)
+    coh = np.abs(s_cross) ** 2 / denom
+    coh = np.clip((dof * coh - 1.0) / (dof - 1.0), 0.0, 0.9999)  # bias correction
+
+    if band_hz is None:
+        good = (score >= WEAK_PEAK_SCORE) & (second < AMBIGUOUS_RATIO)
+        ref = coh[good] if good.any() else coh
+        new_mask = _coherent_band(freqs, np.median(ref, axis=0), mask)
+        if new_mask is not None and new_mask.sum() < mask.sum():
+            mask = new_mask
+            (lag0_b, peak, score, second, seg, lags, inside), lo_hi = phat_peaks(mask)
+            # recompute the coherence where the coarse lag moved by more than half a sample
+            moved = np.abs(lag0_b - lag0) > 0.5 / fs
+            if moved.any():
+                rot_m = cross[moved] * np.exp(1j * omega[None, :] * lag0_b[moved, None])
+                sc = _smooth(rot_m.real, width) + 1j * _smooth(rot_m.imag, width)
+                c_m = np.abs(sc) ** 2 / denom[moved]
+                coh[moved] = np.clip((dof * c_m - 1.0) / (dof - 1.0), 0.0, 0.9999)
+                rot[moved] = rot_m
+                s_cross[moved] = sc
+            lag0 = np.where(moved, lag0_b, lag0)  # the fine step below is relative to lag0
+
+    # Keep only bins whose coherence is significant: under no signal the raw estimate with n
+    # degrees of freedom exceeds x with probability (1 - x)^(n - 1) (Carter 1987); the
+    # bias-corrected threshold below corresponds to a 1e-3 false-alarm probability per cell.
+    raw_threshold = 1.0 - 1e-3 ** (1.0 / (dof - 1.0))
+    threshold = max((dof * raw_threshold - 1.0) / (dof - 1.0), _MIN_BAND_COHERENCE)
+    coh = np.where(mask[None, :] & (coh > threshold), coh, 0.0)
+    w = coh / (1.0 - coh)  # Hannan-Thomson weight on the normalised phasor
+    # Fine delay: maximise sum c_k cos(phi_k + omega_k d) with c_k = w_k |G_k| / |G_smooth|.
+    phase = np.angle(rot)
+    c = w * mag / np.maximum(np.abs(s_cross), 1e-300)
+    d = np.zeros(n_pairs)
+    cw1 = c * omega
+    cw2 = cw1 * omega
+    for _ in range(6):
+        arg = phase + omega[None, :] * d[:, None]
+        g1 = np.sum(cw1 * np.sin(arg), axis=1)
+        g2 = np.sum(cw2 * np.cos(arg), axis=1)
+        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
+        d = np.clip(d - step, -1.5 / fs, 1.5 / fs)
+        if np.all(np.abs(step) < 1e-12):
+            break
+    delay = lag0 + d
+
+    cov = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask)
+    sd = np.sqrt(np.diag(cov))
+
+    quality = []
+    for k in range(n_pairs):
+        if second[k] >= AMBIGUOUS_RATIO:
+            quality.append("ambiguous")
+        elif score[k] < WEAK_PEAK_SCORE or not np.isfinite(sd[k]):
+            quality.append("weak")
+        else:
+            quality.append("good")
+    if offsets_s is not None:
+        off = np.asarray(offsets_s, dtype=float)
+        delay = delay + off[jj] - off[ii]
+
+    curves = None
+    if keep_curves:
+        curves = []
+        step = max(1, int(np.ceil(seg.shape[1] / 4000)))
+        for k in range(n_pairs):
+            sel = np.flatnonzero(inside[k])[::step]
+            curves.append({"lags_s": (lags[sel] / fs).tolist(),
+                           "correlation": seg[k, sel].astype(float).round(5).tolist()})
+    return DelaySet(
+        pairs=pairs, delay_s=delay, sd_s=sd, covariance_s2=cov, peak=peak, score=score,
+        second_ratio=second, quality=tuple(quality), t_s=float(t_s),
+        duration_s=n_samp / fs, band_hz=lo_hi, sample_rate_hz=fs, max_lag_s=max_lag_s,
+        curves=curves,
+    )
+
+
+def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):
+    """Covariance of the fine delays from the linearised phase-error model.
+
+    The phase error of pair (i, j) in bin k is e_i - e_j + n_ij with var(e_u) = a_u / 2 and
+    var(n_ij) = a_i a_j / 2 per independent bin, a_u the noise-to-signal ratio of mic u.
+    Bins are correlated over nfft / n_samp neighbours by the zero padding, which scales the
+    sums (independent cells are 1/T Hz wide).
+    """
+    n_pairs = len(pairs)
+    ii, jj = pairs[:, 0], pairs[:, 1]
+    scale = nfft / n_samp
+    d_norm = np.sum(w * omega**2, axis=1)  # (P,)
+    cov = np.zeros((n_pairs, n_pairs))
+    usable = d_norm > 0
+    if not usable.any():
+        return np.diag(np.full(n_pairs, np.inf))
+    # Per-mic signal spectrum from pairwise coherent cross-power (least squares in log domain).
+    bins = np.flatnonzero(mask & np.any(w > 0, axis=0))
+    log_cross = np.log(np.maximum(np.abs(s_cross[:, bins]), 1e-300))
+    design = np.zeros((n_pairs, n_mics))
+    design[np.arange(n_pairs), ii] = 0.5
+    design[np.arange(n_pairs), jj] = 0.5
+    ok = usable & (np.sum(coh[:, bins] > 0, axis=1) > 0)
+    involved = np.unique(pairs[ok])
+    if len(involved) >= 3 and np.linalg.matrix_rank(design[ok][:, involved]) == len(involved):
+        sol = np.linalg.lstsq(design[ok][:, involved], log_cross[ok], rcond=None)[0]
+        log_sig = np.full((n_mics, len(bins)), np.nan)
+        log_sig[involved] = sol
+    else:  # two mics (or a pair graph too thin): share the noise equally
+        log_sig = np.full((n_mics, len(bins)), np.nan)
+        for k in np.flatnonzero(ok):
+            log_sig[ii[k]] = log_cross[k]
+            log_sig[jj[k]] = log_cross[k]
+    with np.errstate(invalid="ignore", over="ignore"):
+        a = s_auto[:, bins] / np.exp(log_sig) - 1.0
+    # Floor the per-mic ratio at the value that reproduces each pair's own coherence if all
+    # noise were in one channel; keeps the model consistent with the measured coherence.
+    a = np.where(np.isfinite(a), np.clip(a, 1e-6, 1e6), 1e6)
+    wb = w[:, bins]
+    om = omega[bins]
+    for u in range(n_mics):
+        sel = np.flatnonzero(((ii == u) | (jj == u)) & usable)
+        if sel.size == 0:
+            continue
+        sign = np.where(ii[sel] == u, 1.0, -1.0)
+        f = wb[sel] * om[None, :] * np.sqrt(a[u] / 2.0)[None, :]
+        cov[np.ix_(sel, sel)] += np.outer(sign, sign) * (f @ f.T)
+    cross_term = np.sum(wb**2 * om[None, :] ** 2 * (a[ii] * a[jj] / 2.0), axis=1)
+    cov[np.diag_indices(n_pairs)] += cross_term
+    cov *= scale
+    dn = np.where(usable, d_norm, 1.0)
+    cov /= np.outer(dn, dn)
+    # Carter's bound for each pair on its own (exact for the HT weight): use the larger of the
+    # model and the bound on the diagonal so that a poorly resolved noise split never shrinks it.
+    carter = scale / (2.0 * np.sum(w * omega**2, axis=1).clip(1e-300))
+    diag = np.maximum(np.diag(cov), carter)
+    ratio = np.sqrt(diag / np.maximum(np.diag(cov), 1e-300))
+    cov = cov * np.outer(ratio, ratio)
+    bad = ~usable
+    if bad.any():
+        cov[bad, :] = 0.0
+        cov[:, bad] = 0.0
+        cov[bad, bad] = np.inf
+    return cov
