@@ -28,6 +28,7 @@ from __future__ import annotations
 import os
 import tempfile
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
@@ -300,22 +301,38 @@ def _read_frames(path, lo, hi, n_frames) -> np.ndarray:
     return out
 
 
-def _sinc_interpolate(x, pos) -> np.ndarray:
-    """Band-limited value of ``x`` at fractional indices ``pos`` (Kaiser-windowed sinc).
+@lru_cache(maxsize=2)
+def _sinc_table(half_taps, beta, n_phases):
+    """Kaiser-windowed sinc kernel, ``(n_phases + 1, 2 half_taps)``.
 
-    ``x`` must extend ``SINC_HALF_TAPS`` samples beyond the range of ``pos`` on both sides.
+    Row p is the kernel for a target p / n_phases of a sample past tap ``m = 0``; columns are
+    the taps ``m = -half_taps + 1 .. half_taps``.
     """
     from scipy.special import i0
 
+    m = np.arange(-half_taps + 1, half_taps + 1)
+    u = m[None, :] - np.arange(n_phases + 1)[:, None] / n_phases
+    window = i0(beta * np.sqrt(np.clip(1.0 - (u / half_taps) ** 2, 0.0, 1.0))) / i0(beta)
+    return np.sinc(u) * window
+
+
+def _sinc_interpolate(x, pos) -> np.ndarray:
+    """Band-limited value of ``x`` at fractional indices ``pos`` (Kaiser-windowed sinc).
+
+    The kernel is tabulated at 1/1024-sample phases and interpolated linearly between them.
+    ``x`` must extend ``SINC_HALF_TAPS`` samples beyond the range of ``pos`` on both sides.
+    """
+    h, n_ph = SINC_HALF_TAPS, 1024
+    table = _sinc_table(h, SINC_KAISER_BETA, n_ph)
     base = np.floor(pos).astype(np.int64)
-    frac = pos - base
+    ph = (pos - base) * n_ph
+    row = np.minimum(ph.astype(np.int64), n_ph - 1)
+    a = ph - row
     out = np.zeros(pos.shape)
-    norm = i0(SINC_KAISER_BETA)
-    h = SINC_HALF_TAPS
-    for m in range(-h + 1, h + 1):  # loop over the taps; vectorised over the samples
-        u = m - frac
-        w = np.sinc(u) * i0(SINC_KAISER_BETA * np.sqrt(np.clip(1.0 - (u / h) ** 2, 0, 1))) / norm
-        out += x[np.clip(base + m, 0, len(x) - 1)] * w
+    for j, m in enumerate(range(-h + 1, h + 1)):  # loop over taps; vectorised over samples
+        col = table[:, j]
+        w0 = col[row]
+        out += x[np.clip(base + m, 0, len(x) - 1)] * (w0 + a * (col[row + 1] - w0))
     return out
 
 

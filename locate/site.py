@@ -1,14 +1,21 @@
 """Site files: the survey description (TOML) as validated, immutable dataclasses.
 
-:func:`load_site` reads a site file (format in ``docs``/DESIGN "Site file"), checks every field
+:func:`load_site` reads a site file (format: "Site file" in the design notes), checks every field
 and returns a :class:`Site`.  Each problem raises :class:`locate.errors.SiteFileError` whose
 message is one line naming the file and the field (``mics[2].channel``: index of the
 ``[[mics]]`` table counted from 0, in file order) and saying what to do.  Doubtful but usable
 geometry (mics nearly on one line, coincident mics, ...) becomes a string in
 :attr:`Site.warnings`.
 
-Field parsing and range checks live in :mod:`locate.site_fields`; this module assembles the
-dataclasses, converts WGS84 positions to local metres (:mod:`locate.geo`) and checks geometry.
+Field getters live in :mod:`locate.site_fields`, table parsing and range checks in
+:mod:`locate.site_tables`; this module assembles the dataclasses, converts WGS84 positions
+to local metres (:mod:`locate.geo`) and checks the array geometry.
+
+Example
+-------
+>>> site = load_site("survey/site.toml")            # doctest: +SKIP
+>>> site.positions_m.shape, site.air.sound_speed_mps()  # doctest: +SKIP
+((6, 3), 335.5)
 """
 
 from __future__ import annotations
@@ -21,6 +28,7 @@ import numpy as np
 
 from locate import air as _air
 from locate import site_fields as sf
+from locate import site_tables as st
 from locate.errors import OptionError
 from locate.toml_io import dump_toml, read_toml
 
@@ -212,19 +220,19 @@ def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
     raw = read_toml(path)
     ctx = sf.Context(path)
     warnings: list[str] = []
-    sf.check_keys(ctx, raw, sf.TOP_KEYS, "")
+    sf.check_keys(ctx, raw, st.TOP_KEYS, "")
     title = sf.get_str(ctx, raw, "title", "title") or Path(path).stem
     coords = sf.get_coordinates(ctx, raw)
-    air = Air(**sf.parse_air(ctx, raw, warnings))
-    survey = sf.parse_survey(ctx, raw)
-    recording_file = sf.parse_recording(ctx, raw)
-    mic_dicts = sf.parse_mics(ctx, raw, coords, survey, recording_file, warnings,
+    air = Air(**st.parse_air(ctx, raw, warnings))
+    survey = st.parse_survey(ctx, raw)
+    recording_file = st.parse_recording(ctx, raw)
+    mic_dicts = st.parse_mics(ctx, raw, coords, survey, recording_file, warnings,
                               dims=dims, require_audio=require_audio)
 
     origin = None
     if coords == "wgs84":
         geod = np.array([[m["lat"], m["lon"], m["alt"]] for m in mic_dicts])
-        origin = sf.mean_origin(geod)
+        origin = st.mean_origin(geod)
         to_local = _wgs84_to_local(origin)
         enu = to_local(geod[:, 0], geod[:, 1], geod[:, 2])
         for m, p, g in zip(mic_dicts, enu, geod, strict=True):
@@ -240,10 +248,10 @@ def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
 
     receivers = tuple(
         Receiver(r["name"], _frozen_array(r["position_m"]), r.get("geodetic"))
-        for r in sf.parse_receivers(ctx, raw, coords, to_local))
+        for r in st.parse_receivers(ctx, raw, coords, to_local))
     barriers = tuple(Barrier(b["label"], _frozen_array(b["line_m"]), b["height_m"])
-                     for b in sf.parse_barriers(ctx, raw, coords, to_local))
-    sk = sf.parse_sketch(ctx, raw, coords, to_local, warnings)
+                     for b in st.parse_barriers(ctx, raw, coords, to_local))
+    sk = st.parse_sketch(ctx, raw, coords, to_local, warnings)
     sketch = None if sk is None else Sketch(**sk)
     return Site(path=ctx.path.resolve(), title=title, coordinates=coords, air=air,
                 recording_file=recording_file, mics=mics, receivers=receivers,
