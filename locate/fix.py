@@ -87,6 +87,7 @@ class Fix:
     converged: bool = True
     dims: int = 2
     residuals_s: np.ndarray | None = None
+    covariance_inflation: float = 1.0
 
 
 def predict_delays(source_m, mic_positions_m, pairs, sound_speed_mps, wind_mps=None):
@@ -447,21 +448,33 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
         dof = prob.n_meas - dims
         return prob, sols, x, chi2, ok, dof
 
-    prob, sols, x, chi2, ok, dof = fit(used)
+    first = fit(used)
+    prob, sols, x, chi2, ok, dof = first
     rejected = []
     if reject:
-        while dof > 0 and stats.chi2.sf(chi2, dof) < reject_p_value and used.size > need + 1:
-            trials = [(k, fit(used[used != k])) for k in used]
-            k, res = max(trials, key=lambda t: stats.chi2.sf(t[1][3], t[1][5]))
-            if stats.chi2.sf(res[3], res[5]) < reject_p_value and res[3] > 0.5 * chi2:
-                break  # excluding one mic does not restore consistency: stop, warn below
-            rejected.append(names[k])
-            used = used[used != k]
-            prob, sols, x, chi2, ok, dof = res
+        # Fault detection and exclusion: drop, one at a time, the mic whose exclusion best
+        # restores consistency; keep the exclusions only if consistency is restored in the end.
+        state, trial_used, trial_rejected = first, used, []
+        while (state[5] > 0 and stats.chi2.sf(state[3], state[5]) < reject_p_value
+               and trial_used.size > need + 1):
+            trials = [(k, fit(trial_used[trial_used != k])) for k in trial_used]
+            k, state = max(trials, key=lambda t: stats.chi2.sf(t[1][3], t[1][5]))
+            trial_used = trial_used[trial_used != k]
+            trial_rejected.append(names[k])
+        if trial_rejected and (state[5] == 0
+                               or stats.chi2.sf(state[3], state[5]) >= reject_p_value):
+            prob, sols, x, chi2, ok, dof = state
+            used, rejected = trial_used, trial_rejected
     p_value = float(stats.chi2.sf(chi2, dof)) if dof > 0 else 1.0
+    inflation = 1.0
     if dof > 0 and p_value < reject_p_value:
-        warnings.append(f"the delays do not fit one source position (chi-square p = "
-                        f"{p_value:.1e}); the ellipse understates the error")
+        # No single exclusion explains the misfit (echoes, multipath, a wrong sound speed):
+        # scale the covariance by the reduced chi-square (Birge ratio, common practice) so the
+        # ellipse reflects the scatter actually seen, and say so.
+        inflation = chi2 / dof
+        warnings.append(f"the delays do not fit one source position well (chi-square p = "
+                        f"{p_value:.1e}): the ellipse was enlarged {np.sqrt(inflation):.1f}x "
+                        "to match the misfit (echoes, wind or temperature errors?)")
     if rejected:
         warnings.append("mic(s) " + ", ".join(rejected) + " rejected: their timing disagrees "
                         "with the others (clock error, echo or wrong position)")
@@ -469,7 +482,7 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
     info = jw.T @ jw
     covp = np.zeros((3, 3))
     try:
-        covp[:dims, :dims] = np.linalg.inv(info)
+        covp[:dims, :dims] = np.linalg.inv(info) * inflation
     except np.linalg.LinAlgError:
         covp[:dims, :dims] = np.inf
         warnings.append("the geometry cannot fix the source (singular information matrix)")
@@ -491,4 +504,5 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
         dropped_pairs=dropped_pairs, residual_rms_s=float(np.sqrt(np.mean(resid**2))),
         chi2=float(chi2), dof=int(dof), p_value=p_value, mirror_position_m=mirror,
         warnings=warnings, converged=bool(ok), dims=dims, residuals_s=resid,
+        covariance_inflation=float(inflation),
     )

@@ -1,0 +1,373 @@
+"""The ``tdoa`` command line (also ``python -m locate``).
+
+Each command parses its options, calls the core, writes its outputs atomically and prints a
+short summary.  Problems with the input are one line on stderr and exit code 2 (1 when the
+input is valid but nothing usable was found); ``--debug`` shows the traceback.
+"""
+
+from __future__ import annotations
+
+import sys
+import traceback
+from pathlib import Path
+
+import click
+import numpy as np
+
+from locate import __version__
+from locate.errors import NothingFoundError, OptionError, TdoaError
+
+__all__ = ["cli", "main"]
+
+
+# ----------------------------------------------------------------------------- helpers
+
+def parse_band(value):
+    """``"LO:HI"`` in Hz -> (lo, hi); OptionError naming ``--band`` otherwise."""
+    if value is None:
+        return None
+    try:
+        lo_s, hi_s = str(value).split(":")
+        lo, hi = float(lo_s), float(hi_s)
+    except ValueError:
+        raise OptionError(f"{value!r} is not LO:HI in Hz (e.g. 100:4000)",
+                          field="--band") from None
+    if not (np.isfinite(lo) and np.isfinite(hi)) or lo < 0 or hi <= lo:
+        raise OptionError(f"{value!r}: the low edge must be >= 0 and below the high edge",
+                          field="--band")
+    return lo, hi
+
+
+def check_band(band, sample_rate_hz):
+    if band is not None and band[1] > sample_rate_hz / 2:
+        raise OptionError(f"high edge {band[1]:g} Hz is above the Nyquist frequency "
+                          f"{sample_rate_hz / 2:g} Hz of the recordings", field="--band")
+
+
+def echo(ctx, text="", **kw):
+    if not ctx.obj.get("quiet"):
+        click.echo(text, **kw)
+
+
+def warn(message):
+    click.echo(f"tdoa: warning: {message}", err=True)
+
+
+def progress_bar(ctx, length, label):
+    """A click progress bar on a terminal; a no-op object in pipes or with --quiet."""
+    show = sys.stderr.isatty() and not ctx.obj.get("quiet")
+    if show:
+        return click.progressbar(length=max(int(length), 1), label=label, file=sys.stderr)
+
+    class _Quiet:
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            return False
+
+        def update(self, n):
+            pass
+
+    return _Quiet()
+
+
+def load(site_path, dims=2, require_audio=True):
+    from locate.site import load_site
+    return load_site(site_path, dims=dims, require_audio=require_audio)
+
+
+def span_options(f):
+    f = click.option("--from", "start_s", type=float, default=None,
+                     help="Start of the span, seconds into the recording.")(f)
+    f = click.option("--to", "stop_s", type=float, default=None,
+                     help="End of the span, seconds into the recording.")(f)
+    f = click.option("--band", default=None, metavar="LO:HI",
+                     help="Analysis band in Hz (default: where the signal stands above the "
+                          "noise).")(f)
+    return f
+
+
+def geometry_options(f):
+    f = click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True,
+                     help="2: horizontal fix at a given source height; 3: full 3-D fix.")(f)
+    f = click.option("--source-z", "source_z_m", type=float, default=0.0, show_default=True,
+                     help="Source height for 2-D fixes, metres (same datum as the mics).")(f)
+    f = click.option("--sound-speed", "sound_speed_mps", type=float, default=None,
+                     help="Override the sound speed from the site's air, m/s.")(f)
+    return f
+
+
+def output_options(f):
+    f = click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None,
+                     help="Write the result JSON here.")(f)
+    f = click.option("--csv", "csv_path", type=click.Path(dir_okay=False), default=None,
+                     help="Write one CSV row per fix here.")(f)
+    f = click.option("--map", "map_path", type=click.Path(dir_okay=False), default=None,
+                     help="Draw the result over the site sketch (PNG, SVG or PDF).")(f)
+    return f
+
+
+def _check_span_args(start_s, stop_s, window_s=None):
+    if (start_s is None) != (stop_s is None):
+        raise OptionError("give both --from and --to (or neither, to detect events)",
+                          field="--from" if start_s is None else "--to")
+    if start_s is not None and (start_s < 0 or stop_s <= start_s):
+        raise OptionError(f"the span {start_s:g}..{stop_s:g} s is empty or negative: --from "
+                          "must be >= 0 and before --to", field="--from")
+    if window_s is not None and window_s <= 0:
+        raise OptionError(f"window {window_s:g} s must be positive", field="--window")
+
+
+def _site_inputs(site):
+    files = [site.path, site.recording_file] + [m.file for m in site.mics]
+    return [f for f in files if f is not None]
+
+
+# ----------------------------------------------------------------------------- the group
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="tdoa")
+@click.option("--debug", is_flag=True, help="Show a traceback on error.")
+@click.option("--quiet", "-q", is_flag=True, help="Print nothing but warnings and errors.")
+@click.pass_context
+def cli(ctx, debug, quiet):
+    """Find where a sound came from, using time differences of arrival at synchronised
+    microphones (see docs/walkthrough.md)."""
+    ctx.ensure_object(dict)
+    ctx.obj.update(debug=debug, quiet=quiet)
+
+
+@cli.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
+@click.pass_context
+def check(ctx, site_path, dims):
+    """Validate the site file and recordings; print geometry and warnings."""
+    from locate.audio import open_recordings
+    from locate.pipeline import conditions_for
+
+    site = load(site_path, dims)
+    rec = open_recordings(site)
+    cond = conditions_for(site)
+    pos = site.positions_m
+    span = np.max(np.linalg.norm(pos[:, None, :2] - pos[None, :, :2], axis=-1))
+    echo(ctx, f"Site      {site.title}  ({site.path.name}, coordinates {site.coordinates})")
+    echo(ctx, f"Air       {cond.temperature_c:g} degC, {cond.relative_humidity:g} % RH, "
+              f"sound speed {cond.sound_speed_mps:.2f} m/s; wind {cond.wind_speed_mps:g} m/s "
+              f"from {cond.wind_from_deg:g} deg")
+    echo(ctx, f"Audio     {rec.sample_rate_hz:g} Hz, {rec.duration_s:.2f} s common to all mics")
+    echo(ctx, f"Array     {len(pos)} mics, widest spacing {span:.1f} m "
+              f"(largest delay {span / cond.sound_speed_mps * 1e3:.1f} ms)")
+    for (name, path, ch), m in zip(rec.files, site.mics):
+        x, y, z = m.position_m
+        echo(ctx, f"  {name:<8} x {x:9.2f}  y {y:9.2f}  z {z:6.2f} m   {Path(path).name} "
+                  f"ch {ch}  offset {m.offset_s:+.6f} s")
+    for w in list(site.warnings) + list(rec.warnings):
+        warn(w)
+    echo(ctx, "Site file and recordings look usable.")
+
+
+@cli.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@span_options
+@geometry_options
+@output_options
+@click.option("--window", "window_s", type=float, default=None,
+              help="Fix every window of this length (s) across --from/--to (steady source).")
+@click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
+              help="Event detection: dB above the background.")
+@click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
+              help="Also draw each pair's correlation and residual (diagnostics figure).")
+@click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
+@click.pass_context
+def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
+        csv_path, map_path, window_s, threshold_db, panels_path, no_reject):
+    """Locate a stationary source: each detected event, one span (--from/--to), or
+    sliding windows (--window)."""
+    from locate.audio import open_recordings
+    from locate.pipeline import (conditions_for, fix_result, fix_span, plan_spans,
+                                 require_events, scan_events)
+    from locate.results import check_output_path, fixes_csv, write_atomic, write_json
+
+    band_hz = parse_band(band)
+    _check_span_args(start_s, stop_s, window_s)
+    site = load(site_path, dims)
+    inputs = _site_inputs(site)
+    for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
+                   (panels_path, "--panels")):
+        check_output_path(p, inputs, option=opt)
+    rec = open_recordings(site)
+    check_band(band_hz, rec.sample_rate_hz)
+    cond = conditions_for(site, sound_speed_mps)
+    warnings = list(site.warnings) + list(rec.warnings)
+    if start_s is None:
+        with progress_bar(ctx, rec.duration_s, "Scanning for events") as bar:
+            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz,
+                                 threshold_db=threshold_db, progress=bar.update)
+        require_events(events, rec.start_s, rec.stop_s)
+        spans = plan_spans(events, rec, site.positions_m, cond)
+        times = [float(np.nanmin(ev.onset_s)) for ev in events]
+    elif window_s is not None:
+        if window_s > stop_s - start_s:
+            raise OptionError(f"window {window_s:g} s is longer than the span "
+                              f"{stop_s - start_s:g} s", field="--window")
+        edges = np.arange(start_s, stop_s - window_s + 1e-9, window_s)
+        spans = [(float(a), float(a + window_s)) for a in edges]
+        times = [a for a, _ in spans]
+    else:
+        spans, times = [(start_s, stop_s)], [start_s]
+    entries, fixes = [], []
+    with progress_bar(ctx, len(spans), "Locating") as bar:
+        for (a, b), t in zip(spans, times):
+            try:
+                entry, fx, _, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
+                                           source_z_m=source_z_m, reject=not no_reject,
+                                           keep_curves=panels_path is not None, t_s=t)
+            except NothingFoundError as exc:
+                warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
+                bar.update(1)
+                continue
+            entries.append(entry)
+            fixes.append(fx)
+            bar.update(1)
+    warnings.extend(w for w in rec.warnings if w not in warnings)
+    if not entries:
+        for w in warnings:
+            warn(w)
+        raise NothingFoundError("no span gave a usable fix (see the warnings above)")
+    result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
+                        source_z_m=source_z_m)
+    _print_fixes(ctx, site, cond, result)
+    for w in result["warnings"]:
+        warn(w)
+    if json_path:
+        write_json(json_path, result)
+        echo(ctx, f"Result written to {json_path}")
+    if csv_path:
+        write_atomic(csv_path, fixes_csv(result))
+    if map_path:
+        _draw_map(site, result, map_path)
+        echo(ctx, f"Map written to {map_path}")
+    if panels_path:
+        _draw_panels(result, panels_path)
+    return result
+
+
+def _print_fixes(ctx, site, cond, result):
+    echo(ctx, f"{site.title}: {len(site.mics)} mics, sound speed "
+              f"{cond.sound_speed_mps:.2f} m/s ({cond.temperature_c:g} degC, "
+              f"{cond.relative_humidity:g} % RH)"
+              + (f", wind {cond.wind_speed_mps:g} m/s from {cond.wind_from_deg:g} deg"
+                 if cond.wind_speed_mps else ""))
+    for k, f in enumerate(result["fixes"], 1):
+        x, y, z = f["position_m"]
+        e = f["ellipse95"]
+        height = f"z {z:.2f} m (solved)" if f["dims"] == 3 else f"z {z:.2f} m (given)"
+        echo(ctx, f"#{k} heard at {f['t_s']:.3f} s  ->  x {x:.2f} m, y {y:.2f} m, {height}")
+        echo(ctx, f"   95 % ellipse {_len(e['semi_major_m'])} x {_len(e['semi_minor_m'])} "
+                  f"(half-axes), long axis toward {e['azimuth_deg']:.0f} deg; timing residual "
+                  f"{f['residual_rms_s'] * 1e6:.1f} us; mics used {' '.join(f['used_mics'])}"
+                  + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
+
+
+def _len(v):
+    if v is None or not np.isfinite(v):
+        return "unbounded"
+    if v < 0.01:
+        return f"{v * 1000:.1f} mm"
+    return f"{v * 100:.1f} cm" if v < 1 else f"{v:.2f} m"
+
+
+def _draw_map(site, result, path):
+    from locate import plot
+    fig = plot.map_figure(site, result)
+    plot.save_figure(fig, path)
+
+
+def _draw_panels(result, path):
+    from locate import plot
+    fig = plot.panels_figure(result)
+    plot.save_figure(fig, path)
+
+
+@cli.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@span_options
+@click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
+              help="dB above the background for a frame to count as active.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.pass_context
+def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
+    """List detected events with time, duration, level and how many mics heard them."""
+    from locate.audio import open_recordings
+    from locate.pipeline import conditions_for, fix_result, require_events, scan_events
+    from locate.results import check_output_path, write_json
+
+    band_hz = parse_band(band)
+    if start_s is not None or stop_s is not None:
+        _check_span_args(start_s, stop_s)
+    site = load(site_path)
+    check_output_path(json_path, _site_inputs(site))
+    rec = open_recordings(site)
+    check_band(band_hz, rec.sample_rate_hz)
+    cond = conditions_for(site)
+    a = rec.start_s if start_s is None else start_s
+    b = rec.stop_s if stop_s is None else stop_s
+    with progress_bar(ctx, b - a, "Scanning for events") as bar:
+        found = scan_events(rec, site.positions_m, cond, band_hz=band_hz, start_s=a, stop_s=b,
+                            threshold_db=threshold_db, progress=bar.update)
+    require_events(found, a, b)
+    rows = [ev.to_dict(site.mic_names) for ev in found]
+    echo(ctx, f"{len(rows)} event(s) in {a:.2f}..{b:.2f} s")
+    echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'above bg':>9} {'mics':>5}  first mic")
+    for k, r in enumerate(rows, 1):
+        echo(ctx, f"{k:>3} {r['t_s']:>10.3f} s {r['duration_s']:>6.3f} s {r['level_db']:>6.1f} dB "
+                  f"{r['n_mics']:>5}  {r['first_mic']}")
+    for w in rec.warnings:
+        warn(w)
+    if json_path:
+        result = fix_result(site, cond, [], kind="events", extra={"events": rows},
+                            warnings=rec.warnings)
+        write_json(json_path, result)
+    return rows
+
+
+@cli.command()
+@click.argument("out_dir", metavar="DIR", type=click.Path(file_okay=False), default="tdoa-demo")
+@click.pass_context
+def demo(ctx, out_dir):
+    """Run the whole job on the bundled demo recordings and write results + maps to DIR."""
+    from locate.demo import run_demo
+    run_demo(ctx, Path(out_dir))
+
+
+# ----------------------------------------------------------------------------- entry point
+
+def main(argv=None):
+    """Console entry point: turns user-facing errors into one line and an exit code."""
+    args = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in args
+    try:
+        cli.main(args=args, prog_name="tdoa", standalone_mode=False)
+    except click.exceptions.Abort:
+        click.echo("tdoa: interrupted; no partial result was written", err=True)
+        sys.exit(130)
+    except click.exceptions.ClickException as exc:
+        exc.show()
+        sys.exit(exc.exit_code)
+    except TdoaError as exc:
+        if debug:
+            traceback.print_exc()
+        click.echo(f"tdoa: error: {exc}", err=True)
+        sys.exit(exc.exit_code)
+    except KeyboardInterrupt:
+        click.echo("tdoa: interrupted; no partial result was written", err=True)
+        sys.exit(130)
+    except click.exceptions.Exit as exc:
+        sys.exit(exc.exit_code)
+    sys.exit(0)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,197 @@
+"""Orchestration used by the command line: recordings in, result dictionaries out.
+
+The CLI parses options and prints; this module strings the pure core together (air, delays,
+fix, events) over a :class:`locate.audio.Recordings` reader.  Nothing here writes files.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from locate import __version__
+from locate.audio import check_signals
+from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
+from locate.errors import NothingFoundError, OptionError
+from locate.events import FRAME_S, detect_events, frame_energy_db
+from locate.fix import locate_source
+from locate.results import CAUTIONS, SCHEMA, fix_to_dict
+
+__all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
+           "plan_spans"]
+
+
+@dataclass
+class Conditions:
+    """Propagation conditions of a run."""
+
+    sound_speed_mps: float
+    wind_mps: np.ndarray
+    temperature_c: float
+    relative_humidity: float
+    wind_speed_mps: float
+    wind_from_deg: float
+    notes: list = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        return {
+            "sound_speed_mps": round(self.sound_speed_mps, 3),
+            "temperature_c": self.temperature_c,
+            "relative_humidity": self.relative_humidity,
+            "wind_speed_mps": self.wind_speed_mps,
+            "wind_from_deg": self.wind_from_deg,
+        }
+
+
+def conditions_for(site, sound_speed_mps=None) -> Conditions:
+    """Sound speed and wind for a site (``sound_speed_mps`` overrides the air model)."""
+    air = site.air
+    c = float(sound_speed_mps) if sound_speed_mps is not None else air.sound_speed_mps()
+    if not 250.0 <= c <= 400.0:
+        raise OptionError(f"sound speed {c:g} m/s is not plausible for air (250-400 m/s)",
+                          field="--sound-speed")
+    return Conditions(c, air.wind_mps(), air.temperature_c, air.relative_humidity,
+                      air.wind_speed_mps, air.wind_from_deg)
+
+
+def _array_spread_s(positions_m, cond):
+    pos = np.asarray(positions_m, dtype=float)
+    span = np.max(np.linalg.norm(pos[:, None] - pos[None], axis=-1))
+    return span / (cond.sound_speed_mps - cond.wind_speed_mps) + 0.05
+
+
+def scan_events(recordings, positions_m, cond, *, band_hz=None, start_s=None, stop_s=None,
+                threshold_db=10.0, progress=None, block_s=30.0):
+    """Detect events over a span of the recordings, streaming block by block.
+
+    Parameters
+    ----------
+    recordings : locate.audio.Recordings
+    positions_m : array_like, shape (N, 3)
+    cond : Conditions
+    band_hz : (float, float), optional
+    start_s, stop_s : float, optional
+        Span to scan (default: all that every mic covers).
+    threshold_db : float
+    progress : callable, optional
+        Called with the number of seconds scanned after each block.
+    block_s : float
+        Block length; memory is bounded by one block of all channels.
+
+    Returns
+    -------
+    list of locate.events.Event
+    """
+    fs = recordings.sample_rate_hz
+    a = recordings.start_s if start_s is None else float(start_s)
+    b = recordings.stop_s if stop_s is None else float(stop_s)
+    frame = int(round(FRAME_S * fs))
+    block = max(int(block_s * fs) // frame, 1) * frame
+    chunks = []
+    t = a
+    while t < b - 1.0 / fs:
+        t_end = min(t + block / fs, b)
+        sig, _ = recordings.read(t, t_end)
+        chunks.append(frame_energy_db(sig, fs, frame_s=frame / fs, band_hz=band_hz))
+        if progress is not None:
+            progress(t_end - t)
+        t = t + block / fs
+    if not chunks:
+        return []
+    energy = np.concatenate(chunks, axis=1)
+    n = recordings.n_mics
+    return detect_events(energy, frame_s=frame / fs, t0_s=a, threshold_db=threshold_db,
+                         min_mics=min(3, n), max_spread_s=_array_spread_s(positions_m, cond),
+                         pad_s=0.05 + 0.1 * 0)
+
+
+def plan_spans(events, recordings, positions_m, cond):
+    """Analysis span for each event: the event in every mic plus the travel time across."""
+    spread = _array_spread_s(positions_m, cond)
+    spans = []
+    for ev in events:
+        lo = max(ev.t_start_s - 0.02, recordings.start_s)
+        hi = min(ev.t_end_s + min(spread, 0.05), recordings.stop_s)
+        spans.append((lo, hi))
+    return spans
+
+
+def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
+             keep_curves=False, reject=True, t_s=None, extra_covariance=None):
+    """Read one span, estimate delays and fix the source.
+
+    Returns
+    -------
+    (entry, fix, delays, warnings)
+        ``entry`` is the result-JSON dict of the fix.
+    """
+    positions = site.positions_m
+    names = site.mic_names
+    signals, residual = recordings.read(start_s, stop_s)
+    warnings = check_signals(signals, names)
+    pairs = all_pairs(len(names))
+    clock_sd = np.array([m.clock_sd_s or 0.0 for m in site.mics])
+    margin = 5e-4 + 3.0 * (clock_sd[pairs[:, 0]] + clock_sd[pairs[:, 1]])
+    max_lag = geometric_max_lag_s(positions, pairs, cond.sound_speed_mps,
+                                  wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
+    delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
+                             band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
+                             keep_curves=keep_curves)
+    weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
+            if q == "weak"]
+    amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
+           if q == "ambiguous"]
+    if weak:
+        warnings.append("weak correlation for pair(s) " + ", ".join(weak))
+    if amb:
+        warnings.append("ambiguous correlation (several near-equal peaks; a periodic or tonal "
+                        "sound?) for pair(s) " + ", ".join(amb)
+                        + ": a broadband part of the sound or a --band around it would help")
+    extra = None if extra_covariance is None else extra_covariance(delays, cond)
+    fix = locate_source(positions, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
+                        dims=dims, source_z_m=source_z_m, reject=reject, mic_names=names,
+                        extra_covariance_s2=extra)
+    if len(amb) > len(delays.pairs) // 2:
+        fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
+                            "do not rely on it without a broadband sound")
+    warnings.extend(fix.warnings)
+    entry = fix_to_dict(fix, delays, names, t_s=start_s if t_s is None else t_s,
+                        span_s=(start_s, stop_s))
+    entry["warnings"] = list(dict.fromkeys(warnings))
+    return entry, fix, delays, entry["warnings"]
+
+
+def fix_result(site, cond, entries, *, warnings=(), dims=2, source_z_m=0.0, kind="fix",
+               extra=None) -> dict:
+    """The top-level result dictionary (schema ``tdoa-result/1``)."""
+    result = {
+        "schema": SCHEMA,
+        "kind": kind,
+        "site": str(site.path),
+        "title": site.title,
+        "tool": {"name": "tdoa", "version": __version__},
+        "sound_speed_mps": round(cond.sound_speed_mps, 3),
+        "air": cond.to_dict(),
+        "dims": dims,
+        "source_z_m": source_z_m if dims == 2 else None,
+        "mics": [{"name": m.name, "position_m": [float(v) for v in m.position_m]}
+                 for m in site.mics],
+        "warnings": list(dict.fromkeys(warnings)),
+        "cautions": list(CAUTIONS),
+    }
+    if site.origin_wgs84 is not None:
+        result["origin_wgs84"] = list(site.origin_wgs84)
+    if kind == "fix":
+        result["fixes"] = entries
+    if extra:
+        result.update(extra)
+    return result
+
+
+def require_events(events, start_s, stop_s):
+    if not events:
+        raise NothingFoundError(
+            f"no event stands out of the background between {start_s:.2f} and {stop_s:.2f} s: "
+            "give a span with --from/--to for a continuous sound, or lower --threshold")
+    return events
