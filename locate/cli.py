@@ -269,6 +269,8 @@ def _print_fixes(ctx, site, cond, result):
                   f"(half-axes), long axis toward {e['azimuth_deg']:.0f} deg; timing residual "
                   f"{f['residual_rms_s'] * 1e6:.1f} us; mics used {' '.join(f['used_mics'])}"
                   + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
+        for w in f["warnings"]:
+            warn(f"#{k}: {w}")
 
 
 def _len(v):

@@ -356,11 +356,20 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     coh = np.abs(s_cross) ** 2 / denom
     coh = np.clip((dof * coh - 1.0) / (dof - 1.0), 0.0, 0.9999)  # bias correction
 
+    # Keep only bins whose coherence is significant: under no signal the raw estimate with n
+    # degrees of freedom exceeds x with probability (1 - x)^(n - 1) (Carter 1987); the
+    # bias-corrected threshold below corresponds to a 1e-3 false-alarm probability per cell.
+    raw_threshold = 1.0 - 1e-3 ** (1.0 / (dof - 1.0))
+    threshold = max((dof * raw_threshold - 1.0) / (dof - 1.0), _MIN_BAND_COHERENCE)
     if band_hz is None:
         good = (score >= WEAK_PEAK_SCORE) & (second < AMBIGUOUS_RATIO)
-        ref = coh[good] if good.any() else coh
-        new_mask = _coherent_band(freqs, np.median(ref, axis=0), mask)
-        if new_mask is not None and new_mask.sum() < mask.sum():
+        ref = np.median(coh[good] if good.any() else coh, axis=0)
+        new_mask = _coherent_band(freqs, ref, mask)
+        if new_mask is not None:
+            # within the band, whiten only the bins that carry signal (PHAT would otherwise
+            # give noise-only bins, e.g. between the harmonics of a tonal sound, equal weight)
+            new_mask = new_mask & (ref > threshold)
+        if new_mask is not None and 8 <= new_mask.sum() < mask.sum():
             mask = new_mask
             (lag0_b, peak, score, second, seg, lags, inside), lo_hi = phat_peaks(mask)
             # recompute the coherence where the coarse lag moved by more than half a sample
@@ -374,21 +383,19 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
                 s_cross[moved] = sc
             lag0 = np.where(moved, lag0_b, lag0)  # the fine step below is relative to lag0
 
-    # Keep only bins whose coherence is significant: under no signal the raw estimate with n
-    # degrees of freedom exceeds x with probability (1 - x)^(n - 1) (Carter 1987); the
-    # bias-corrected threshold below corresponds to a 1e-3 false-alarm probability per cell.
-    raw_threshold = 1.0 - 1e-3 ** (1.0 / (dof - 1.0))
-    threshold = max((dof * raw_threshold - 1.0) / (dof - 1.0), _MIN_BAND_COHERENCE)
     coh = np.where(mask[None, :] & (coh > threshold), coh, 0.0)
     w = coh / (1.0 - coh)  # Hannan-Thomson weight on the normalised phasor
-    # Fine delay: maximise sum c_k cos(phi_k + omega_k d) with c_k = w_k |G_k| / |G_smooth|.
-    phase = np.angle(rot)
-    c = w * mag / np.maximum(np.abs(s_cross), 1e-300)
+    # Fine delay: maximise sum c_k cos(phi_k + omega_k d) with c_k = w_k |G_k| / |G_smooth|,
+    # over the bins that carry weight only.
+    kb = np.flatnonzero(np.any(w > 0, axis=0))
+    om_b = omega[kb]
+    phase = np.angle(rot[:, kb])
+    c = w[:, kb] * mag[:, kb] / np.maximum(np.abs(s_cross[:, kb]), 1e-300)
     d = np.zeros(n_pairs)
-    cw1 = c * omega
-    cw2 = cw1 * omega
+    cw1 = c * om_b
+    cw2 = cw1 * om_b
     for _ in range(6):
-        arg = phase + omega[None, :] * d[:, None]
+        arg = phase + om_b[None, :] * d[:, None]
         g1 = np.sum(cw1 * np.sin(arg), axis=1)
         g2 = np.sum(cw2 * np.cos(arg), axis=1)
         step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
@@ -415,11 +422,11 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     curves = None
     if keep_curves:
         curves = []
-        step = max(1, int(np.ceil(seg.shape[1] / 4000)))
+        step = max(1, int(np.ceil(seg.shape[1] / 1000)))
         for k in range(n_pairs):
             sel = np.flatnonzero(inside[k])[::step]
             curves.append({"lags_s": (lags[sel] / fs).tolist(),
-                           "correlation": seg[k, sel].astype(float).round(5).tolist()})
+                           "correlation": seg[k, sel].astype(float).round(4).tolist()})
     return DelaySet(
         pairs=pairs, delay_s=delay, sd_s=sd, covariance_s2=cov, peak=peak, score=score,
         second_ratio=second, quality=tuple(quality), t_s=float(t_s),
@@ -453,7 +460,7 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
     ok = usable & (np.sum(coh[:, bins] > 0, axis=1) > 0)
     involved = np.unique(pairs[ok])
     if len(involved) >= 3 and np.linalg.matrix_rank(design[ok][:, involved]) == len(involved):
-        sol = np.linalg.lstsq(design[ok][:, involved], log_cross[ok], rcond=None)[0]
+        sol = np.linalg.pinv(design[ok][:, involved]) @ log_cross[ok]
         log_sig = np.full((n_mics, len(bins)), np.nan)
         log_sig[involved] = sol
     else:  # two mics (or a pair graph too thin): share the noise equally
@@ -482,9 +489,10 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
     cov /= np.outer(dn, dn)
     # Carter's bound for each pair on its own (exact for the HT weight): use the larger of the
     # model and the bound on the diagonal so that a poorly resolved noise split never shrinks it.
-    carter = scale / (2.0 * np.sum(w * omega**2, axis=1).clip(1e-300))
-    diag = np.maximum(np.diag(cov), carter)
-    ratio = np.sqrt(diag / np.maximum(np.diag(cov), 1e-300))
+    carter = scale / (2.0 * np.where(usable, d_norm, 1.0))
+    model = np.diag(cov)
+    ratio = np.where(usable & (model > 0), np.sqrt(np.maximum(model, carter)
+                                                   / np.where(model > 0, model, 1.0)), 1.0)
     cov = cov * np.outer(ratio, ratio)
     bad = ~usable
     if bad.any():

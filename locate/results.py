@@ -85,6 +85,9 @@ def write_atomic(path, data) -> Path:
             fh.write(raw)
             fh.flush()
             os.fsync(fh.fileno())
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file normal permissions
         os.replace(tmp, path)
     except BaseException:
         try:
