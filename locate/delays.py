@@ -361,27 +361,37 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     # bias-corrected threshold below corresponds to a 1e-3 false-alarm probability per cell.
     raw_threshold = 1.0 - 1e-3 ** (1.0 / (dof - 1.0))
     threshold = max((dof * raw_threshold - 1.0) / (dof - 1.0), _MIN_BAND_COHERENCE)
+    good = (score >= WEAK_PEAK_SCORE) & (second < AMBIGUOUS_RATIO)
+    ref = np.median(coh[good] if good.any() else coh, axis=0)  # consensus coherence (K,)
     if band_hz is None:
-        good = (score >= WEAK_PEAK_SCORE) & (second < AMBIGUOUS_RATIO)
-        ref = np.median(coh[good] if good.any() else coh, axis=0)
         new_mask = _coherent_band(freqs, ref, mask)
-        if new_mask is not None:
-            # within the band, whiten only the bins that carry signal (PHAT would otherwise
-            # give noise-only bins, e.g. between the harmonics of a tonal sound, equal weight)
-            new_mask = new_mask & (ref > threshold)
-        if new_mask is not None and 8 <= new_mask.sum() < mask.sum():
+        if new_mask is not None and new_mask.sum() >= 8:
             mask = new_mask
-            (lag0_b, peak, score, second, seg, lags, inside), lo_hi = phat_peaks(mask)
-            # recompute the coherence where the coarse lag moved by more than half a sample
-            moved = np.abs(lag0_b - lag0) > 0.5 / fs
-            if moved.any():
-                rot_m = cross[moved] * np.exp(1j * omega[None, :] * lag0_b[moved, None])
-                sc = _smooth(rot_m.real, width) + 1j * _smooth(rot_m.imag, width)
-                c_m = np.abs(sc) ** 2 / denom[moved]
-                coh[moved] = np.clip((dof * c_m - 1.0) / (dof - 1.0), 0.0, 0.9999)
-                rot[moved] = rot_m
-                s_cross[moved] = sc
-            lag0 = np.where(moved, lag0_b, lag0)  # the fine step below is relative to lag0
+            lo_hi = (float(freqs[mask].min()), float(freqs[mask].max()))
+
+    # Second, weighted pass for the coarse lag and the quality flags: the smoothed-coherence
+    # transform (G / sqrt(S_ii S_jj), Carter 1987) weighted by the consensus coherence, so that
+    # bins without signal (outside the band, between the harmonics of a tonal sound) carry
+    # no weight.  It does not depend on the first-pass lag, so a pair whose PHAT peak was
+    # wrong is recovered here.
+    v = np.where(mask & (ref > threshold), ref / (1.0 - np.clip(ref, 0, 0.9999)), 0.0)
+    if np.count_nonzero(v) >= 4:
+        scot = cross / np.sqrt(denom)
+        r2 = sfft.irfft(v[None, :] * scot, nfft, axis=-1)
+        norm2 = sfft.irfft(v[None, :] * np.abs(scot), nfft, axis=-1)[:, 0]
+        r2 = r2 / np.maximum(norm2, 1e-300)[:, None]
+        lag2, _, score, second, _, _, _ = _coarse_peaks(r2, max_lag_samp, fs, lo_hi)
+        moved = np.abs(lag2 - lag0) > 0.5 / fs
+        if moved.any():
+            rot_m = cross[moved] * np.exp(1j * omega[None, :] * lag2[moved, None])
+            sc = _smooth(rot_m.real, width) + 1j * _smooth(rot_m.imag, width)
+            c_m = np.abs(sc) ** 2 / denom[moved]
+            coh[moved] = np.clip((dof * c_m - 1.0) / (dof - 1.0), 0.0, 0.9999)
+            rot[moved] = rot_m
+            s_cross[moved] = sc
+            lag0 = np.where(moved, lag2, lag0)  # the fine step below is relative to lag0
+    else:
+        score = np.zeros(n_pairs)
 
     coh = np.where(mask[None, :] & (coh > threshold), coh, 0.0)
     w = coh / (1.0 - coh)  # Hannan-Thomson weight on the normalised phasor
@@ -420,7 +430,8 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         delay = delay + off[jj] - off[ii]
 
     curves = None
-    if keep_curves:
+    if keep_curves:  # GCC-PHAT over the final band, for the diagnostics figure
+        (_, _, _, _, seg, lags, inside), _ = phat_peaks(mask)
         curves = []
         step = max(1, int(np.ceil(seg.shape[1] / 1000)))
         for k in range(n_pairs):

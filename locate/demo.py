@@ -41,6 +41,6 @@ def run_demo(ctx, out_dir: Path):
                csv_path=str(out_dir / "yard-fix.csv"), map_path=str(out_dir / "yard-map.png"),
                window_s=None, threshold_db=10.0, panels_path=str(out_dir / "yard-panels.png"),
                no_reject=False)
-    for name, extra in getattr(cli, "DEMO_STEPS", []):
+    for _name, extra in getattr(cli, "DEMO_STEPS", []):
         extra(ctx, demo_dir, out_dir)
     click.echo(f"Demo results are in {out_dir}/")

@@ -45,8 +45,8 @@ def test_travel_time_with_wind_solves_the_moving_air_equation():
         mic = rng.uniform(-200, 200, 3)
         wind = np.append(rng.uniform(-15, 15, 2), 0.0)
         r = mic - src
-        t_ref = optimize.brentq(lambda t: np.linalg.norm(r - wind * t) - c * t, 0.0, 10.0,
-                                xtol=1e-15)
+        t_ref = optimize.brentq(lambda t, r=r, w=wind: np.linalg.norm(r - w * t) - c * t,
+                                0.0, 10.0, xtol=1e-15)
         assert air.travel_time_s(src, mic, c, wind) == pytest.approx(t_ref, abs=1e-12)
 
 
