@@ -342,6 +342,159 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
 
 
 @cli.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.argument("result_path", metavar="RESULT", type=click.Path())
+@click.option("--fix", "fix_no", type=int, default=None,
+              help="Only this fix of the result (1-based; default: every fix).")
+@click.option("--hemisphere", is_flag=True,
+              help="Source on hard ground radiating into a half space (8 dB, not 11 dB).")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.pass_context
+def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
+    """Source sound power per octave band, and the level at the site's named receivers."""
+    from locate.audio import open_recordings
+    from locate.levelrun import level_for_fix
+    from locate.pipeline import conditions_for, fix_result
+    from locate.results import check_output_path, read_result, write_json
+
+    site = load(site_path)
+    check_output_path(json_path, _site_inputs(site) + [result_path])
+    result = read_result(result_path, kinds=("fix",))
+    _check_same_site(site, result, result_path)
+    fixes = result.get("fixes", [])
+    if fix_no is not None:
+        if not 1 <= fix_no <= len(fixes):
+            raise OptionError(f"the result holds {len(fixes)} fix(es); --fix {fix_no} is not "
+                              "one of them", field="--fix")
+        chosen = [(fix_no, fixes[fix_no - 1])]
+    else:
+        chosen = list(enumerate(fixes, 1))
+    rec = open_recordings(site)
+    cond = conditions_for(site, result.get("sound_speed_mps"))
+    out = []
+    for k, entry in chosen:
+        lev = level_for_fix(rec, site, cond, entry, hemisphere=hemisphere,
+                            result_path=result_path)
+        lev["fix"] = k
+        out.append(lev)
+        unit = "dB" if lev["calibrated"] else "dBFS-rel"
+        echo(ctx, f"#{k} at ({entry['position_m'][0]:.1f}, {entry['position_m'][1]:.1f}) m: "
+                  f"sound power {_db(lev['source_lwa_db'])} {unit}(A) "
+                  f"(+-{lev['lw_position_sd_db']:.1f} dB from the position)")
+        echo(ctx, "   band Hz   " + " ".join(f"{b:>6}" for b in lev["bands_hz"]))
+        echo(ctx, "   Lw        " + " ".join(f"{_db(v):>6}" for v in lev["source_lw_db"]))
+        echo(ctx, "   mic spread" + " ".join(f"{_db(v):>6}" for v in lev["mic_spread_db"]))
+        for r in lev["receivers"]:
+            screen = max((v for v in r["barrier_db"] if v is not None), default=0.0)
+            echo(ctx, f"   at {r['name']} ({r['distance_m']:.0f} m): {_db(r['lpa_db'])} "
+                      f"{unit}(A), barrier up to {_db(screen)} dB")
+    echo(ctx, "Screening estimate only: ground effect, meteorology and reflections are not "
+              "modelled; not a compliance measurement.")
+    if json_path:
+        doc = fix_result(site, cond, [], kind="level", warnings=rec.warnings,
+                         extra={"levels": out})
+        if len(out) == 1:
+            doc.update({k: v for k, v in out[0].items() if k != "kind"})
+        doc["cautions"] = out[0]["cautions"] if out else doc["cautions"]
+        write_json(json_path, doc)
+    return out
+
+
+def _db(v):
+    return "  --" if v is None else f"{v:.1f}"
+
+
+def _check_same_site(site, result, result_path):
+    from locate.errors import ResultFileError
+    names = [m.get("name") for m in result.get("mics", [])]
+    if names and names != site.mic_names:
+        raise ResultFileError(f"its mics ({', '.join(map(str, names))}) are not this site's "
+                              f"({', '.join(site.mic_names)}): was it made from another site "
+                              "file?", file=result_path, field="mics")
+
+
+@cli.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.option("-o", "--output", "out_path", type=click.Path(dir_okay=False), default=None,
+              help="Planning map (PNG, SVG or PDF).")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--timing-sd", "timing_sd_s", type=float, default=None,
+              help="Expected arrival-time accuracy per mic, seconds (e.g. 2e-5).")
+@click.option("--band", default=None, metavar="LO:HI",
+              help="Predict the timing from the source band (with --snr, --duration).")
+@click.option("--snr", "snr_db", type=float, default=None, help="In-band SNR, dB.")
+@click.option("--duration", "duration_s", type=float, default=None,
+              help="Length of the analysed sound, s.")
+@click.option("--grid-step", "grid_step_m", type=float, default=None)
+@click.option("--extent", default=None, metavar="X0:X1:Y0:Y1", help="Map area, metres.")
+@click.option("--candidates", default="auto", show_default=True,
+              type=click.Choice(["auto", "site", "grid", "none"]),
+              help="Where a new mic may go.")
+@click.option("--region", default="auto", show_default=True,
+              type=click.Choice(["auto", "polygon", "receivers", "extent"]),
+              help="Where accuracy matters.")
+@click.option("--objective", default="worst", show_default=True,
+              type=click.Choice(["worst", "mean"]))
+@click.option("--propose", "n_propose", type=click.IntRange(0, 10), default=1, show_default=True)
+@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
+@click.option("--source-z", "source_z_m", type=float, default=0.0, show_default=True)
+@click.pass_context
+def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,
+         grid_step_m, extent, candidates, region, objective, n_propose, dims, source_z_m):
+    """Expected 95 % ellipse size over the site for the mic layout; best next mic(s)."""
+    from locate.plan import plan_site
+    from locate.results import check_output_path, write_json
+
+    band_hz = parse_band(band)
+    site = load(site_path, dims, require_audio=False)
+    for p, opt in ((out_path, "--output"), (json_path, "--json")):
+        check_output_path(p, _site_inputs(site), option=opt)
+    ext = None
+    if extent is not None:
+        try:
+            ext = tuple(float(v) for v in extent.split(":"))
+            assert len(ext) == 4 and ext[0] < ext[1] and ext[2] < ext[3]
+        except (ValueError, AssertionError):
+            raise OptionError(f"{extent!r} is not X0:X1:Y0:Y1 with X0 < X1 and Y0 < Y1",
+                              field="--extent") from None
+    if timing_sd_s is None and band_hz is None:
+        timing_sd_s = 2e-5
+        echo(ctx, "No timing given: assuming 20 us per mic (use --timing-sd or "
+                  "--band/--snr/--duration).")
+    res = plan_site(site, timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
+                    duration_s=duration_s, grid_step_m=grid_step_m, extent_m=ext,
+                    candidates=None if candidates == "none" else candidates, region=region,
+                    dims=dims, source_z_m=source_z_m, objective=objective,
+                    n_propose=n_propose if candidates != "none" else 0)
+    doc = res.to_dict()
+    echo(ctx, _plan_summary(doc))
+    if json_path:
+        write_json(json_path, doc)
+    if out_path:
+        from locate import plot
+        from locate.plan_plot import plan_figure
+        plot.save_figure(plan_figure(res, site), out_path)
+        echo(ctx, f"Planning map written to {out_path}")
+    return doc
+
+
+def _plan_summary(doc):
+    lines = [f"Locatable: {100 * doc.get('locatable_fraction', 0):.0f} % of the map area "
+             f"(95 % semi-major below {_len(doc.get('limit_m'))})"]
+    for r in doc.get("receivers", []) or []:
+        if isinstance(r, dict) and "name" in r:
+            val = r.get("semi_major_m")
+            lines.append(f"  at {r['name']}: expected 95 % semi-major {_len(val)}")
+    for p in doc.get("proposals", []) or []:
+        pos = p["position_m"]
+        lines.append(f"Proposed next mic {p['name']} at ({pos[0]:.1f}, {pos[1]:.1f}) m: "
+                     f"{doc.get('objective', 'worst')} semi-major over the region "
+                     f"{_len(p['metric_before_m'])} -> {_len(p['metric_after_m'])} "
+                     f"({p['factor']:.1f}x better)")
+    return "\n".join(lines)
+
+
+@cli.command()
 @click.argument("out_dir", metavar="DIR", type=click.Path(file_okay=False), default="tdoa-demo")
 @click.pass_context
 def demo(ctx, out_dir):

@@ -24,7 +24,7 @@ from locate.site_fields import (
 )
 
 TOP_KEYS = ("title", "coordinates", "air", "recording", "mics", "receivers", "barriers",
-            "sketch", "survey")
+            "sketch", "survey", "candidates", "region")
 AIR_KEYS = ("temperature_c", "relative_humidity", "pressure_kpa", "wind_speed_mps",
             "wind_from_deg", "temperature_sd_c", "wind_sd_mps", "sound_speed_mps")
 SURVEY_KEYS = ("position_sd_m", "height_sd_m", "clock_sd_s")

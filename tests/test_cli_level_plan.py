@@ -1,0 +1,107 @@
+"""``tdoa level`` and ``tdoa plan`` end to end (issue 6)."""
+
+import json
+
+import numpy as np
+import pytest
+
+from locate import levels
+from locate.synth import Emission, Waveform, simulate_events
+from tests.cli_helpers import run, write_site
+
+BANDS = np.array(levels.OCTAVE_BANDS_HZ)
+ARRAY = np.array([[0.0, 0.0, 1.5], [60.0, 0.0, 1.5], [60.0, 55.0, 1.5], [0.0, 55.0, 1.5],
+                  [30.0, 25.0, 1.5], [35.0, -20.0, 1.5]])
+P_FULL_SCALE_PA = 20.0  # the recorder's 0 dBFS sine is 20 Pa rms = 120 dB SPL
+
+
+@pytest.fixture(scope="module", params=[(120.0, 150.0, 1.5), (-180.0, 260.0, 1.5)],
+                ids=["about 100 m", "about 300 m"])
+def level_scene(request, tmp_path_factory):
+    src = np.array(request.param)
+    folder = tmp_path_factory.mktemp("level")
+    wave = Waveform(kind="noise", band_hz=(80.0, 5600.0), duration_s=2.0, rms_pa_at_1m=60.0)
+    rng = np.random.default_rng(61)
+    sim = simulate_events(ARRAY, [Emission(src, 3.5, wave)], sample_rate_hz=24000.0,
+                          duration_s=7.5, temperature_c=15.0, relative_humidity=60.0,
+                          noise_rms=2e-4, rng=rng)
+    extra = "".join(f"\n[[mics]]\n" for _ in [])
+    site = write_site(folder, ARRAY, sim.signals, 24000.0, temperature_c=15.0, humidity=60.0,
+                      full_scale_pa=P_FULL_SCALE_PA * np.sqrt(2), extra=extra)
+    text = site.read_text().replace("channel = ", "full_scale_db_spl = 120.0\nchannel = ")
+    text += '\n[[receivers]]\nname = "Rook Cottage"\nx = 20.0\ny = 80.0\nz = 1.5\n'
+    site.write_text(text)
+    # True sound power per band: free-field Lw = Lp(1 m) + 11 dB (textbook), with Lp(1 m)
+    # the band level of the emitted signal itself (locate.levels on the emitted samples).
+    emitted = sim.emitted_signals[0] / (P_FULL_SCALE_PA * np.sqrt(2))
+    lp1 = levels.octave_band_levels_db(emitted, sim.emitted_rate_hz, full_scale_db_spl=120.0)
+    return site, src, lp1 + 11.0
+
+
+def test_sound_power_is_recovered_within_1_db_per_band(level_scene, tmp_path):
+    site, src, lw_true = level_scene
+    fix_json, lev_json = tmp_path / "fix.json", tmp_path / "lev.json"
+    code, _, err = run(["fix", site, "--source-z", src[2], "--json", fix_json])
+    assert code == 0, err
+    fx = json.loads(fix_json.read_text())["fixes"][0]
+    assert np.linalg.norm(np.array(fx["position_m"][:2]) - src[:2]) < 1.0
+    code, out, err = run(["level", site, fix_json, "--json", lev_json])
+    assert code == 0, err
+    doc = json.loads(lev_json.read_text())
+    assert doc["kind"] == "level" and doc["bands_hz"] == list(levels.OCTAVE_BANDS_HZ)
+    got = np.array([np.nan if v is None else v for v in doc["source_lw_db"]])
+    sel = (BANDS >= 125) & (BANDS <= 4000)
+    print("Lw error per band (dB):", np.round(got[sel] - lw_true[sel], 2))
+    assert np.all(np.abs(got[sel] - lw_true[sel]) <= 1.0)
+    assert doc["receivers"][0]["name"] == "Rook Cottage"
+    assert doc["cautions"] and "compliance" in " ".join(doc["cautions"])
+    assert "Screening estimate" in out
+
+
+def test_level_without_calibration_is_labelled_dbfs(level_scene, tmp_path):
+    site, src, _ = level_scene
+    plain = tmp_path / "uncal.toml"
+    plain.write_text(site.read_text().replace("full_scale_db_spl = 120.0\n", "")
+                     .replace('file = "rec.wav"', f'file = "{site.parent / "rec.wav"}"'))
+    fix_json, lev_json = tmp_path / "fix.json", tmp_path / "lev.json"
+    assert run(["fix", plain, "--source-z", src[2], "--json", fix_json])[0] == 0
+    code, out, err = run(["level", plain, fix_json, "--json", lev_json])
+    assert code == 0, err
+    doc = json.loads(lev_json.read_text())
+    assert doc["calibrated"] is False and "full scale" in doc["units"]
+    assert "dBFS" in out
+
+
+def test_level_refuses_a_result_from_another_site(level_scene, tmp_path):
+    site, _, _ = level_scene
+    other = tmp_path / "other.json"
+    other.write_text(json.dumps({"schema": "tdoa-result/1", "kind": "fix", "fixes": [],
+                                 "mics": [{"name": "Q1"}, {"name": "Q2"}, {"name": "Q3"}]}))
+    code, _, err = run(["level", site, other])
+    assert code == 2 and "mics" in err and len(err.strip().splitlines()) == 1
+
+
+def test_level_refuses_a_result_of_another_schema(level_scene, tmp_path):
+    site, _, _ = level_scene
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps({"schema": "something-else/2"}))
+    code, _, err = run(["level", site, bad])
+    assert code == 2 and "schema" in err
+
+
+def test_plan_proposes_a_mic_and_writes_a_map(level_scene, tmp_path):
+    site, _, _ = level_scene
+    png, doc_path = tmp_path / "plan.png", tmp_path / "plan.json"
+    code, out, err = run(["plan", site, "--timing-sd", "2e-5", "-o", png, "--json", doc_path])
+    assert code == 0, err
+    assert png.stat().st_size > 20_000
+    doc = json.loads(doc_path.read_text())
+    assert doc["kind"] == "plan" and doc["proposals"]
+    assert doc["proposals"][0]["factor"] > 1.0
+    assert "Proposed next mic" in out
+
+
+def test_plan_rejects_a_bad_extent(level_scene):
+    site, _, _ = level_scene
+    code, _, err = run(["plan", site, "--extent", "10:0:0:5"])
+    assert code == 2 and "--extent" in err
