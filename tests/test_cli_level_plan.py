@@ -25,9 +25,8 @@ def level_scene(request, tmp_path_factory):
     sim = simulate_events(ARRAY, [Emission(src, 3.5, wave)], sample_rate_hz=24000.0,
                           duration_s=7.5, temperature_c=15.0, relative_humidity=60.0,
                           noise_rms=2e-4, rng=rng)
-    extra = "".join(f"\n[[mics]]\n" for _ in [])
     site = write_site(folder, ARRAY, sim.signals, 24000.0, temperature_c=15.0, humidity=60.0,
-                      full_scale_pa=P_FULL_SCALE_PA * np.sqrt(2), extra=extra)
+                      full_scale_pa=P_FULL_SCALE_PA * np.sqrt(2))
     text = site.read_text().replace("channel = ", "full_scale_db_spl = 120.0\nchannel = ")
     text += '\n[[receivers]]\nname = "Rook Cottage"\nx = 20.0\ny = 80.0\nz = 1.5\n'
     site.write_text(text)
