@@ -90,12 +90,18 @@ def nice_length(x):
 
 
 def format_length(v):
-    """``12.3`` -> ``'12 m'``-style text: metres from 1 m up, centimetres below."""
+    """A length in metres as short text: ``'12 m'``, ``'3.5 m'``, ``'27 cm'``, ``'4.9 mm'``,
+    ``'49 µm'`` (three significant figures at most)."""
+    v = float(v)
     if v >= 10:
         return f"{v:.0f} m"
     if v >= 1:
         return f"{v:.3g} m"
-    return f"{v * 100:.3g} cm"
+    if v >= 0.01:
+        return f"{v * 1e2:.3g} cm"
+    if v >= 1e-3:
+        return f"{v * 1e3:.3g} mm"
+    return f"{v * 1e6:.3g} µm"
 
 
 def ellipse_half_box(e):

@@ -84,6 +84,11 @@ def time_ticks(ax, lab, ts, pts, pt_per_m, most=6):
                         dist_pt=5, fontsize=7.2, color=PALETTE["track"])
 
 
+def _wrap(text, width=24):
+    """Legend text wrapped at spaces only (mic names often hold hyphens)."""
+    return textwrap.fill(text, width, break_on_hyphens=False, break_long_words=False)
+
+
 def who_text(out, n_shown):
     return ", ".join(nm if n_shown == 1 else f"{nm} (fix {', '.join(map(str, fx))})"
                      for nm, fx in out.items())
@@ -101,11 +106,11 @@ def side_column(fig, ax, result, entries, shown, rejected, dead, have_lines, rec
     if rejected:
         h.append(Line2D([], [], ls="none", marker="^", ms=8, mfc="white",
                         mec=PALETTE["rejected"], mew=1.3,
-                        label=textwrap.fill(f"rejected: {who_text(rejected, len(shown))}", 24)))
+                        label=_wrap(f"rejected: {who_text(rejected, len(shown))}")))
     if dead:
         h.append(Line2D([], [], ls="none", marker="^", ms=8, mfc="white",
                         mec=PALETTE["rejected"], mew=1.0,
-                        label=textwrap.fill(f"no usable signal: {who_text(dead, len(shown))}", 24)))
+                        label=_wrap(f"no usable signal: {who_text(dead, len(shown))}")))
     if rec:
         h.append(Line2D([], [], ls="none", marker="s", ms=6.5, mfc=PALETTE["receiver"],
                         mec=PALETTE["ink"], label="receiver"))
@@ -152,7 +157,7 @@ def listing(result, entries, shown):
                              + unit)
         return "\n".join(lines)
     lines = []
-    for k in shown[:5]:
+    for k in shown[:3]:
         e = entries[k]
         x, y = e["position_m"][:2]
         lines.append(f"fix {k + 1}" + (f" · t {float(e['t_s']):.2f} s" if e["t_s"] is not None
@@ -160,10 +165,11 @@ def listing(result, entries, shown):
         lines.append(f"  x {x:.2f} m, y {y:.2f} m")
         if e["e95"] is not None:
             a, b = e["e95"]["semi_major_m"], e["e95"]["semi_minor_m"]
-            lines.append(f"  95 %: ± {mk.format_length(a)} × ± {mk.format_length(b)}")
+            lines.append("  95 % ellipse half-axes")
+            lines.append(f"  {mk.format_length(a)} × {mk.format_length(b)}")
             lines.append(f"  long axis toward {e['e95']['azimuth_deg']:.0f}°")
-    if len(shown) > 5:
-        lines.append(f"… and {len(shown) - 5} more (see the JSON)")
+    if len(shown) > 3:
+        lines.append(f"… and {len(shown) - 3} more (see the JSON)")
     return "\n".join(lines)
 
 
@@ -181,7 +187,7 @@ def zoom_panel(fig, side, list_bottom, e, k, names, mics, c, wind, file):
         return False
     zax = fig.add_axes([box.x0, top - hgt, w, hgt], label="zoom")
     x, y = e["position_m"][:2]
-    half = max(1.5 * e["e95"]["semi_major_m"], 1e-3)
+    half = max(1.5 * e["e95"]["semi_major_m"], 1e-7)  # the ellipse fills the inset
     zv = (x - half, x + half, y - half, y + half)
     zax.set_xlim(zv[0], zv[1])
     zax.set_ylim(zv[2], zv[3])
@@ -195,7 +201,7 @@ def zoom_panel(fig, side, list_bottom, e, k, names, mics, c, wind, file):
         draw_hyperbolae(zax, e, k, names, mics, c, wind, zv, 161, file, label=False)
     mk.draw_ellipse(zax, (x, y), e["e95"], 0.95, PALETTE["estimate"], gid=f"zoom95:{k + 1}")
     mk.draw_ellipse(zax, (x, y), e["e50"], 0.50, PALETTE["estimate"], gid=f"zoom50:{k + 1}")
-    zax.plot(x, y, "o", ms=5, color=PALETTE["estimate"], mec="white", mew=1.0, zorder=30)
+    zax.plot(x, y, "o", ms=4, color=PALETTE["estimate"], mec="white", mew=0.8, zorder=30)
     mk.scale_bar(zax, zv, "ll", w * fw * 72.0 / (2 * half), fraction=0.3, label_size=7,
                  label="right")
     zax.set_title(f"fix {k + 1}, enlarged", fontsize=7.5, loc="left", pad=2,
