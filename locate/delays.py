@@ -434,8 +434,11 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         (_, _, _, _, seg, lags, inside), _ = phat_peaks(mask)
         curves = []
         step = max(1, int(np.ceil(seg.shape[1] / 1000)))
+        near = int(np.ceil(1e-3 * fs))  # every sample within 1 ms of the delay
         for k in range(n_pairs):
-            sel = np.flatnonzero(inside[k])[::step]
+            idx = np.flatnonzero(inside[k])
+            close = np.abs(lags[idx] - delay[k] * fs) <= near
+            sel = np.union1d(idx[::step], idx[close])
             curves.append({"lags_s": (lags[sel] / fs).tolist(),
                            "correlation": seg[k, sel].astype(float).round(4).tolist()})
     return DelaySet(

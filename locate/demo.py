@@ -41,6 +41,15 @@ def run_demo(ctx, out_dir: Path):
                csv_path=str(out_dir / "yard-fix.csv"), map_path=str(out_dir / "yard-map.png"),
                window_s=None, threshold_db=10.0, panels_path=str(out_dir / "yard-panels.png"),
                no_reject=False)
-    for _name, extra in getattr(cli, "DEMO_STEPS", []):
+    click.echo("== How loud were the bangs, and what reached No. 14?")
+    ctx.invoke(cli.level, site_path=str(yard), result_path=str(out_dir / "yard-fix.json"),
+               fix_no=None, hemisphere=False, json_path=str(out_dir / "yard-level.json"))
+    click.echo("== Where should the recorders stand next time?")
+    ctx.invoke(cli.plan, site_path=str(yard), out_path=str(out_dir / "yard-plan.png"),
+               json_path=str(out_dir / "yard-plan.json"), timing_sd_s=2e-5, band=None,
+               snr_db=None, duration_s=None, grid_step_m=None, extent=None,
+               candidates="auto", region="auto", objective="worst", n_propose=1, dims=2,
+               source_z_m=1.0)
+    for _name, extra in cli.DEMO_STEPS:
         extra(ctx, demo_dir, out_dir)
     click.echo(f"Demo results are in {out_dir}/")

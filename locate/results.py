@@ -149,7 +149,7 @@ def fix_to_dict(fix, delays, mic_names, *, t_s, span_s=None, extra=None) -> dict
     cov = np.asarray(fix.covariance_m2, dtype=float)
     entry = {
         "t_s": float(t_s),
-        "position_m": [round(float(v), 4) for v in fix.position_m],
+        "position_m": [round(float(v), 6) for v in fix.position_m],
         "covariance_m2": cov.tolist(),
         "ellipse95": _rounded(ellipse(cov, 0.95)),
         "ellipse50": _rounded(ellipse(cov, 0.50)),
@@ -167,6 +167,11 @@ def fix_to_dict(fix, delays, mic_names, *, t_s, span_s=None, extra=None) -> dict
         "delays": delays.to_dicts(mic_names),
         "warnings": list(fix.warnings),
     }
+    dropped = {tuple(p) for p in fix.dropped_pairs}
+    used = set(entry["used_mics"])
+    for d in entry["delays"]:
+        a, b = d["mics"]
+        d["used"] = a in used and b in used and (a, b) not in dropped
     if span_s is not None:
         entry["span_s"] = [float(span_s[0]), float(span_s[1])]
     if delays.curves is not None:
