@@ -65,6 +65,8 @@ def make_yard(rng):
                           ground_reflection=0.8, noise_rms=0.002, rng=rng)
     write_audio(HERE / "yard.flac", _to_full_scale(sim.signals), RATE_HZ, subtype="PCM_16")
     extra = "\n".join([
+        "[survey]            # positions taped from the corner post",
+        "position_sd_m = 0.05", "",
         "[[receivers]]", 'name = "No. 14 Brackwater Lane"', "x = 95.0", "y = 70.0", "z = 4.0", "",
         "[[barriers]]", 'label = "yard wall"', "line = [[60.0, -10.0], [80.0, 65.0]]",
         "height_m = 3.0", "",

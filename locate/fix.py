@@ -111,13 +111,22 @@ def predict_delays(source_m, mic_positions_m, pairs, sound_speed_mps, wind_mps=N
     return t[..., pairs[:, 1]] - t[..., pairs[:, 0]]
 
 
-def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VALUE):
+def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VALUE,
+                  details=False):
     """Reduce pair delays to arrival times by generalised least squares.
+
+    Pairs that do not close with the others (an echo or a wrong correlation peak) are dropped
+    one at a time while one of them stands out (its standardised residual is more than four
+    times the median and above 4); a mic is never cut off this way.  A misfit that remains
+    (the pairs disagree across the board, e.g. ground reflections biasing every delay) scales
+    the covariance by the reduced chi-square (Birge ratio, common practice).
 
     Parameters
     ----------
     delays : DelaySet
     n_mics : int
+    details : bool
+        Also return the covariance scale factor applied.
 
     Returns
     -------
@@ -129,24 +138,35 @@ def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VAL
     connected : ndarray of bool, shape (N,)
     dropped : list of int
         Indices of pairs that failed the closure test.
+    inflation : float
+        Only with ``details=True``.
     """
     usable = np.isfinite(np.diag(delays.covariance_s2)) & np.isfinite(delays.delay_s)
     keep = usable.copy()
     dropped = []
+    inflation = 1.0
     while True:
-        idx = np.flatnonzero(keep)
-        result = _closure_fit(delays, idx, n_mics)
+        result = _closure_fit(delays, np.flatnonzero(keep), n_mics)
         if result is None:
-            return (np.full(n_mics, np.nan), np.full((n_mics, n_mics), np.nan),
-                    np.zeros(n_mics, bool), dropped)
-        tau, cov, connected, norm_resid, chi2, dof = result
+            out = (np.full(n_mics, np.nan), np.full((n_mics, n_mics), np.nan),
+                   np.zeros(n_mics, bool), dropped)
+            return out + (inflation,) if details else out
+        tau, cov, connected, norm_resid, chi2, dof, idx = result
         if dof <= 0 or stats.chi2.sf(chi2, dof) >= closure_p_value:
             break
-        worst = idx[int(np.argmax(np.abs(norm_resid)))]
-        # prefer dropping an ambiguous pair if its residual is comparable
-        keep[worst] = False
-        dropped.append(int(worst))
-    return tau, cov, connected, dropped
+        mag = np.abs(norm_resid)
+        k = int(np.argmax(mag))
+        counts = np.bincount(delays.pairs[idx].ravel(), minlength=n_mics)
+        i, j = delays.pairs[idx[k]]
+        outlier = mag[k] > max(4.0, 4.0 * np.median(mag))
+        if not outlier or counts[i] <= 2 or counts[j] <= 2:
+            inflation = chi2 / dof
+            cov = cov * inflation
+            break
+        keep[idx[k]] = False
+        dropped.append(int(idx[k]))
+    out = (tau, cov, connected, dropped)
+    return out + (inflation,) if details else out
 
 
 def _closure_fit(delays, idx, n_mics):
@@ -209,7 +229,7 @@ def _closure_fit(delays, idx, n_mics):
     cov[np.ix_(u, u)] = cov_u
     connected = np.zeros(n_mics, bool)
     connected[mem] = True
-    return tau, cov, connected, norm_resid, chi2, dof
+    return tau, cov, connected, norm_resid, chi2, dof, idx
 
 
 class _Problem:
@@ -420,11 +440,21 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
     names = list(mic_names) if mic_names is not None else [f"M{k + 1}" for k in range(n_mics)]
     if dims not in (2, 3):
         raise ValueError(f"dims must be 2 or 3, got {dims!r}")
+    # Pair consistency is judged on the measurement covariance alone; a misfit there scales the
+    # measurement part only, never the declared survey/clock/air part added after it.
+    tau, cov, connected, dropped, closure = arrival_times(delays, n_mics, details=True)
     if extra_covariance_s2 is not None:
-        delays = DelaySet(**{**delays.__dict__,
-                             "covariance_s2": delays.covariance_s2 + extra_covariance_s2})
-    tau, cov, connected, dropped = arrival_times(delays, n_mics)
+        delays = DelaySet(**{**delays.__dict__, "covariance_s2": delays.covariance_s2 * closure
+                             + np.asarray(extra_covariance_s2, dtype=float)})
+        keep = np.ones(len(delays.pairs), bool)
+        keep[dropped] = False
+        tau, cov, connected, _ = arrival_times(delays.subset(keep), n_mics,
+                                               closure_p_value=0.0)
     warnings = []
+    if closure > 1.0:
+        warnings.append(f"the pair delays disagree with each other beyond their uncertainty "
+                        f"(echoes or reflections?): uncertainties scaled "
+                        f"{np.sqrt(closure):.1f}x")
     dead = [names[k] for k in range(n_mics) if not connected[k]]
     if dead:
         warnings.append("no usable correlation for mic(s) " + ", ".join(dead)
