@@ -369,8 +369,19 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     if start is None:
         raise NothingFoundError("no subsonic straight path fits the directions heard; check "
                                 "--from/--to and --band")
-    start, _ = track_start.polish_path(start, lags, curves, plain_c, plain_w, mics, pairs, c,
-                                       wind_mps, dims=dims, source_z_m=source_z_m, lobe_s=lobe)
+    # candidates: the bearing line and the best cells of a coarse path grid, each polished
+    # from a wide lag tolerance down to the main lobe; the highest final SRP wins
+    cands, cum = track_start.grid_start(lags, curves, plain_c, plain_w, mics, pairs, c,
+                                        wind_mps, dims=dims, source_z_m=source_z_m,
+                                        expected_speed_mps=expected_speed_mps, lobe_s=lobe)
+    best_s = -np.inf
+    for cand in [start] + cands[:3]:
+        pol, val = track_start.polish_path(cand, lags, curves, plain_c, plain_w, mics, pairs,
+                                           c, wind_mps, dims=dims, source_z_m=source_z_m,
+                                           lobe_s=lobe, floors_s=(0.02, 0.005, 0.0),
+                                           maxfev=300, cum=cum)
+        if val > best_s:
+            start, best_s = pol, val
 
     # pass 2..: windows warped along the current path, reference-anchored model
     span = track_delays.emission_span_s(start, centres, window_s, mics[reference_mic], c,
@@ -389,6 +400,7 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     warp = start
     fit = None
     meas = None
+    n_ok = 0
     for k in range(passes + 1):
         tolerant = k == 0
         eps, cov_w, ok_w = track_delays.warped_delays(
@@ -403,10 +415,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                                       - warp.position_m(new.t_emit_s), axis=1))
         meas = (eps, cov_w, ok_w, warp)
         fit, warp = new, new.path
-        resid = np.abs(eps[ok_w]) if ok_w.any() else np.array([max_lag])
-        max_lag = float(np.clip(6.0 * np.percentile(resid, 95), 2e-3, max_lag))
+        # next search: a few times what the new path leaves unexplained, plus two lobes
+        max_lag = float(np.clip(8.0 * fit.residual_rms_s + 2.0 * lobe, 2e-3, max_lag))
         sd = np.sqrt(np.max(np.linalg.eigvalsh(fit.covariance)))
-        if not tolerant and moved < 0.1 * max(sd, 0.01):
+        n_ok, n_ok_prev = (0 if tolerant else int(ok_w.sum())), n_ok
+        if k >= 2 and moved < max(0.5 * sd, 0.05) and n_ok <= 1.02 * n_ok_prev:
             break
     result = describe_fit(fit, mics, c, wind_mps, bearing_from_m=bearing_from_m,
                           points_m=points_m, model=model)

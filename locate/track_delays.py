@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import numpy as np
 from scipy import fft as sfft
+from scipy import signal
 
 from .delays import estimate_delays, geometric_max_lag_s
 from .errors import OptionError
@@ -195,7 +196,9 @@ def gcc_curves(signals, sample_rate_hz, t0_s, centres_s, window_s, pairs, max_la
 def pick_delays(lags_s, curves, max_lag_s, lobe_s):
     """Delay of each curve's peak after the box smoothing that makes it stand out most.
 
-    The curves are smoothed with boxes of 1, 4, 16, 64 and 256 main lobes and the box that
+    The Hilbert envelopes of the curves (scipy.signal.hilbert; a band-pass correlation sums to
+    about zero over wide lags, its envelope does not) are smoothed with boxes of 1, 4, 16, 64
+    and 256 main lobes and the box that
     lifts the peak highest above its curve (in robust standard deviations) is kept: a drifting
     delay spreads its correlation over a plateau and a box of the plateau's width integrates
     it back (a matched filter for a uniform smear).
@@ -212,7 +215,7 @@ def pick_delays(lags_s, curves, max_lag_s, lobe_s):
     lobe = max(1, int(round(lobe_s / dt)))
     n_w, n_p, n_l = curves.shape
     inside = np.abs(lags_s)[None, :] <= np.asarray(max_lag_s, float).reshape(-1)[:, None] + dt / 2
-    r = curves.reshape(n_w * n_p, n_l)
+    r = np.abs(signal.hilbert(curves.reshape(n_w * n_p, n_l).astype(float), axis=-1))
     ins = np.tile(inside, (n_w, 1))
     best = np.full(n_w * n_p, -np.inf)
     d = np.zeros(n_w * n_p)
@@ -301,7 +304,7 @@ def warped_delays(signals, sample_rate_hz, t0_s, centres_s, window_s, path, mic_
         Measured ``t*_j - t*_i`` in the warped time base (to be fitted with ``warp=path``).
     covariance_s2 : ndarray, shape (W, P, P)
     usable : ndarray, shape (W, P) bool
-        Pairs with a 'good' peak.
+        Pairs whose peak is not weak.
     """
     x = np.asarray(signals, float)
     fs = float(sample_rate_hz)
@@ -331,7 +334,8 @@ def warped_delays(signals, sample_rate_hz, t0_s, centres_s, window_s, path, mic_
                                         pairs=pairs, t_s=tc - window_s / 2.0))
         if progress is not None:
             progress(w + 1, len(centres_s))
-    return _collect(sets, len(pairs), ("good",))
+    # a narrow search centred on the prediction: a tonal second peak is no ambiguity here
+    return _collect(sets, len(pairs), ("good", "ambiguous"))
 
 
 def emission_span_s(path, centres_s, window_s, mic_m, sound_speed_mps, wind_mps=None):

@@ -13,14 +13,19 @@ correlation at predicted delays; the SRP of beamforming practice) with two chang
    sum flattens the range); a straight line through the directions by RANSAC (random sample
    consensus, Fischler & Bolles 1981, Comm. ACM 24(6) 381-395) fixes the path up to its scale,
    and the scale is the one with the highest path SRP (step 3's measure).
-3. **Polish**: the path's own SRP - each pair's curve integrated over the interval its
-   predicted delay sweeps during the window - maximised by Nelder-Mead from that line.
+3. **Grid and polish**: the path's own SRP - each pair's envelope integrated over the interval
+   its predicted delay sweeps during the window - over a coarse grid of straight paths
+   (closest-approach time, heading, speed, miss distance, height) with a wide lag tolerance;
+   the bearing line and the best grid paths are polished by Nelder-Mead while the tolerance
+   shrinks to the main lobe (continuation), and the highest SRP wins.  The pair anchor of
+   :mod:`locate.retarded` is approximated to first order here (delay rate times the offset of
+   the pair centre), which is ample for a start.
 """
 
 from __future__ import annotations
 
 import numpy as np
-from scipy import optimize
+from scipy import optimize, signal
 
 from . import air
 from .motion import Path
@@ -61,8 +66,18 @@ def _integrate(cum, lags_s, lo_s, hi_s):
     return at(hi_s) - at(lo_s)
 
 
+def envelope(curves):
+    """Hilbert envelope of correlation curves along the lag axis (scipy.signal.hilbert).
+
+    A band-pass correlation integrates to about zero over more than a period of its lowest
+    frequency, so a smeared peak must be summed as an envelope, not as signed values.
+    """
+    return np.abs(signal.hilbert(np.asarray(curves, float), axis=-1))
+
+
 def _normalised(curves):
-    """Curves minus their median, over their robust sd, and their cumulative sums."""
+    """Envelopes minus their median, over their robust sd: their cumulative sums."""
+    curves = envelope(curves)
     med = np.median(curves, axis=-1, keepdims=True)
     mad = 1.4826 * np.median(np.abs(curves - med), axis=-1, keepdims=True)
     z = (curves - med) / np.maximum(mad, 1e-12)
@@ -101,19 +116,22 @@ def srp_fixes(lags_s, curves, window_s, mic_positions_m, pairs, sound_speed_mps,
     g = air.travel_time_gradient(pts[:, None, :], mics[None], sound_speed_mps, wind_mps)
     d = tt[:, jj] - tt[:, ii]  # (G, P)
     sweep = window_s * expected_speed_mps * np.linalg.norm(g[:, jj] - g[:, ii], axis=-1)
-    half = 0.5 * np.maximum(sweep, lobe_s)
     dt = lags_s[1] - lags_s[0]
-    noise = np.sqrt(2 * half / dt)  # sd of a sum of ~unit-variance lags (lobe-correlated)
     cum = _normalised(curves)  # (W, P, L)
     n_w = curves.shape[0]
     best = np.zeros((n_w, 3))
-    score = np.zeros(n_w)
-    lo_t, hi_t = (d - half).T, (d + half).T  # (P, G)
-    for w in range(n_w):  # loop over windows; grid and pairs vectorised
-        val = _integrate(cum[w], lags_s, lo_t, hi_t) / noise.T  # (P, G)
-        s = val.sum(axis=0)
-        k = int(np.argmax(s))
-        best[w], score[w] = pts[k], s[k]
+    score = np.full(n_w, -np.inf)
+    # the sweep bound assumes motion straight along the steepest delay change; the actual
+    # sweep is usually much smaller, so try fractions of it and keep the best
+    for frac in (0.03, 0.1, 0.3, 1.0):
+        half = 0.5 * np.maximum(frac * sweep, lobe_s)
+        noise = np.sqrt(2 * half / dt)  # sd of a sum of ~unit-variance lags (lobe-correlated)
+        lo_t, hi_t = (d - half).T, (d + half).T  # (P, G)
+        for w in range(n_w):  # loop over windows; grid and pairs vectorised
+            s = (_integrate(cum[w], lags_s, lo_t, hi_t) / noise.T).sum(axis=0)
+            k = int(np.argmax(s))
+            if s[k] > score[w]:
+                best[w], score[w] = pts[k], s[k]
     return best, score
 
 
@@ -229,7 +247,8 @@ def path_srp(path, lags_s, curves, centres_s, window_s, mic_positions_m, pairs, 
                      pairs, sound_speed_mps, wind_mps, lobe_s)
 
 
-def _neg_srp(theta, par, cum, lags_s, c_s, window_s, mics, pairs, c, wind, lobe_s):
+def _neg_srp(theta, par, cum, lags_s, c_s, window_s, mics, pairs, c, wind, lobe_s,
+             floor_s=0.0):
     dt = lags_s[1] - lags_s[0]
     try:
         d0 = predict_delays(par, theta, c_s, mics, pairs, c, wind, anchor="pair",
@@ -238,13 +257,14 @@ def _neg_srp(theta, par, cum, lags_s, c_s, window_s, mics, pairs, c, wind, lobe_
                             anchor="pair", jacobian=False)[0]
     except ValueError:  # supersonic trial path
         return 1e9
-    half = np.maximum(np.abs(d1 - d0), 0.5 * lobe_s)
+    half = np.maximum(np.abs(d1 - d0), max(0.5 * lobe_s, floor_s))
     val = _integrate(cum, lags_s, (d0 - half)[..., None], (d0 + half)[..., None])[..., 0]
     return -float(np.sum(val / np.sqrt(2 * half / dt)))
 
 
 def polish_path(path: Path, lags_s, curves, centres_s, window_s, mic_positions_m, pairs,
-                sound_speed_mps, wind_mps=None, *, dims=2, source_z_m=0.0, lobe_s=1e-3):
+                sound_speed_mps, wind_mps=None, *, dims=2, source_z_m=0.0, lobe_s=1e-3,
+                floors_s=(0.0,), maxfev=800, cum=None):
     """Maximise the path's own SRP (module docstring, step 3) from a straight ``path``.
 
     Returns
@@ -254,43 +274,95 @@ def polish_path(path: Path, lags_s, curves, centres_s, window_s, mic_positions_m
     """
     mics = np.asarray(mic_positions_m, float)
     par = Parametrisation(path.knot_times_s[[0, -1]], dims, source_z_m)
-    cum = _normalised(curves)
-    args = (par, cum, lags_s, np.asarray(centres_s, float), window_s, mics, pairs,
-            sound_speed_mps, wind_mps, lobe_s)
+    cum = _normalised(curves) if cum is None else cum
     theta = par.theta(path)
-    span = np.ptp(theta.reshape(2, dims), axis=0).max() + 1.0
-    simplex = [theta] + [theta + np.eye(theta.size)[k] * 0.05 * span for k in range(theta.size)]
-    sol = optimize.minimize(_neg_srp, theta, args=args, method="Nelder-Mead",
-                            options={"initial_simplex": np.array(simplex), "maxfev": 800,
-                                     "xatol": 0.05, "fatol": 0.1})
-    return par.path(sol.x), -sol.fun
+    value = None
+    kt = par.knot_times_s
+    t_c = np.asarray(centres_s, float)
+    pairs = np.asarray(pairs, int)
+
+    def neg(th, floor):
+        pos = np.full((2, 3), float(source_z_m))
+        pos[:, :dims] = th.reshape(2, dims)
+        v = (pos[1] - pos[0]) / (kt[1] - kt[0])
+        p0 = pos[0] - v * kt[0]
+        return -float(_straight_scores(p0[None], v[None], t_c, cum, lags_s, window_s, mics,
+                                       pairs, sound_speed_mps, wind_mps, floor, lobe_s)[0])
+
+    for k_floor, floor in enumerate(floors_s):  # continuation: wide tolerance first
+        span = np.ptp(theta.reshape(2, dims), axis=0).max() + 1.0
+        step = (0.1 if k_floor == 0 else 0.03) * span
+        simplex = [theta] + [theta + np.eye(theta.size)[k] * step for k in range(theta.size)]
+        sol = optimize.minimize(neg, theta, args=(floor,), method="Nelder-Mead",
+                                options={"initial_simplex": np.array(simplex), "maxfev": maxfev,
+                                         "xatol": 0.05, "fatol": 0.1})
+        theta, value = sol.x, -sol.fun
+    return par.path(theta), value
 
 
-def bend_path(straight: Path, knots_s, t_heard_s, direction, good, origin, mic_positions_m,
-              sound_speed_mps, wind_mps=None, *, dims=2, source_z_m=0.0, reference_mic=0):
-    """A polyline start for a manoeuvring source: the directions heard, at the straight path's
-    ranges, joined by least squares at ``knots_s`` (trimmed twice at 3 robust sd)."""
+def _straight_scores(p0, v, t_c, cum, lags_s, window_s, mics, pairs, c, wind, floor_s, lobe_s):
+    """Path SRP of many straight paths p0 + v t at once (approximate pair anchor), (H,)."""
+    ii, jj = pairs[:, 0], pairs[:, 1]
+    w = np.zeros(3) if wind is None else np.asarray(wind, float)
+    u = v - w  # (H, 3)
+    pos_h = p0[:, None, :] + v[:, None, :] * t_c[None, :, None]  # (H, W, 3) at t_c
+    r = mics[0] - pos_h
+    a = c**2 - np.sum(u * u, axis=-1)[:, None]
+    b = np.einsum("hwi,hi->hw", r, u)
+    r2 = np.sum(r * r, axis=-1)
+    q = np.sqrt(b**2 + a * r2)
+    tau = np.where(b >= 0, (b + q) / a, r2 / np.maximum(q - b, 1e-12))
+    e0 = t_c[None, :] - tau
+    pos = p0[:, None, :] + v[:, None, :] * e0[..., None]
+    arr = e0[..., None] + air.travel_time_s(pos[:, :, None, :], mics, c, wind)  # (H, W, N)
+    g = air.travel_time_gradient(pos[:, :, None, :], mics, c, wind)
+    gv = np.einsum("hwni,hi->hwn", g, v)
+    d = arr[..., jj] - arr[..., ii]
+    rate = (gv[..., jj] - gv[..., ii]) / (1.0 + gv[..., :1])
+    d = d + rate * (t_c[None, :, None] - 0.5 * (arr[..., ii] + arr[..., jj]))
+    half = np.maximum(np.abs(rate) * window_s / 2, max(0.5 * lobe_s, floor_s))
+    dt = lags_s[1] - lags_s[0]
+    n_w, n_p, n_l = cum.shape
+    flat = cum.reshape(-1)
+    base = (np.arange(n_w)[:, None] * n_p + np.arange(n_p)[None, :]) * n_l  # (W, P)
+
+    def at(tt):
+        x = np.clip((tt - lags_s[0]) / dt, 0.0, n_l - 1.0)
+        i = np.minimum(np.floor(x).astype(int), n_l - 2)
+        f = x - i
+        return flat[base + i] * (1 - f) + flat[base + i + 1] * f
+
+    val = (at(d + half) - at(d - half)) / np.sqrt(2 * half / dt)
+    return np.where(a[:, 0] > 0, np.nan_to_num(val.sum(axis=(1, 2)), nan=-np.inf), -np.inf)
+
+
+def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, sound_speed_mps,
+               wind_mps=None, *, dims=2, source_z_m=0.0, expected_speed_mps=20.0, lobe_s=1e-3,
+               floor_s=0.02, keep=6):
+    """Best straight paths of a coarse grid (closest-approach time, heading, speed, miss
+    distance, height) by the path SRP with a wide lag tolerance; returns a list of Paths."""
     mics = np.asarray(mic_positions_m, float)
-    t_h = np.asarray(t_heard_s, float)[good]
-    u = np.asarray(direction, float)[good]
-    t_e = t_h - air.travel_time_s(straight.position_m(t_h), mics[reference_mic],
-                                  sound_speed_mps, wind_mps)
-    rng_m = np.linalg.norm(straight.position_m(t_e) - origin, axis=1)
-    q = origin + rng_m[:, None] * u
-    if dims == 2:
-        q[:, 2] = source_z_m
-    t_e = t_h - air.travel_time_s(q, mics[reference_mic], sound_speed_mps, wind_mps)
-    par = Parametrisation(np.asarray(knots_s, float), dims, source_z_m)
-    b = par.basis(t_e)[:, :dims, :].reshape(-1, par.n_params)
-    y = q[:, :dims].reshape(-1)
-    keep = np.ones(len(t_e), bool)
-    base = par.theta(straight)
-    for _ in range(3):
-        rows = np.repeat(keep, dims)
-        # ridge toward the straight path keeps knots without nearby windows in place
-        a = b[rows].T @ b[rows] + 1e-3 * np.eye(par.n_params)
-        theta = np.linalg.solve(a, b[rows].T @ y[rows] + 1e-3 * base)
-        err = np.linalg.norm((b @ theta - y).reshape(-1, dims), axis=1)
-        mad = 1.4826 * np.median(err[keep]) + 1e-9
-        keep = err < 3.0 * mad
-    return par.path(theta)
+    pairs = np.asarray(pairs, int)
+    t_c = np.asarray(centres_s, float)
+    cum = _normalised(curves)
+    centre = mics.mean(axis=0)
+    ap = max(float(np.max(np.linalg.norm(mics - centre, axis=1))), 1.0)
+    t_cpa = np.linspace(t_c[0], t_c[-1], 9)
+    heading = np.deg2rad(np.arange(0.0, 360.0, 15.0))
+    speed = expected_speed_mps * np.array([0.6, 1.0, 1.6])
+    miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
+    height = [source_z_m] if dims == 2 else list(centre[2] + ap * np.array([0.5, 1.2, 2.5]))
+    g = np.array(np.meshgrid(t_cpa, heading, speed, miss, height, indexing="ij")).reshape(5, -1)
+    d_hat = np.stack([np.sin(g[1]), np.cos(g[1]), 0 * g[1]], -1)
+    n_hat = np.stack([np.cos(g[1]), -np.sin(g[1]), 0 * g[1]], -1)
+    cpa = centre + g[3][:, None] * n_hat
+    cpa[:, 2] = g[4]
+    vel = g[2][:, None] * d_hat
+    p0 = cpa - vel * g[0][:, None]  # position at t = 0
+    scores = np.concatenate([
+        _straight_scores(p0[k:k + 400], vel[k:k + 400], t_c, cum, lags_s, window_s, mics, pairs,
+                         sound_speed_mps, wind_mps, floor_s, lobe_s)
+        for k in range(0, len(p0), 400)])
+    best = np.argsort(-scores)[:keep]
+    knots = np.array([t_c[0], t_c[-1]])
+    return [Path(knots, p0[k] + knots[:, None] * vel[k]) for k in best], cum
