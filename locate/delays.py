@@ -487,7 +487,7 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
         for k in np.flatnonzero(ok):
             log_sig[ii[k]] = log_cross[k]
             log_sig[jj[k]] = log_cross[k]
-    with np.errstate(invalid="ignore", over="ignore"):
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         a = s_auto[:, bins] / np.exp(log_sig) - 1.0
     # Floor the per-mic ratio at the value that reproduces each pair's own coherence if all
     # noise were in one channel; keeps the model consistent with the measured coherence.
