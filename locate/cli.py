@@ -583,6 +583,26 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
     return report
 
 
+# ----------------------------------------------------------------------------- report
+
+@cli.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.argument("result_paths", metavar="RESULT.json...", nargs=-1, required=True,
+                type=click.Path())
+@click.option("-o", "--output", "out_path", required=True, type=click.Path(dir_okay=False),
+              help="report.html (one self-contained page) or report.pdf (needs Chromium).")
+@click.option("--title", default=None, help="Report title (default: the site's title).")
+@click.pass_context
+def report(ctx, site_path, result_paths, out_path, title):
+    """A survey report for a client: set-up, maps, results, levels, methods and cautions,
+    from the site file and its fix, track and level results."""
+    from locate.report import make_report
+
+    path = make_report(site_path, list(result_paths), out_path, title=title)
+    echo(ctx, f"Report written to {path}")
+    return path
+
+
 # ----------------------------------------------------------------------------- entry point
 
 def main(argv=None):
