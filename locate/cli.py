@@ -17,7 +17,10 @@ import numpy as np
 from locate import __version__
 from locate.errors import NothingFoundError, OptionError, TdoaError
 
-__all__ = ["cli", "main"]
+__all__ = ["cli", "main", "DEMO_STEPS"]
+
+DEMO_STEPS: list = []
+"""(name, callable(ctx, demo_dir, out_dir)) steps that ``tdoa demo`` runs after the fix."""
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -275,6 +278,9 @@ def _print_fixes(ctx, site, cond, result):
                   f"(half-axes), long axis toward {e['azimuth_deg']:.0f} deg; timing residual "
                   f"{f['residual_rms_s'] * 1e6:.1f} us; mics used {' '.join(f['used_mics'])}"
                   + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
+        if f.get("uncertainty_budget"):
+            from locate.budget import budget_summary
+            echo(ctx, "   " + budget_summary(f["uncertainty_budget"]))
         for w in f["warnings"]:
             warn(f"#{k}: {w}")
 
@@ -602,6 +608,12 @@ def report(ctx, site_path, result_paths, out_path, title):
     echo(ctx, f"Report written to {path}")
     return path
 
+
+# Commands defined in their own modules register themselves on the group when imported.
+from locate import cli_maps  # noqa: E402,F401
+from locate.report import report_demo_step  # noqa: E402
+
+DEMO_STEPS.append(("report", report_demo_step))
 
 # ----------------------------------------------------------------------------- entry point
 
