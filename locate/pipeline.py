@@ -145,10 +145,17 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     if weak:
         warnings.append("weak correlation for pair(s) " + ", ".join(weak))
     if amb:
-        warnings.append("ambiguous correlation (several near-equal peaks; a periodic or tonal "
-                        "sound?) for pair(s) " + ", ".join(amb)
+        warnings.append("ambiguous correlation (several near-equal peaks: a tonal sound or a "
+                        "strong echo?) for pair(s) " + ", ".join(amb)
                         + ": a broadband part of the sound or a --band around it would help")
-    extra = None if extra_covariance is None else extra_covariance(delays, cond)
+    from locate.budget import declared_sds, extra_covariance_hook, uncertainty_budget
+
+    sds = declared_sds(site)
+    if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
+        extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
+                                                 source_z_m=source_z_m, reject=reject,
+                                                 mic_names=names)
+    extra = extra_covariance(delays, cond)
     fix = locate_source(positions, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
                         dims=dims, source_z_m=source_z_m, reject=reject, mic_names=names,
                         extra_covariance_s2=extra)
@@ -158,6 +165,9 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     warnings.extend(fix.warnings)
     entry = fix_to_dict(fix, delays, names, t_s=start_s if t_s is None else t_s,
                         span_s=(start_s, stop_s))
+    entry["uncertainty_budget"] = uncertainty_budget(
+        fix, delays, positions, cond.sound_speed_mps, sds=sds, wind_mps=cond.wind_mps,
+        mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
     return entry, fix, delays, entry["warnings"]
 

@@ -17,6 +17,7 @@ north (+y) toward east (+x); ``speed_mps`` is the 3-D speed.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -269,6 +270,12 @@ def _check_inputs(signals, fs, mics, dims, model, sound_speed_mps):
     return x
 
 
+def overlap_factor(window_s, hop_s):
+    """Variance factor for estimates built from windows overlapping by ``window - hop``."""
+    k = np.arange(1, int(np.ceil(window_s / hop_s)) + 1)
+    return float(1.0 + 2.0 * np.sum(np.clip(1.0 - k * hop_s / window_s, 0.0, None)))
+
+
 def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *, t0_s=0.0,
                     window_s=None, hop_s=None, band_hz=None, dims=2, source_z_m=0.0,
                     wind_mps=None, model="straight", segment_s=None, expected_speed_mps=20.0,
@@ -421,6 +428,14 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         n_ok, n_ok_prev = (0 if tolerant else int(ok_w.sum())), n_ok
         if k >= 2 and moved < max(0.5 * sd, 0.05) and n_ok <= 1.02 * n_ok_prev:
             break
+    # Overlapping windows share samples, so their delay errors are correlated (for a
+    # rectangular window the correlation of windows k hops apart is 1 - k hop / window); the
+    # fit treats windows as independent.  Scale the path covariance by the long-run variance
+    # factor 1 + 2 sum_k max(0, 1 - k hop / window) of such a sequence (common practice for
+    # averages of overlapping segments).
+    fit = dataclasses.replace(fit, covariance=fit.covariance * overlap_factor(window_s, hop_s),
+                              covariance_scale=fit.covariance_scale
+                              * overlap_factor(window_s, hop_s))
     result = describe_fit(fit, mics, c, wind_mps, bearing_from_m=bearing_from_m,
                           points_m=points_m, model=model)
     eps, cov_w, ok_w, warp_used = meas
