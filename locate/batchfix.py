@@ -1,0 +1,429 @@
+"""Many stationary fixes at once: the locator of :mod:`locate.fix`, vectorised over delay sets.
+
+For W delay sets of the same mics and pairs (e.g. the sliding windows of
+:func:`locate.delays_windows.estimate_delays_windows`) the steps of
+:func:`locate.fix.locate_source` run as array operations over the sets:
+
+1. **Arrival times** by generalised least squares from the pair delays (batched Cholesky
+   factors), with the same closure test: sets whose pairs close keep their covariance; sets
+   whose misfit has no single stand-out pair have it scaled by the reduced chi-square (Birge
+   ratio, common practice); sets with a stand-out pair are handed to ``locate_source``, which
+   drops it.
+2. **Start** - the spherical-interpolation linear solution (first stage of Chan & Ho 1994,
+   IEEE Trans. SP 42(8)), batched normal equations.
+3. **Refine** - Gauss-Newton with Levenberg-Marquardt damping on the whitened arrival-time
+   residuals (Foy 1976, IEEE Trans. AES 12(2)), every set with its own damping, then two
+   undamped Gauss-Newton polishing steps; covariance (J^T Q^-1 J)^-1 at the solution.
+4. **Integrity** - the chi-square test of :mod:`locate.fix`.  Sets that fail it, that did not
+   converge, or whose start was unusable go through ``locate_source`` (mic exclusion, grid
+   starts for mirror geometries) when ``fallback`` is true: the answers are then those of the
+   single-set locator for every set, and only the unusual ones cost a Python-level call.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from locate.air import travel_time_gradient, travel_time_s
+from locate.delays import DelaySet, all_pairs
+from locate.errors import TdoaError
+from locate.fix import REJECT_P_VALUE, locate_source
+
+__all__ = ["BatchFix", "locate_batch"]
+
+
+@dataclass
+class BatchFix:
+    """Positions of W delay sets.
+
+    Attributes
+    ----------
+    position_m : ndarray, shape (W, 3)
+        NaN where no fix was possible.
+    covariance_m2 : ndarray, shape (W, 3, 3)
+        Zero z row and column for 2-D fixes.
+    chi2 : ndarray, shape (W,)
+    dof : ndarray of int, shape (W,)
+    p_value : ndarray, shape (W,)
+    converged : ndarray of bool, shape (W,)
+    residual_rms_s : ndarray, shape (W,)
+    closure_inflation : ndarray, shape (W,)
+        Scale applied to the arrival-time covariance by the closure test (1: none).
+    rejected : ndarray of bool, shape (W, N)
+        Mics excluded by the integrity test.
+    single : ndarray of bool, shape (W,)
+        Sets solved by :func:`locate.fix.locate_source` (a pair that does not close, no
+        convergence, singular geometry).
+    fixes : dict
+        The :class:`locate.fix.Fix` of each such set, by index.
+    """
+
+    position_m: np.ndarray
+    covariance_m2: np.ndarray
+    chi2: np.ndarray
+    dof: np.ndarray
+    p_value: np.ndarray
+    converged: np.ndarray
+    residual_rms_s: np.ndarray
+    closure_inflation: np.ndarray
+    rejected: np.ndarray
+    single: np.ndarray
+    fixes: dict
+
+
+def _design(pairs, n_mics):
+    """Pair delays from arrival times relative to mic 0: (P, N - 1)."""
+    a = np.zeros((len(pairs), n_mics - 1))
+    for r, (i, j) in enumerate(pairs):
+        if j:
+            a[r, j - 1] += 1.0
+        if i:
+            a[r, i - 1] -= 1.0
+    return a
+
+
+def _arrival_times(d, q, a):
+    """Batched GLS: tau (W, N-1), cov (W, N-1, N-1), chi2, standardised residuals (W, P)."""
+    q = 0.5 * (q + np.swapaxes(q, -1, -2))
+    chol = np.linalg.cholesky(q)
+    rhs = np.concatenate([np.broadcast_to(a, (len(d),) + a.shape), d[..., None]], axis=-1)
+    sol = np.linalg.solve(chol, rhs)  # whitened design and delays
+    aw, dw = sol[..., :-1], sol[..., -1]
+    info = np.swapaxes(aw, 1, 2) @ aw
+    cov = np.linalg.inv(info)
+    tau = (cov @ (np.swapaxes(aw, 1, 2) @ dw[..., None]))[..., 0]
+    resid = dw - (aw @ tau[..., None])[..., 0]
+    chi2 = np.sum(resid**2, axis=-1)
+    hat = np.sum((aw @ cov) * aw, axis=-1)
+    norm_resid = resid / np.sqrt(np.clip(1.0 - hat, 1e-9, None))
+    return tau, cov, chi2, norm_resid
+
+
+class _Model:
+    """Arrival-time differences to each set's first mic, whitened by the set's covariance.
+
+    ``mics`` (S, M, 3) are the mics of every set (the first is the reference), ``z`` (S, M-1)
+    the measured arrival times relative to it and ``cov`` (S, M-1, M-1) their covariance.
+    """
+
+    def __init__(self, mics, z, cov, c, wind, dims, source_z_m):
+        self.mics, self.z, self.c, self.wind = mics, z, c, wind
+        self.dims, self.source_z_m = dims, source_z_m
+        cz = 0.5 * (cov + np.swapaxes(cov, 1, 2))
+        self.winv = np.linalg.inv(np.linalg.cholesky(cz + np.eye(cz.shape[-1]) * 1e-30))
+
+    def point(self, x):
+        if self.dims == 2:
+            return np.concatenate([x, np.full(x.shape[:-1] + (1,), self.source_z_m)], -1)
+        return x
+
+    def plain_residual(self, x, sel=slice(None)):
+        t = travel_time_s(self.point(x)[:, None, :], self.mics[sel], self.c, self.wind)
+        return self.z[sel] - (t[:, 1:] - t[:, :1])
+
+    def residual(self, x, sel=slice(None)):
+        return (self.winv[sel] @ self.plain_residual(x, sel)[..., None])[..., 0]
+
+    def jacobian(self, x, sel=slice(None)):
+        g = travel_time_gradient(self.point(x)[:, None, :], self.mics[sel], self.c, self.wind)
+        jac = (g[:, 1:] - g[:, :1])[..., : self.dims]
+        return self.winv[sel] @ jac
+
+
+def _closed_form(mics, z, c, dims, source_z_m):
+    """Spherical-interpolation start of every set (still air, its first mic as origin)."""
+    m0 = mics[:, 0]
+    mi = mics[:, 1:] - m0[:, None]
+    r = c * z  # (S, M-1) range differences
+    if dims == 2:
+        zrel = source_z_m - m0[:, 2]
+        a = np.concatenate([-2 * mi[..., :2], -2 * r[..., None]], axis=-1)
+        b = r**2 - np.sum(mi**2, axis=-1) + 2 * mi[..., 2] * zrel[:, None]
+    else:
+        a = np.concatenate([-2 * mi, -2 * r[..., None]], axis=-1)
+        b = r**2 - np.sum(mi**2, axis=-1)
+    ata = np.swapaxes(a, 1, 2) @ a
+    atb = (np.swapaxes(a, 1, 2) @ b[..., None])[..., 0]
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(ata).all(axis=(1, 2)) & (np.abs(np.linalg.det(ata)) > 0)
+    sol = np.full(atb.shape, np.nan)
+    if ok.any():
+        sol[ok] = np.linalg.solve(ata[ok], atb[ok][..., None])[..., 0]
+    return sol[:, :dims] + m0[:, :dims]
+
+
+def _solve(mics, z, cov, c, wind, dims, source_z_m):
+    """Closed-form start and LM for every set: (model, x, chi2, converged, bad_start)."""
+    model = _Model(mics, z, cov, c, wind, dims, source_z_m)
+    x0 = _closed_form(mics, z, c, dims, source_z_m)
+    bad = ~np.isfinite(x0).all(axis=1)
+    x0[bad] = mics[bad].mean(axis=1)[:, :dims]
+    x, chi2, conv = _levenberg_marquardt(model, x0)
+    return model, x, chi2, conv, bad
+
+
+def _subsets(tau, cov, used):
+    """Arrival-time problem of every set on its mics ``used`` (S, M): z (S, M-1), cov."""
+    rows = np.arange(len(used))[:, None]
+    ref, rest = used[:, :1], used[:, 1:]
+    z = tau[rows, rest] - tau[rows, ref]
+    c_rr = cov[rows[..., None], rest[:, :, None], rest[:, None, :]]
+    c_r0 = cov[rows, rest, ref]  # (S, M-1)
+    c_00 = cov[rows, ref, ref]  # (S, 1)
+    cz = c_rr - c_r0[:, :, None] - c_r0[:, None, :] + c_00[:, :, None]
+    return z, cz
+
+
+def _levenberg_marquardt(model, x, max_iter=60):
+    """Every set's own Levenberg-Marquardt run, as :func:`locate.fix._refine`."""
+    n_w = x.shape[0]
+    r = model.residual(x)
+    chi2 = np.sum(r**2, axis=-1)
+    lam = np.full(n_w, 1e-3)
+    active = np.isfinite(chi2)
+    converged = np.zeros(n_w, bool)
+    for _ in range(max_iter):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        jw = model.jacobian(x[idx], idx)
+        jtj = np.swapaxes(jw, 1, 2) @ jw
+        g = np.einsum("wpk,wp->wk", jw, r[idx])
+        scale2 = np.clip(np.diagonal(jtj, axis1=1, axis2=2), 1e-30, None)
+        improved = np.zeros(idx.size, bool)
+        xn, rn, chi2n = x[idx].copy(), r[idx].copy(), chi2[idx].copy()
+        trying = np.ones(idx.size, bool)
+        for _ in range(30):  # raise the damping of the sets that went uphill
+            t = np.flatnonzero(trying)
+            if t.size == 0:
+                break
+            a = jtj[t] + lam[idx[t], None, None] * (np.eye(scale2.shape[1]) * scale2[t, None])
+            step = np.linalg.solve(a, g[t][..., None])[..., 0]
+            x_try = x[idx[t]] + step
+            r_try = model.residual(x_try, idx[t])
+            c_try = np.sum(r_try**2, axis=-1)
+            ok = np.isfinite(c_try) & (c_try <= chi2[idx[t]])
+            good = t[ok]
+            xn[good], rn[good], chi2n[good] = x_try[ok], r_try[ok], c_try[ok]
+            improved[good] = True
+            trying[good] = False
+            lam[idx[t[~ok]]] *= 10.0
+        stuck = idx[~improved]  # no downhill step: at a minimum to numerical precision
+        converged[stuck] = True
+        active[stuck] = False
+        up = np.flatnonzero(improved)
+        iu = idx[up]
+        small = (np.linalg.norm(xn[up] - x[iu], axis=1)
+                 <= 1e-9 * (1.0 + np.linalg.norm(x[iu], axis=1)))
+        dchi = chi2[iu] - chi2n[up]
+        x[iu], r[iu], chi2[iu] = xn[up], rn[up], chi2n[up]
+        lam[iu] = np.maximum(lam[iu] / 10.0, 1e-12)
+        done = small | (dchi <= 1e-10 * (1.0 + chi2[iu]))
+        converged[iu[done]] = True
+        active[iu[done]] = False
+    for _ in range(2):  # undamped polish: the exact minimum to rounding
+        jw = model.jacobian(x)
+        jtj = np.swapaxes(jw, 1, 2) @ jw
+        g = np.einsum("wpk,wp->wk", jw, r)
+        ok = np.isfinite(g).all(axis=1) & (np.abs(np.linalg.det(jtj)) > 0)
+        if ok.any():
+            step = np.linalg.solve(jtj[ok], g[ok][..., None])[..., 0]
+            xt = x[ok] + step
+            rt = model.residual(xt, np.flatnonzero(ok))
+            ct = np.sum(rt**2, axis=-1)
+            better = ct <= chi2[ok]
+            sel = np.flatnonzero(ok)[better]
+            x[sel], r[sel], chi2[sel] = xt[better], rt[better], ct[better]
+    return x, chi2, converged
+
+
+def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, pairs=None,
+                 wind_mps=None, dims=2, source_z_m=0.0, reject=True, fallback=True,
+                 reject_p_value=REJECT_P_VALUE) -> BatchFix:
+    """Locate a stationary source for each of W delay sets.
+
+    Parameters
+    ----------
+    mic_positions_m : array_like, shape (N, 3)
+    delays_s : array_like, shape (W, P)
+        Pair delays t_j - t_i of every set.
+    covariance_s2 : array_like, shape (W, P, P) or (P, P)
+        Their covariance (one per set, or shared).
+    sound_speed_mps : float
+    pairs : array_like, shape (P, 2), optional
+        Default: all pairs i < j.  Every mic must be in some pair.
+    wind_mps : array_like, shape (3,), optional
+    dims : {2, 3}
+    source_z_m : float
+        Source height of 2-D fixes.
+    reject : bool
+        Integrity test with mic exclusion (through ``locate_source``) for the sets that fail.
+    fallback : bool
+        Hand unusual sets (closure outlier, integrity failure, no convergence) to
+        :func:`locate.fix.locate_source`; otherwise they keep the batched answer (flagged by
+        their p-value and ``converged``).
+    reject_p_value : float
+
+    Returns
+    -------
+    BatchFix
+    """
+    mics = np.asarray(mic_positions_m, dtype=float)
+    n_mics = len(mics)
+    if dims not in (2, 3):
+        raise ValueError(f"dims must be 2 or 3, got {dims!r}")
+    pairs = all_pairs(n_mics) if pairs is None else np.asarray(pairs, int).reshape(-1, 2)
+    d = np.atleast_2d(np.asarray(delays_s, dtype=float))
+    n_w, n_p = d.shape
+    if n_p != len(pairs):
+        raise ValueError(f"delays_s has {n_p} pairs per set, pairs has {len(pairs)}")
+    q = np.broadcast_to(np.asarray(covariance_s2, dtype=float), (n_w, n_p, n_p))
+    if len(np.unique(pairs)) != n_mics:
+        raise ValueError("every mic must appear in at least one pair")
+    need = dims + 1
+    if n_mics < need:
+        raise ValueError(f"a {dims}-D fix needs at least {need} mics, got {n_mics}")
+    finite = np.isfinite(d).all(axis=1) & np.isfinite(q).all(axis=(1, 2))
+    single = ~finite
+    a = _design(pairs, n_mics)
+    tau = np.zeros((n_w, n_mics - 1))
+    cov_u = np.tile(np.eye(n_mics - 1), (n_w, 1, 1))
+    chi2_c = np.zeros(n_w)
+    inflation = np.ones(n_w)
+    ok = np.flatnonzero(finite)
+    if ok.size:
+        t, cu, c2, nr = _arrival_times(d[ok], q[ok], a)
+        tau[ok], cov_u[ok], chi2_c[ok] = t, cu, c2
+        dof_c = n_p - (n_mics - 1)
+        if dof_c > 0:
+            fail = stats.chi2.sf(c2, dof_c) < REJECT_P_VALUE
+            mag = np.abs(nr)
+            outlier = mag.max(axis=1) > np.maximum(4.0, 4.0 * np.median(mag, axis=1))
+            counts = np.bincount(pairs.ravel(), minlength=n_mics)
+            k = np.argmax(mag, axis=1)
+            thin = (counts[pairs[k, 0]] <= 2) | (counts[pairs[k, 1]] <= 2)
+            drop = fail & outlier & ~thin  # locate_source drops that pair: hand it over
+            scale = fail & ~drop
+            inflation[ok[scale]] = c2[scale] / dof_c
+            cov_u[ok[scale]] *= (c2[scale] / dof_c)[:, None, None]
+            single[ok[drop]] = True
+    c, wind = float(sound_speed_mps), None if wind_mps is None else np.asarray(wind_mps, float)
+    tau_f = np.zeros((n_w, n_mics))
+    tau_f[:, 1:] = tau
+    cov_f = np.zeros((n_w, n_mics, n_mics))
+    cov_f[:, 1:, 1:] = cov_u
+    used = np.tile(np.arange(n_mics), (n_w, 1))
+    z, cz = _subsets(tau_f, cov_f, used)
+    _, x, chi2, converged, bad_start = _solve(mics[used], z, cz, c, wind, dims, source_z_m)
+    dof = np.full(n_w, n_mics - 1 - dims)
+    p_value = np.where(dof > 0, stats.chi2.sf(chi2, np.maximum(dof, 1)), 1.0)
+    rejected = np.zeros((n_w, n_mics), bool)
+    if reject:
+        _exclude(used, rejected, x, chi2, dof, p_value, tau_f, cov_f, mics, c, wind, dims,
+                 source_z_m, reject_p_value, ~single & converged)
+    position = np.full((n_w, 3), np.nan)
+    covp = np.full((n_w, 3, 3), np.inf)
+    covp[:, :, dims:] = 0.0
+    covp[:, dims:, :] = 0.0
+    rms = np.full(n_w, np.nan)
+    n_used = np.where(rejected, 0, 1).sum(axis=1)
+    fine = np.zeros(n_w, bool)
+    for m in np.unique(n_used):  # one group per number of mics kept
+        g = np.flatnonzero(n_used == m)
+        keep = np.sort(np.where(rejected[g], n_mics, np.arange(n_mics)), axis=1)[:, :m]
+        zg, czg = _subsets(tau_f[g], cov_f[g], keep)
+        model = _Model(mics[keep], zg, czg, c, wind, dims, source_z_m)
+        jw = model.jacobian(x[g])
+        info = np.swapaxes(jw, 1, 2) @ jw
+        ok = np.isfinite(info).all(axis=(1, 2)) & (np.abs(np.linalg.det(info)) > 0)
+        covp[g[ok], :dims, :dims] = np.linalg.inv(info[ok])
+        fine[g[ok]] = True
+        position[g] = model.point(x[g])
+        rms[g] = np.sqrt(np.mean(model.plain_residual(x[g]) ** 2, axis=1))
+    misfit = (dof > 0) & (p_value < reject_p_value)
+    birge = misfit & fine  # no exclusion restores consistency: Birge ratio, as locate_source
+    covp[birge] *= (chi2[birge] / dof[birge])[:, None, None]
+    single |= ~converged | bad_start | ~fine
+    out = BatchFix(position_m=position, covariance_m2=covp, chi2=chi2, dof=dof,
+                   p_value=p_value, converged=converged, residual_rms_s=rms,
+                   closure_inflation=inflation, rejected=rejected, single=single, fixes={})
+    if fallback:
+        _single_sets(out, mics, pairs, d, q, sound_speed_mps, wind_mps, dims, source_z_m,
+                     reject, reject_p_value)
+    return out
+
+
+def _exclude(used, rejected, x, chi2, dof, p_value, tau, cov, mics, c, wind, dims, source_z_m,
+             p_reject, eligible):
+    """Fault detection and exclusion of :func:`locate.fix.locate_source`, over many sets.
+
+    While a set fails the chi-square test and keeps more than dims + 2 mics, the mic whose
+    exclusion gives the best p-value is dropped; the exclusions are kept only if the set then
+    passes.  Updates ``rejected``, ``x``, ``chi2``, ``dof`` and ``p_value`` in place.
+    """
+    n_w, n_mics = used.shape
+    need = dims + 1
+    idx = np.flatnonzero(eligible & (dof > 0) & (p_value < p_reject))
+    if idx.size == 0:
+        return
+    cur = used[idx].copy()
+    st_x, st_chi2 = x[idx].copy(), chi2[idx].copy()
+    st_dof, st_p = dof[idx].copy(), p_value[idx].copy()
+    dropped = np.zeros((idx.size, n_mics), bool)
+    active = np.ones(idx.size, bool)
+    while True:
+        m = cur.shape[1]
+        active &= (st_dof > 0) & (st_p < p_reject) & (m > need + 1)
+        a = np.flatnonzero(active)
+        if a.size == 0:
+            break
+        cols = np.array([[j for j in range(m) if j != k] for k in range(m)])  # (m, m-1)
+        trial = cur[a][:, cols].reshape(-1, m - 1)  # every exclusion of every active set
+        zt, czt = _subsets(tau[idx[a]].repeat(m, axis=0), cov[idx[a]].repeat(m, axis=0), trial)
+        _, xt, ct, _, _ = _solve(mics[trial], zt, czt, c, wind, dims, source_z_m)
+        dt = m - 2 - dims
+        pt = (stats.chi2.sf(ct, dt) if dt > 0 else np.ones_like(ct)).reshape(a.size, m)
+        ct = ct.reshape(a.size, m)
+        best = np.argmax(np.where(np.isfinite(ct), pt, -1.0), axis=1)
+        r = np.arange(a.size)
+        dropped[a, cur[a, best]] = True
+        new = np.empty((idx.size, m - 1), int)
+        new[a] = cur[a][r[:, None], cols[best]]
+        inactive = np.flatnonzero(~active)
+        new[inactive] = cur[inactive, : m - 1]  # placeholder rows, never used again
+        cur = new
+        st_x[a] = xt.reshape(a.size, m, -1)[r, best]
+        st_chi2[a], st_p[a], st_dof[a] = ct[r, best], pt[r, best], dt
+    accept = dropped.any(axis=1) & ((st_dof == 0) | (st_p >= p_reject))
+    g = idx[accept]
+    rejected[g] = dropped[accept]
+    x[g], chi2[g], dof[g], p_value[g] = st_x[accept], st_chi2[accept], st_dof[accept], \
+        np.where(st_dof[accept] > 0, st_p[accept], 1.0)
+
+
+def _single_sets(out, mics, pairs, d, q, c, wind, dims, source_z_m, reject, p_reject):
+    """Solve the flagged sets one by one with :func:`locate.fix.locate_source`."""
+    n_p = len(pairs)
+    for w in np.flatnonzero(out.single):  # only the unusual sets: loop unavoidable
+        ds = DelaySet(pairs=pairs, delay_s=d[w], sd_s=np.sqrt(np.abs(np.diag(q[w]))),
+                      covariance_s2=q[w], peak=np.ones(n_p), score=np.full(n_p, np.inf),
+                      second_ratio=np.zeros(n_p), quality=("good",) * n_p, t_s=0.0,
+                      duration_s=0.0, band_hz=(0.0, 0.0), sample_rate_hz=0.0,
+                      max_lag_s=np.full(n_p, np.inf))
+        try:
+            fx = locate_source(mics, ds, c, wind_mps=wind, dims=dims, source_z_m=source_z_m,
+                               reject=reject, reject_p_value=p_reject)
+        except TdoaError:
+            out.position_m[w] = np.nan
+            out.covariance_m2[w] = np.nan
+            out.converged[w] = False
+            continue
+        out.fixes[int(w)] = fx
+        out.position_m[w] = fx.position_m
+        out.covariance_m2[w] = fx.covariance_m2
+        out.chi2[w], out.dof[w], out.p_value[w] = fx.chi2, fx.dof, fx.p_value
+        out.converged[w] = fx.converged
+        out.residual_rms_s[w] = fx.residual_rms_s
