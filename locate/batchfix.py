@@ -14,10 +14,12 @@ For W delay sets of the same mics and pairs (e.g. the sliding windows of
 3. **Refine** - Gauss-Newton with Levenberg-Marquardt damping on the whitened arrival-time
    residuals (Foy 1976, IEEE Trans. AES 12(2)), every set with its own damping, then two
    undamped Gauss-Newton polishing steps; covariance (J^T Q^-1 J)^-1 at the solution.
-4. **Integrity** - the chi-square test of :mod:`locate.fix`.  Sets that fail it, that did not
-   converge, or whose start was unusable go through ``locate_source`` (mic exclusion, grid
-   starts for mirror geometries) when ``fallback`` is true: the answers are then those of the
-   single-set locator for every set, and only the unusual ones cost a Python-level call.
+4. **Integrity** - the chi-square test of :mod:`locate.fix` and its fault exclusion (the mic
+   whose exclusion best restores consistency, one at a time), batched over the failing sets.
+5. **Checks** - the ellipse-linearity check of :mod:`locate.fix_checks`, batched.  Sets far
+   outside the array (its far-field test), sets that did not converge, whose start was
+   unusable or whose geometry is singular go through ``locate_source`` when ``fallback`` is
+   true.  Mirror solutions (a second minimum) are not searched for.
 """
 
 from __future__ import annotations
@@ -31,6 +33,7 @@ from locate.air import travel_time_gradient, travel_time_s
 from locate.delays import DelaySet, all_pairs
 from locate.errors import TdoaError
 from locate.fix import REJECT_P_VALUE, locate_source
+from locate.fix_checks import _MAX_ENLARGE, FAR_RATIO, LINEARITY_RATIO
 
 __all__ = ["BatchFix", "locate_batch"]
 
@@ -346,7 +349,19 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
     misfit = (dof > 0) & (p_value < reject_p_value)
     birge = misfit & fine  # no exclusion restores consistency: Birge ratio, as locate_source
     covp[birge] *= (chi2[birge] / dof[birge])[:, None, None]
-    single |= ~converged | bad_start | ~fine
+    inflation_p = np.where(birge, chi2 / np.maximum(dof, 1), 1.0)
+    far = np.zeros(n_w, bool)
+    for m in np.unique(n_used):  # the checks of locate.fix_checks, batched
+        g = np.flatnonzero((n_used == m) & fine)
+        if g.size == 0:
+            continue
+        keep = np.sort(np.where(rejected[g], n_mics, np.arange(n_mics)), axis=1)[:, :m]
+        zg, czg = _subsets(tau_f[g], cov_f[g], keep)
+        model = _Model(mics[keep], zg, czg, c, wind, dims, source_z_m)
+        far[g], factor = _checks(model, mics[keep], x[g], chi2[g],
+                                 covp[g, :dims, :dims], inflation_p[g], dims)
+        covp[g] *= factor[:, None, None]
+    single |= ~converged | bad_start | ~fine | far
     out = BatchFix(position_m=position, covariance_m2=covp, chi2=chi2, dof=dof,
                    p_value=p_value, converged=converged, residual_rms_s=rms,
                    closure_inflation=inflation, rejected=rejected, single=single, fixes={})
@@ -354,6 +369,45 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
         _single_sets(out, mics, pairs, d, q, sound_speed_mps, wind_mps, dims, source_z_m,
                      reject, reject_p_value)
     return out
+
+
+def _checks(model, used_mics, x, chi2, cov, inflation, dims):
+    """Far-outside flag and the ellipse factor of :func:`locate.fix_checks.assess_fix`.
+
+    Sets far outside the array (more than ``FAR_RATIO`` apertures) are flagged for the
+    single-set locator, which runs the far-field likelihood-ratio test; for the others the
+    exact misfit on the 95 % boundary is compared with the quadratic prediction (Bates & Watts
+    1988, ch. 6) and the covariance enlarged where the rise falls below ``LINEARITY_RATIO``.
+    """
+    centre = used_mics.mean(axis=1)
+    aperture = np.max(np.linalg.norm(used_mics[:, :, None, :2] - used_mics[:, None, :, :2],
+                                     axis=-1), axis=(1, 2))
+    point = model.point(x)
+    far = np.linalg.norm(point[:, :2] - centre[:, :2], axis=1) > FAR_RATIO * aperture
+    if dims == 2:
+        t = np.linspace(0, 2 * np.pi, 16, endpoint=False)
+        u = np.stack([np.cos(t), np.sin(t)], axis=-1)
+    else:
+        u = np.array([[i, j, k] for i in (-1, 0, 1) for j in (-1, 0, 1) for k in (-1, 0, 1)
+                      if (i, j, k) != (0, 0, 0)], dtype=float)
+        u = u / np.linalg.norm(u, axis=1, keepdims=True)
+    c = 0.5 * (cov + np.swapaxes(cov, 1, 2))
+    vals, vecs = np.linalg.eigh(c)
+    ok = np.isfinite(c).all(axis=(1, 2))
+    ok[ok] &= vals[ok, 0] > 0
+    q = stats.chi2.ppf(0.95, dims)
+    pts = x[:, None, :] + np.einsum("ud,wd,wed->wue", u, np.sqrt(q * np.clip(vals, 0, None)),
+                                    vecs)
+    sel = np.repeat(np.arange(len(x)), len(u))
+    with np.errstate(over="ignore", invalid="ignore"):
+        r = model.residual(pts.reshape(-1, dims), sel)
+        rise = (np.sum(r**2, axis=-1).reshape(len(x), len(u)) - chi2[:, None]) / (
+            q * np.maximum(inflation, 1.0))[:, None]
+    low = np.min(np.where(np.isfinite(rise), rise, np.inf), axis=1)
+    enlarge = ok & np.isfinite(low) & (low < LINEARITY_RATIO)
+    factor = np.where(enlarge, np.minimum(1.0 / np.maximum(low, 1.0 / _MAX_ENLARGE),
+                                          _MAX_ENLARGE), 1.0)
+    return far, factor
 
 
 def _exclude(used, rejected, x, chi2, dof, p_value, tau, cov, mics, c, wind, dims, source_z_m,
@@ -407,6 +461,7 @@ def _exclude(used, rejected, x, chi2, dof, p_value, tau, cov, mics, c, wind, dim
 def _single_sets(out, mics, pairs, d, q, c, wind, dims, source_z_m, reject, p_reject):
     """Solve the flagged sets one by one with :func:`locate.fix.locate_source`."""
     n_p = len(pairs)
+    names = np.array([f"M{k + 1}" for k in range(len(mics))])
     for w in np.flatnonzero(out.single):  # only the unusual sets: loop unavoidable
         ds = DelaySet(pairs=pairs, delay_s=d[w], sd_s=np.sqrt(np.abs(np.diag(q[w]))),
                       covariance_s2=q[w], peak=np.ones(n_p), score=np.full(n_p, np.inf),
@@ -415,7 +470,7 @@ def _single_sets(out, mics, pairs, d, q, c, wind, dims, source_z_m, reject, p_re
                       max_lag_s=np.full(n_p, np.inf))
         try:
             fx = locate_source(mics, ds, c, wind_mps=wind, dims=dims, source_z_m=source_z_m,
-                               reject=reject, reject_p_value=p_reject)
+                               reject=reject, reject_p_value=p_reject, mic_names=list(names))
         except TdoaError:
             out.position_m[w] = np.nan
             out.covariance_m2[w] = np.nan
@@ -427,3 +482,4 @@ def _single_sets(out, mics, pairs, d, q, c, wind, dims, source_z_m, reject, p_re
         out.chi2[w], out.dof[w], out.p_value[w] = fx.chi2, fx.dof, fx.p_value
         out.converged[w] = fx.converged
         out.residual_rms_s[w] = fx.residual_rms_s
+        out.rejected[w] = np.isin(names, fx.rejected_mics)
