@@ -15,6 +15,7 @@ import click
 import numpy as np
 
 from locate import __version__
+from locate.cli_field import field_checks, field_options
 from locate.errors import NothingFoundError, OptionError, TdoaError
 
 __all__ = ["cli", "main", "DEMO_STEPS"]
@@ -183,12 +184,18 @@ def check(ctx, site_path, dims):
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
               help="Also draw each pair's correlation and residual (diagnostics figure).")
 @click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
+@field_options
 @click.pass_context
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
-        csv_path, map_path, window_s, threshold_db, panels_path, no_reject):
+        csv_path, map_path, window_s, threshold_db, panels_path, no_reject, geojson_path=None,
+        solve_air=False, solve_wind=False, events_choice=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
+    from locate.airfit import fit_entry
+    from locate.airfit import summary_lines as air_summary
     from locate.audio import open_recordings
+    from locate.event_choice import choose_events
+    from locate.gis import write_geojson
     from locate.pipeline import (
         conditions_for,
         fix_result,
@@ -206,6 +213,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
                    (panels_path, "--panels")):
         check_output_path(p, inputs, option=opt)
+    choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
+                                     solve_wind=solve_wind, events_choice=events_choice,
+                                     start_s=start_s, dims=dims)
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
@@ -215,6 +225,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
             events = scan_events(rec, site.positions_m, cond, band_hz=band_hz,
                                  threshold_db=threshold_db, progress=bar.update)
         require_events(events, rec.start_s, rec.stop_s)
+        events, notes = choose_events(events, choice)
+        warnings.extend(notes)
         spans = plan_spans(events, rec, site.positions_m, cond)
         times = [float(np.nanmin(ev.onset_s)) for ev in events]
     elif window_s is not None:
@@ -230,9 +242,12 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     with progress_bar(ctx, len(spans), "Locating") as bar:
         for (a, b), t in zip(spans, times):
             try:
-                entry, fx, _, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
-                                           source_z_m=source_z_m, reject=not no_reject,
-                                           keep_curves=panels_path is not None, t_s=t)
+                entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
+                                            source_z_m=source_z_m, reject=not no_reject,
+                                            keep_curves=panels_path is not None, t_s=t)
+                if solve_air:
+                    fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
+                              solve_wind=solve_wind)
             except NothingFoundError as exc:
                 warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
                 bar.update(1)
@@ -248,6 +263,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
                         source_z_m=source_z_m)
     _print_fixes(ctx, site, cond, result)
+    for line in air_summary(result):
+        echo(ctx, line)
     for w in result["warnings"]:
         warn(w)
     if json_path:
@@ -255,6 +272,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         echo(ctx, f"Result written to {json_path}")
     if csv_path:
         write_atomic(csv_path, fixes_csv(result))
+    if geojson_path:
+        write_geojson(geojson_path, result, site.origin_wgs84)
+        echo(ctx, f"GeoJSON written to {geojson_path}")
     if map_path:
         _draw_map(site, result, map_path)
         echo(ctx, f"Map written to {map_path}")

@@ -17,6 +17,7 @@ from locate.errors import NothingFoundError, OptionError
 from locate.events import FRAME_S, detect_events, frame_energy_db
 from locate.fix import locate_source
 from locate.results import CAUTIONS, SCHEMA, fix_to_dict
+from locate.gis import add_wgs84_positions
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
            "plan_spans"]
@@ -62,7 +63,7 @@ def _array_spread_s(positions_m, cond):
 
 
 def scan_events(recordings, positions_m, cond, *, band_hz=None, start_s=None, stop_s=None,
-                threshold_db=10.0, progress=None, block_s=30.0):
+                threshold_db=10.0, progress=None, block_s=10.0):
     """Detect events over a span of the recordings, streaming block by block.
 
     Parameters
@@ -205,3 +206,4 @@ def require_events(events, start_s, stop_s):
             f"no event stands out of the background between {start_s:.2f} and {stop_s:.2f} s: "
             "give a span with --from/--to for a continuous sound, or lower --threshold")
     return events
+    add_wgs84_positions(result, site.origin_wgs84)  # "position_wgs84" beside "position_m"
