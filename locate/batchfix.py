@@ -89,20 +89,26 @@ def _design(pairs, n_mics):
 
 
 def _arrival_times(d, q, a):
-    """Batched GLS: tau (W, N-1), cov (W, N-1, N-1), chi2, standardised residuals (W, P)."""
+    """Batched GLS: tau (W, N-1), its covariance (W, N-1, N-1) and the misfit chi2 (W,)."""
     q = 0.5 * (q + np.swapaxes(q, -1, -2))
-    chol = np.linalg.cholesky(q)
     rhs = np.concatenate([np.broadcast_to(a, (len(d),) + a.shape), d[..., None]], axis=-1)
-    sol = np.linalg.solve(chol, rhs)  # whitened design and delays
-    aw, dw = sol[..., :-1], sol[..., -1]
-    info = np.swapaxes(aw, 1, 2) @ aw
+    sol = np.linalg.solve(q, rhs)  # Q^-1 [A d]
+    qa, qd = sol[..., :-1], sol[..., -1]
+    info = np.einsum("pu,wpv->wuv", a, qa)
+    b = np.einsum("pu,wp->wu", a, qd)
     cov = np.linalg.inv(info)
-    tau = (cov @ (np.swapaxes(aw, 1, 2) @ dw[..., None]))[..., 0]
-    resid = dw - (aw @ tau[..., None])[..., 0]
-    chi2 = np.sum(resid**2, axis=-1)
+    tau = (cov @ b[..., None])[..., 0]
+    chi2 = np.einsum("wp,wp->w", d, qd) - np.einsum("wu,wu->w", b, tau)
+    return tau, cov, np.maximum(chi2, 0.0)
+
+
+def _standardised_residuals(d, q, a, tau, cov):
+    """Whitened closure residuals over their own sd (as locate.fix._closure_fit): (W, P)."""
+    chol = np.linalg.cholesky(0.5 * (q + np.swapaxes(q, -1, -2)))
+    aw = np.linalg.solve(chol, np.broadcast_to(a, (len(d),) + a.shape))
+    resid = np.linalg.solve(chol, (d - tau @ a.T)[..., None])[..., 0]
     hat = np.sum((aw @ cov) * aw, axis=-1)
-    norm_resid = resid / np.sqrt(np.clip(1.0 - hat, 1e-9, None))
-    return tau, cov, chi2, norm_resid
+    return resid / np.sqrt(np.clip(1.0 - hat, 1e-9, None))
 
 
 class _Model:
@@ -298,21 +304,22 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
     inflation = np.ones(n_w)
     ok = np.flatnonzero(finite)
     if ok.size:
-        t, cu, c2, nr = _arrival_times(d[ok], q[ok], a)
+        t, cu, c2 = _arrival_times(d[ok], q[ok], a)
         tau[ok], cov_u[ok], chi2_c[ok] = t, cu, c2
         dof_c = n_p - (n_mics - 1)
-        if dof_c > 0:
-            fail = stats.chi2.sf(c2, dof_c) < REJECT_P_VALUE
-            mag = np.abs(nr)
+        fail = np.flatnonzero(stats.chi2.sf(c2, dof_c) < REJECT_P_VALUE) if dof_c > 0 else []
+        if len(fail):
+            f = ok[fail]
+            mag = np.abs(_standardised_residuals(d[f], q[f], a, tau[f], cov_u[f]))
             outlier = mag.max(axis=1) > np.maximum(4.0, 4.0 * np.median(mag, axis=1))
             counts = np.bincount(pairs.ravel(), minlength=n_mics)
             k = np.argmax(mag, axis=1)
             thin = (counts[pairs[k, 0]] <= 2) | (counts[pairs[k, 1]] <= 2)
-            drop = fail & outlier & ~thin  # locate_source drops that pair: hand it over
-            scale = fail & ~drop
-            inflation[ok[scale]] = c2[scale] / dof_c
-            cov_u[ok[scale]] *= (c2[scale] / dof_c)[:, None, None]
-            single[ok[drop]] = True
+            drop = outlier & ~thin  # locate_source drops that pair: hand the set over
+            scale = f[~drop]
+            inflation[scale] = chi2_c[scale] / dof_c
+            cov_u[scale] *= inflation[scale][:, None, None]
+            single[f[drop]] = True
     c, wind = float(sound_speed_mps), None if wind_mps is None else np.asarray(wind_mps, float)
     tau_f = np.zeros((n_w, n_mics))
     tau_f[:, 1:] = tau

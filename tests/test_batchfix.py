@@ -16,7 +16,7 @@ MICS = np.array([[0, 0, 1.2], [20, 0, 1.5], [20, 18, 1.1], [0, 18, 1.3], [10, 9,
 PAIRS = all_pairs(len(MICS))
 
 
-def _sets(n, rng, dims=2, bad_every=0):
+def _sets(n, rng, dims=2, bad_every=0, echo_every=0):
     p = len(PAIRS)
     z = np.zeros(n) if dims == 2 else rng.uniform(0.0, 8.0, n)
     src = np.column_stack([rng.uniform(-30, 50, n), rng.uniform(-30, 50, n), z])
@@ -33,6 +33,8 @@ def _sets(n, rng, dims=2, bad_every=0):
         off = np.zeros((n, len(MICS)))
         off[::bad_every, 3] = 300e-6
         d = d + off[:, PAIRS[:, 1]] - off[:, PAIRS[:, 0]]
+    if echo_every:  # one pair's peak on an echo 2 ms late in some other sets
+        d[3::echo_every, 10] += 2e-3
     return src, d, q
 
 
@@ -48,8 +50,9 @@ def _delay_set(d, q):
 def test_batch_fixes_match_locate_source_including_rejected_mics(dims):
     # Reference: locate.fix.locate_source, set by set (integrity test and mic exclusion on).
     rng = np.random.default_rng(3 + dims)
-    _, d, q = _sets(60, rng, dims=dims, bad_every=6)
+    _, d, q = _sets(60, rng, dims=dims, bad_every=6, echo_every=10)
     bf = locate_batch(MICS, d, q, C, dims=dims)
+    assert bf.single[3::10].all()  # the pair that does not close goes to locate_source
     for w in range(len(d)):
         fx = locate_source(MICS, _delay_set(d[w], q[w]), C, dims=dims)
         # 1 um; locate_source stops its steps at a chi-square change of 1e-10, which along a
