@@ -14,7 +14,7 @@ from locate import __version__
 from locate.audio import check_signals
 from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
 from locate.errors import NothingFoundError, OptionError
-from locate.events import FRAME_S, detect_events, frame_energy_db
+from locate.events_stream import scan_recordings
 from locate.fix import locate_source
 from locate.results import CAUTIONS, SCHEMA, fix_to_dict
 from locate.gis import add_wgs84_positions
@@ -84,27 +84,14 @@ def scan_events(recordings, positions_m, cond, *, band_hz=None, start_s=None, st
     -------
     list of locate.events.Event
     """
-    fs = recordings.sample_rate_hz
     a = recordings.start_s if start_s is None else float(start_s)
     b = recordings.stop_s if stop_s is None else float(stop_s)
-    frame = int(round(FRAME_S * fs))
-    block = max(int(block_s * fs) // frame, 1) * frame
-    chunks = []
-    t = a
-    while t < b - 1.0 / fs:
-        t_end = min(t + block / fs, b)
-        sig, _ = recordings.read(t, t_end)
-        chunks.append(frame_energy_db(sig, fs, frame_s=frame / fs, band_hz=band_hz))
-        if progress is not None:
-            progress(t_end - t)
-        t = t + block / fs
-    if not chunks:
-        return []
-    energy = np.concatenate(chunks, axis=1)
-    n = recordings.n_mics
-    return detect_events(energy, frame_s=frame / fs, t0_s=a, threshold_db=threshold_db,
-                         min_mics=min(3, n), max_spread_s=_array_spread_s(positions_m, cond),
-                         pad_s=0.05 + 0.1 * 0)
+    # streaming detection (locate.events_stream): overlapped band-passed blocks, envelope kept
+    # only as long as the detection rule needs it, so memory does not grow with the span
+    return scan_recordings(recordings, a, b, band_hz=band_hz, threshold_db=threshold_db,
+                           min_mics=min(3, recordings.n_mics),
+                           max_spread_s=_array_spread_s(positions_m, cond), pad_s=0.05,
+                           progress=progress, block_s=block_s)
 
 
 def plan_spans(events, recordings, positions_m, cond):
