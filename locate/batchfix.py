@@ -33,7 +33,11 @@ from locate.air import travel_time_gradient, travel_time_s
 from locate.delays import DelaySet, all_pairs
 from locate.errors import TdoaError
 from locate.fix import REJECT_P_VALUE, locate_source
-from locate.fix_checks import _MAX_ENLARGE, FAR_RATIO, LINEARITY_RATIO
+
+try:  # the checks locate_source applies to a fix (absent in older trees: no checks there)
+    from locate.fix_checks import _MAX_ENLARGE, FAR_RATIO, LINEARITY_RATIO
+except ImportError:  # pragma: no cover
+    _MAX_ENLARGE = FAR_RATIO = LINEARITY_RATIO = None
 
 __all__ = ["BatchFix", "locate_batch"]
 
@@ -358,7 +362,7 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
     covp[birge] *= (chi2[birge] / dof[birge])[:, None, None]
     inflation_p = np.where(birge, chi2 / np.maximum(dof, 1), 1.0)
     far = np.zeros(n_w, bool)
-    for m in np.unique(n_used):  # the checks of locate.fix_checks, batched
+    for m in np.unique(n_used) if FAR_RATIO is not None else ():  # fix_checks, batched
         g = np.flatnonzero((n_used == m) & fine)
         if g.size == 0:
             continue
