@@ -36,7 +36,7 @@ from scipy import fft as sfft
 from locate.delays import _COHERENCE_DOF, _MIN_BAND_COHERENCE, DelaySet, _band_mask, all_pairs
 from locate.window_core import chunk_delays
 
-__all__ = ["WindowDelays", "estimate_delays_windows", "window_starts"]
+__all__ = ["WindowDelays", "estimate_delays_windows", "recording_window_delays", "window_starts"]
 
 
 @dataclass
@@ -273,3 +273,39 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
         out["delay_s"] = out["delay_s"] + (off[pairs[:, 1]] - off[pairs[:, 0]])
     return WindowDelays(pairs=pairs, t_s=float(t0_s) + starts / fs, duration_s=n / fs,
                         sample_rate_hz=fs, max_lag_s=max_lag_s, **out)
+
+
+def recording_window_delays(recordings, window_s, hop_s, *, max_lag_s, band_hz=None,
+                            pairs=None, start_s=None, stop_s=None, block_windows=240,
+                            workers=None):
+    """Yield :class:`WindowDelays` over a span of recordings, one block of windows at a time.
+
+    Blocks of ``block_windows`` windows are read with ``window_s - hop_s`` of overlap
+    (:meth:`locate.audio.Recordings.blocks`), so the windows run on without a gap across
+    blocks and memory is one block whatever the span.  The sub-sample alignment offsets of
+    each block are added to its delays.
+
+    Parameters
+    ----------
+    recordings : locate.audio.Recordings
+    window_s, hop_s : float
+    max_lag_s, band_hz, pairs, workers
+        As :func:`estimate_delays_windows`.
+    start_s, stop_s : float, optional
+        Default: the span all mics cover.
+    block_windows : int
+
+    Yields
+    ------
+    WindowDelays
+    """
+    fs = recordings.sample_rate_hz
+    n, hop = int(round(window_s * fs)), int(round(hop_s * fs))
+    bw = max(int(block_windows), 1)
+    block_s = ((bw - 1) * hop + n) / fs
+    for t0, signals, residual in recordings.blocks(block_s, (n - hop) / fs, start_s, stop_s):
+        if signals.shape[1] < n:
+            break
+        yield estimate_delays_windows(signals, fs, n / fs, hop / fs, max_lag_s=max_lag_s,
+                                      band_hz=band_hz, pairs=pairs, offsets_s=residual,
+                                      t0_s=t0, workers=workers)

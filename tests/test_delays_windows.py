@@ -87,3 +87,24 @@ def test_integer_lag_matches_scipy_correlate_and_offsets_are_added():
     assert np.all(np.abs(wd.delay_s[:, 0] - lag / fs - 3.0 * US) < 1.0 * US)
     ds = wd.window(2)
     assert ds.delay_s[0] == wd.delay_s[2, 0] and ds.t_s == pytest.approx(0.5)
+
+
+def test_windows_read_in_overlapping_blocks_equal_one_pass_over_the_span(scene, tmp_path):
+    # Reference: estimate_delays_windows over the whole span in memory (same samples).
+    from locate.audio import open_recordings
+    from locate.delays_windows import WindowDelays, recording_window_delays
+    from locate.site import load_site
+    from tests.cli_helpers import write_site
+
+    sim, _, max_lag = scene
+    rec = open_recordings(load_site(write_site(tmp_path, ARRAY_40M, sim.signals, RATE_HZ)))
+    parts = list(recording_window_delays(rec, 0.5, 0.25, max_lag_s=max_lag,
+                                         band_hz=(100.0, 3000.0), block_windows=3))
+    assert len(parts) > 2
+    got = WindowDelays.concatenate(parts)
+    x, _ = rec.read(rec.start_s, rec.stop_s)
+    ref = estimate_delays_windows(x, RATE_HZ, 0.5, 0.25, max_lag_s=max_lag,
+                                  band_hz=(100.0, 3000.0))
+    assert np.allclose(got.t_s, ref.t_s, atol=1e-9)
+    assert np.max(np.abs(got.delay_s - ref.delay_s)) < 1e-3 * US
+    assert np.array_equal(got.quality, ref.quality)
