@@ -630,8 +630,7 @@ def report(ctx, site_path, result_paths, out_path, title):
 
 
 # Commands defined in their own modules register themselves on the group when imported.
-from locate import cli_maps  # noqa: E402,F401
-from locate import cli_batch  # noqa: E402,F401
+from locate import cli_batch, cli_maps  # noqa: E402,F401
 from locate.report import report_demo_step  # noqa: E402
 
 DEMO_STEPS.append(("report", report_demo_step))

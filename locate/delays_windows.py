@@ -111,7 +111,8 @@ def window_starts(n_samples, window_n, hop_n) -> np.ndarray:
 class _Setup:
     """Sizes, bins and grids shared by every window of one call."""
 
-    def __init__(self, fs, n, hop, n_mics, pairs, max_lag_s, band_hz, oversample, step=None):
+    def __init__(self, fs, n, hop, n_mics, pairs, max_lag_s, band_hz, oversample, step=None,
+                 single=None):
         self.fs, self.n, self.hop = fs, n, hop
         self.pairs = pairs
         self.ii, self.jj = pairs[:, 0], pairs[:, 1]
@@ -156,11 +157,17 @@ class _Setup:
         if grid[-1] != ks - 1:
             grid = np.append(grid, ks - 1)
         self.q, self.grid = q, grid
+        # single precision after the forward FFT on the decimated path when the band bins have
+        # smoothing margins on both sides (spectra normalised per window)
+        self.single = bool(self.decimated and self.s0 > 0 and self.s1 < len(freqs)
+                           and (single is None or single))
         pad = self.width // 2
         b = np.arange(ks)
         self.box_lo = np.maximum(b - pad, 0)
         self.box_hi = np.minimum(b + self.width - pad, ks)  # exclusive
         self.box_n = self.box_hi - self.box_lo
+        full = np.flatnonzero(self.box_n == self.width)
+        self.box_full = (int(full[0]), int(full[-1]) + 1) if full.size else (0, 0)
         self.ij = np.clip(np.searchsorted(grid, b, side="right") - 1, 0, max(len(grid) - 2, 0))
         if len(grid) > 1:
             self.frac = (b - grid[self.ij]) / (grid[self.ij + 1] - grid[self.ij])

@@ -14,6 +14,7 @@ import math
 
 import numpy as np
 from scipy import fft as sfft
+from scipy.ndimage import uniform_filter1d
 
 from locate.delays import (
     _VARIANCE_MARGIN,
@@ -27,6 +28,7 @@ from locate.window_peaks import coarse_peaks
 __all__ = ["chunk_delays"]
 
 _TINY = 1e-300
+_TINY32 = 1e-30  # floor for single-precision spectra (normalised to a peak of 1)
 
 
 def _linear_phase(omega, lag_s):
@@ -54,7 +56,8 @@ def _inverse(spec_band, factor, g, workers):
     np.multiply(spec_band[..., :k], factor[..., :k], out=full[..., g.s0:g.k_inv],
                 casting="same_kind")
     r = sfft.irfft(full, g.m, axis=-1, workers=workers)
-    return r[..., g.lags % g.m]
+    big = int(g.lags[-1])
+    return np.concatenate([r[..., g.m - big:], r[..., : big + 1]], axis=-1)  # lags -big..big
 
 
 def _box_means(a, g):
@@ -63,9 +66,29 @@ def _box_means(a, g):
     The box is ``g.width`` bins (as :func:`locate.delays._smooth`); at the ends of the spectrum
     it holds the bins that exist.
     """
-    cs = np.zeros(a.shape[:-1] + (a.shape[-1] + 1,), dtype=a.dtype)
+    ks = a.shape[-1]
+    cs = np.zeros(a.shape[:-1] + (ks + 1,), dtype=a.dtype)
     np.cumsum(a, axis=-1, out=cs[..., 1:])
-    return (cs[..., g.box_hi] - cs[..., g.box_lo]) / g.box_n
+    out = np.empty_like(a)
+    i0, i1 = g.box_full  # bins whose box lies inside the slice: contiguous differences
+    out[..., i0:i1] = (cs[..., i0 + g.box_hi[i0] - i0:i1 + g.box_hi[i0] - i0]
+                       - cs[..., g.box_lo[i0]:g.box_lo[i0] + i1 - i0]) / g.width
+    edge = np.r_[0:i0, i1:ks]
+    out[..., edge] = (cs[..., g.box_hi[edge]] - cs[..., g.box_lo[edge]]) / g.box_n[edge]
+    return out
+
+
+def _smoothed(a, g):
+    """Moving mean over ``g.width`` bins: exact box sums, or (single precision, band with
+    margins on both sides) scipy's running mean, which accumulates in double precision."""
+    if not g.single:
+        return _box_means(a, g)
+    if np.iscomplexobj(a):
+        out = np.empty(a.shape, np.complex64)
+        uniform_filter1d(a.real, g.width, axis=-1, output=out.real)
+        uniform_filter1d(a.imag, g.width, axis=-1, output=out.imag)
+        return out
+    return uniform_filter1d(a, g.width, axis=-1)
 
 
 def _interp(vq, g):
@@ -77,7 +100,7 @@ def _interp(vq, g):
 
 
 def _coherence(s_cross_q, s_auto_i, s_auto_j, g):
-    denom = np.maximum(s_auto_i * s_auto_j, _TINY)
+    denom = np.maximum(s_auto_i * s_auto_j, _TINY32 if g.single else _TINY)
     coh = (s_cross_q.real**2 + s_cross_q.imag**2) / denom
     return np.clip((g.dof * coh - 1.0) / (g.dof - 1.0), 0.0, 0.9999)  # bias correction
 
@@ -93,26 +116,50 @@ def _median_over_pairs(coh, good):
     return np.nanmedian(np.where(use[:, :, None], coh, np.nan), axis=1)
 
 
-def _fine_delays(a, omega, limit_s):
+def _newton_exact(a, omega, limit_s):
+    """Newton steps on the exact cosine sum (as estimate_delays), rows of ``a`` (R, K)."""
+    a = np.asarray(a, dtype=complex)
+    phase = np.angle(a)
+    c = np.abs(a)
+    cw1, cw2 = c * omega, c * omega**2
+    d = np.zeros(a.shape[0])
+    for _ in range(6):
+        arg = phase + omega * d[:, None]
+        g1 = np.sum(cw1 * np.sin(arg), axis=1)
+        g2 = np.sum(cw2 * np.cos(arg), axis=1)
+        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
+        d = np.clip(d - step, -limit_s, limit_s)
+        if np.all(np.abs(step) < 1e-12):
+            break
+    return d
+
+
+def _fine_delays(a, omega, limit_s, taylor_s=None):
     """Newton maximisation of Re sum_k a_k exp(i omega_k d) over |d| <= limit: shape (...).
 
     With omega_k = omega_c + delta_k (omega_c the middle of the bins), the slope and curvature
     sums sum_k a_k omega_k^m exp(i omega_k d), m = 1, 2, are exp(i omega_c d) times
     combinations of T_j = sum_k a_k delta_k^j exp(i delta_k d), and these come from the Taylor
     moments mu_n = sum_k a_k (delta_k / delta_max)^n (one single-precision matrix product)
-    summed by Horner's rule; the series is cut where its remainder is below 1e-17 at the limit.
+    summed by Horner's rule, the series cut where its remainder is below 1e-17 for
+    |d| <= ``taylor_s``.  The rare curves whose steps leave that radius are redone with the
+    exact sums.
     """
+    lead = a.shape[:-1]
     if omega.size == 0:
-        return np.zeros(a.shape[:-1])
+        return np.zeros(lead)
+    taylor_s = limit_s if taylor_s is None else min(taylor_s, limit_s)
     om_c = 0.5 * float(omega.max() + omega.min())
     delta = omega - om_c
     ds = max(float(np.abs(delta).max()), 1e-12)
-    umax = ds * limit_s
+    umax = ds * taylor_s
     n_terms = 6
     while umax ** n_terms / math.factorial(n_terms) > 1e-17 and n_terms < 80:
         n_terms += 1
-    powers = ((delta / ds)[:, None] ** np.arange(n_terms + 2)[None, :]).astype(np.float32)
-    lead = a.shape[:-1]
+    x = (delta / ds).astype(np.float32)
+    powers = np.cumprod(np.concatenate([np.ones((x.size, 1), np.float32),
+                                        np.repeat(x[:, None], n_terms + 1, axis=1)], axis=1),
+                        axis=1)  # (K, J + 2): x^0 .. x^(J+1)
     a2 = a.reshape(-1, a.shape[-1])
     mu = ((a2.real.astype(np.float32) @ powers).astype(float)
           + 1j * (a2.imag.astype(np.float32) @ powers)).reshape(lead + (n_terms + 2,))
@@ -125,6 +172,7 @@ def _fine_delays(a, omega, limit_s):
         return acc
 
     d = np.zeros(lead)
+    outside = np.zeros(lead, bool)
     for _ in range(6):  # as estimate_delays: at most six Newton steps
         z = 1j * ds * d
         t0, t1, t2 = t_sum(0, z), ds * t_sum(1, z), ds**2 * t_sum(2, z)
@@ -133,8 +181,11 @@ def _fine_delays(a, omega, limit_s):
         g2 = (carrier * (om_c**2 * t0 + 2 * om_c * t1 + t2)).real  # sum c w^2 cos(...)
         step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
         d = np.clip(d - step, -limit_s, limit_s)
+        outside |= np.abs(d) > taylor_s
         if np.all(np.abs(step) < 1e-12):
             break
+    if outside.any():
+        d[outside] = _newton_exact(a[outside], omega, limit_s)
     return d
 
 
@@ -147,9 +198,14 @@ def chunk_delays(spec, g, workers):
     ii, jj = g.ii, g.jj
     c_n = spec.shape[0]
     grid = g.grid
+    tiny = _TINY
+    if g.single:  # single precision: normalise each window's spectra to a peak of 1
+        peak_abs = np.max(np.abs(spec), axis=(1, 2), keepdims=True)
+        spec = (spec / np.maximum(peak_abs, 1e-300)).astype(np.complex64)
+        tiny = _TINY32
     cross = np.conj(spec[:, ii]) * spec[:, jj]  # (C, P, Ks)
     mag = np.abs(cross)
-    s_auto = _box_means(spec.real**2 + spec.imag**2, g)  # (C, N, Ks)
+    s_auto = _smoothed(spec.real**2 + spec.imag**2, g)  # (C, N, Ks)
     s_auto_q = s_auto[..., grid]
     mask = np.broadcast_to(g.mask, (c_n, g.mask.size))
     mask_q = np.broadcast_to(g.mask_q, (c_n, g.mask_q.size))
@@ -157,12 +213,12 @@ def chunk_delays(spec, g, workers):
 
     # 1. GCC-PHAT (Knapp & Carter 1976) over the band
     norm = 2.0 * np.count_nonzero(g.mask) / g.m  # irfft(mask)[0]: no DC or Nyquist bin
-    r = _inverse(cross, g.mask / np.maximum(mag, _TINY), g, workers) / norm
+    r = _inverse(cross, g.mask / np.maximum(mag, tiny), g, workers) / norm
     lag0, peak, score, second = coarse_peaks(r, g, np.broadcast_to(lo_hi, (c_n, 2)))
 
     # 2. coherence after removing the coarse lag; consensus over the pairs that look good
-    rot = cross * _linear_phase(g.omega, lag0)
-    s_cross = _box_means(rot, g)
+    rot = cross * _linear_phase(g.omega, lag0).astype(cross.dtype)
+    s_cross = _smoothed(rot, g)
     coh = _coherence(s_cross, s_auto[:, ii], s_auto[:, jj], g)
     good = (score >= WEAK_PEAK_SCORE) & (second < AMBIGUOUS_RATIO)
     ref_q = _median_over_pairs(coh[..., grid], good)  # (C, Kq)
@@ -182,18 +238,18 @@ def chunk_delays(spec, g, workers):
                    ref_q / (1.0 - np.clip(ref_q, 0, 0.9999)), 0.0)
     v = _interp(v_q, g) * mask
     second_pass = np.count_nonzero(v, axis=1) >= 4  # (C,)
-    isq = 1.0 / np.sqrt(np.maximum(s_auto, _TINY))  # (C, N, Ks)
+    isq = 1.0 / np.sqrt(np.maximum(s_auto, tiny))  # (C, N, Ks)
     factor = v[:, None, :] * isq[:, ii] * isq[:, jj]
     norm2 = 2.0 * np.einsum("cpk,cpk->cp", factor, mag) / g.m
-    r2 = _inverse(cross, factor, g, workers) / np.maximum(norm2, _TINY)[..., None]
+    r2 = _inverse(cross, factor, g, workers) / np.maximum(norm2, tiny)[..., None]
     lag2, _, score2, second2 = coarse_peaks(r2, g, bands)
     score = np.where(second_pass[:, None], score2, 0.0)
     second = np.where(second_pass[:, None], second2, second)
     moved = second_pass[:, None] & (np.abs(lag2 - lag0) > max(0.5 / g.fs, 0.5 * g.step_s))
     if moved.any():
         cw, pw = np.nonzero(moved)
-        rot_m = cross[cw, pw] * _linear_phase(g.omega, lag2[cw, pw])
-        s_cross[cw, pw] = _box_means(rot_m, g)
+        rot_m = cross[cw, pw] * _linear_phase(g.omega, lag2[cw, pw]).astype(cross.dtype)
+        s_cross[cw, pw] = _smoothed(rot_m, g)
         coh[cw, pw] = _coherence(s_cross[cw, pw], s_auto[cw, ii[pw]], s_auto[cw, jj[pw]], g)
         rot[cw, pw] = rot_m
         lag0 = np.where(moved, lag2, lag0)
@@ -203,8 +259,9 @@ def chunk_delays(spec, g, workers):
     w = coh / (1.0 - coh)  # Hannan-Thomson weight (Carter 1987)
     kb = np.flatnonzero(np.any(w > 0, axis=(0, 1)))
     abs_sc = np.abs(s_cross)
-    d = _fine_delays(w[..., kb] * rot[..., kb] / np.maximum(abs_sc[..., kb], _TINY),
-                     g.omega[kb], 1.5 * max(g.step_s, 1.0 / g.fs))
+    limit = 1.5 * max(g.step_s, 1.0 / g.fs)
+    d = _fine_delays(w[..., kb] * rot[..., kb] / np.maximum(abs_sc[..., kb], tiny),
+                     g.omega[kb], limit, taylor_s=limit / 3.0)
     delay = lag0 + d
     w_q, coh_q, s_cross_q = w[..., grid], coh[..., grid], s_cross[..., grid]
 
@@ -227,6 +284,8 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
     ii, jj = g.ii, g.jj
     c_n, n_p, _ = w.shape
     n_mics = g.n_mics
+    w, coh, s_auto = (np.asarray(v, dtype=float) for v in (w, coh, s_auto))
+    s_cross = np.asarray(s_cross, dtype=complex)
     om = g.omega_q
     n_eff = g.n * g.q
     d_norm = np.sum(w * om**2, axis=-1)  # (C, P)
