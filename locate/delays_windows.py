@@ -28,6 +28,8 @@ the correlation grid is the sample grid, as in ``estimate_delays``.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -229,7 +231,8 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
     t0_s : float
         Time of sample 0, seconds into the recording.
     workers : int, optional
-        Threads for ``scipy.fft`` (default: all cores).
+        Threads (default: all cores): chunks of windows run in parallel threads, each with
+        single-threaded transforms; 1 runs everything in the calling thread.
     chunk : int
         Windows processed together (memory ~ chunk x P x band bins x 16 bytes x 12).
     oversample : float
@@ -263,10 +266,15 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
     max_lag_s = np.broadcast_to(np.asarray(max_lag_s, float), (len(pairs),)).copy()
     g = _Setup(fs, n, hop, x.shape[0], pairs, max_lag_s, band_hz, oversample, coherence_step)
     workers = workers if workers is not None else -1
-    parts = []
-    for k in range(0, len(starts), max(int(chunk), 1)):
-        st = starts[k:k + chunk]
-        parts.append(chunk_delays(_spectra(x, g, st, workers), g, workers))
+    chunk = max(int(chunk), 1)
+    groups = [starts[k:k + chunk] for k in range(0, len(starts), chunk)]
+    threads = (os.cpu_count() or 1) if workers == -1 else max(int(workers), 1)
+    if threads > 1 and len(groups) > 1:  # numpy and scipy.fft release the GIL on big arrays
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            parts = list(pool.map(lambda st: chunk_delays(_spectra(x, g, st, 1), g, 1),
+                                  groups))
+    else:
+        parts = [chunk_delays(_spectra(x, g, st, workers), g, workers) for st in groups]
     keys = ("delay_s", "sd_s", "covariance_s2", "peak", "score", "second_ratio", "quality",
             "band_hz")
     n_p = len(pairs)

@@ -213,7 +213,7 @@ def chunk_delays(spec, g, workers):
 
     # 1. GCC-PHAT (Knapp & Carter 1976) over the band
     norm = 2.0 * np.count_nonzero(g.mask) / g.m  # irfft(mask)[0]: no DC or Nyquist bin
-    r = _inverse(cross, g.mask / np.maximum(mag, tiny), g, workers) / norm
+    r = _inverse(cross, g.mask / (np.maximum(mag, tiny) * norm), g, workers)
     lag0, peak, score, second = coarse_peaks(r, g, np.broadcast_to(lo_hi, (c_n, 2)))
 
     # 2. coherence after removing the coarse lag; consensus over the pairs that look good
@@ -241,7 +241,7 @@ def chunk_delays(spec, g, workers):
     isq = 1.0 / np.sqrt(np.maximum(s_auto, tiny))  # (C, N, Ks)
     factor = v[:, None, :] * isq[:, ii] * isq[:, jj]
     norm2 = 2.0 * np.einsum("cpk,cpk->cp", factor, mag) / g.m
-    r2 = _inverse(cross, factor, g, workers) / np.maximum(norm2, tiny)[..., None]
+    r2 = _inverse(cross, factor / np.maximum(norm2, tiny)[..., None], g, workers)
     lag2, _, score2, second2 = coarse_peaks(r2, g, bands)
     score = np.where(second_pass[:, None], score2, 0.0)
     second = np.where(second_pass[:, None], second2, second)
@@ -258,9 +258,9 @@ def chunk_delays(spec, g, workers):
     coh = np.where(mask[:, None, :] & (coh > g.threshold), coh, 0.0)
     w = coh / (1.0 - coh)  # Hannan-Thomson weight (Carter 1987)
     kb = np.flatnonzero(np.any(w > 0, axis=(0, 1)))
-    abs_sc = np.abs(s_cross)
+    kb = slice(int(kb[0]), int(kb[-1]) + 1) if kb.size else slice(0, 0)  # zero weights: no-ops
     limit = 1.5 * max(g.step_s, 1.0 / g.fs)
-    d = _fine_delays(w[..., kb] * rot[..., kb] / np.maximum(abs_sc[..., kb], tiny),
+    d = _fine_delays(w[..., kb] * rot[..., kb] / np.maximum(np.abs(s_cross[..., kb]), tiny),
                      g.omega[kb], limit, taylor_s=limit / 3.0)
     delay = lag0 + d
     w_q, coh_q, s_cross_q = w[..., grid], coh[..., grid], s_cross[..., grid]

@@ -98,7 +98,8 @@ def coarse_peaks(r, setup, bands_hz):
     peak = y1 - 0.25 * (y0 - y2) * frac if g.decimated else y1
     centre = np.maximum(0.5 * (bands_hz[:, 0] + bands_hz[:, 1]), 1.0)  # (C,)
     lobe = np.maximum(2.0, 0.75 / centre / g.step_s)[:, None, None]
-    away = np.abs(lags[None, None, :] - lags[k][..., None]) > lobe
+    lk = lags[k][..., None]
+    away = (lags < lk - lobe) | (lags > lk + lobe)
     floor = inside & away
     n_floor = floor.sum(axis=-1)
     if g.decimated:
