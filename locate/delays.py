@@ -274,6 +274,7 @@ def _coarse_peaks(r, max_lag_samp, fs, band_hz):
     lobe = max(2.0, 0.75 * fs / max(0.5 * (lo + hi), 1.0))
     away = np.abs(lags[None, :] - lags[k][:, None]) > lobe
     floor_vals = np.where(inside & away, seg, np.nan)
+    floor_vals[~np.any(inside & away, axis=1), 0] = 0.0  # no floor (tiny span): no NaN warning
     with np.errstate(invalid="ignore"):
         med = np.nanmedian(floor_vals, axis=1)
         mad = np.nanmedian(np.abs(floor_vals - med[:, None]), axis=1) * 1.4826

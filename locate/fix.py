@@ -29,6 +29,7 @@ from scipy import stats
 from locate.air import travel_time_gradient, travel_time_s
 from locate.delays import DelaySet
 from locate.errors import ConvergenceError, NothingFoundError
+from locate.fix_checks import assess_fix
 
 __all__ = [
     "Fix",
@@ -40,6 +41,9 @@ __all__ = [
 
 REJECT_P_VALUE = 1e-3
 """A fit whose chi-square p-value is below this fails the integrity test."""
+
+MAX_DELAY_S = 1e4  # a pair delay beyond this (~3000 km of sound) is corrupt, not a measurement
+MIN_DELAY_VAR_S2 = 1e-24  # (1 ps)^2: floor for a zero or vanishing delay variance
 
 
 @dataclass
@@ -141,7 +145,9 @@ def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VAL
     inflation : float
         Only with ``details=True``.
     """
-    usable = np.isfinite(np.diag(delays.covariance_s2)) & np.isfinite(delays.delay_s)
+    var = np.diag(delays.covariance_s2)
+    usable = (np.isfinite(var) & (var >= 0) & np.isfinite(delays.delay_s)
+              & (np.abs(delays.delay_s) < MAX_DELAY_S))
     keep = usable.copy()
     dropped = []
     inflation = 1.0
@@ -204,7 +210,7 @@ def _closure_fit(delays, idx, n_mics):
     try:
         chol = np.linalg.cholesky(q)
     except np.linalg.LinAlgError:
-        q = q + np.eye(len(idx)) * 1e-6 * np.mean(np.diag(q))
+        q = q + np.eye(len(idx)) * max(1e-6 * np.mean(np.diag(q)), MIN_DELAY_VAR_S2)
         chol = np.linalg.cholesky(q)
     aw = np.linalg.solve(chol, a)
     dw = np.linalg.solve(chol, d)
@@ -519,6 +525,9 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
     cond = np.linalg.cond(info) if np.all(np.isfinite(info)) else np.inf
     if cond > 1e12:
         warnings.append("poor geometry: the position is nearly undetermined along one axis")
+    # far outside the array / non-quadratic misfit: warnings and an honest ellipse
+    notes, covp[:dims, :dims] = assess_fix(prob, x, chi2, covp[:dims, :dims], inflation, names)
+    warnings.extend(notes)
     mirror = None
     for alt_x, alt_chi2, _alt_ok in sols[1:]:
         thresh = chi2 + max(stats.chi2.ppf(0.95, max(dof, 1)), 4.0)

@@ -13,6 +13,7 @@ import numpy as np
 from locate import __version__
 from locate.audio import check_signals
 from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
+from locate.echo_check import onset_mismatch
 from locate.errors import NothingFoundError, OptionError
 from locate.events_stream import scan_recordings
 from locate.fix import locate_source
@@ -21,6 +22,8 @@ from locate.gis import add_wgs84_positions
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
            "plan_spans"]
+
+MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
 
 
 @dataclass
@@ -117,6 +120,11 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     positions = site.positions_m
     names = site.mic_names
     signals, residual = recordings.read(start_s, stop_s)
+    if signals.shape[1] < MIN_SPAN_SAMPLES:
+        raise OptionError(f"the span {start_s:.4f}..{stop_s:.4f} s holds only "
+                          f"{signals.shape[1]} samples: give a span (--from/--to or --window) "
+                          f"of at least {MIN_SPAN_SAMPLES} samples that holds the whole sound "
+                          "at every mic", field="--to")
     warnings = check_signals(signals, names)
     pairs = all_pairs(len(names))
     clock_sd = np.array([m.clock_sd_s or 0.0 for m in site.mics])
@@ -150,6 +158,10 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     if len(amb) > len(delays.pairs) // 2:
         fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
                             "do not rely on it without a broadband sound")
+    echo = onset_mismatch(signals, recordings.sample_rate_hz, positions, fix.position_m,
+                          cond.sound_speed_mps, names, wind_mps=cond.wind_mps, used=fix.used)
+    if echo:
+        fix.warnings.append(echo)
     warnings.extend(fix.warnings)
     entry = fix_to_dict(fix, delays, names, t_s=start_s if t_s is None else t_s,
                         span_s=(start_s, stop_s))

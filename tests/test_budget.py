@@ -414,8 +414,10 @@ def test_far_outside_the_array_the_monte_carlo_region_is_reported():
     mc = budget["monte_carlo"]
     assert mc["used"] and mc["axes_disagreement"] > 0.10, mc
     assert budget["method"] == "Monte Carlo propagation (JCGM 101:2008)"
-    # the reported ellipse is the Monte Carlo 95 % region, longer than the first-order one
+    # the reported ellipse is the Monte Carlo 95 % region, no shorter than the first-order one
+    # (which the locator's linearity check, locate.fix_checks, has already enlarged: it says so)
     got = ellipse(fix.covariance_m2)["semi_major_m"]
     assert got == pytest.approx(mc["ellipse95"]["semi_major_m"], abs=0.01)
-    assert got > 1.1 * ellipse(plain.covariance_m2)["semi_major_m"]
+    assert any("ellipse was enlarged" in w for w in plain.warnings)
+    assert got > 0.98 * ellipse(plain.covariance_m2)["semi_major_m"]  # 2 % Monte Carlo error
     assert any("Monte Carlo" in w for w in fix.warnings)
