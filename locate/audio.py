@@ -36,6 +36,7 @@ import soundfile
 
 from locate.errors import OptionError, RecordingError
 from locate.site import start_time_offsets_s
+from locate.wav_header import truncation_note
 
 __all__ = ["Recordings", "open_recordings", "check_signals", "write_audio",
            "CLIP_LEVEL", "DEAD_DB"]
@@ -91,7 +92,8 @@ def open_recordings(site) -> Recordings:
                 raise RecordingError(f"not a readable audio file ({_describe(exc)}): give a WAV"
                                      " or FLAC file", file=path, field=field) from None
             if infos[path].frames <= 0:
-                raise RecordingError("the file holds no samples (zero length)", file=path,
+                raise RecordingError("the file holds no samples (zero length): copy it again "
+                                     "from the recorder, or name the right file", file=path,
                                      field=field)
         info = infos[path]
         if channel > info.channels:
@@ -111,7 +113,10 @@ def open_recordings(site) -> Recordings:
     if starts is not None:
         offsets = offsets + starts
     drift = np.array([m.drift_ppm for m in site.mics], dtype=float)
-    return Recordings(tuple(sources), float(rates[first]), offsets, drift)
+    rec = Recordings(tuple(sources), float(rates[first]), offsets, drift)
+    notes = (truncation_note(p, inf) for p, inf in infos.items())
+    rec.warnings[:0] = [n for n in notes if n]
+    return rec
 
 
 class Recordings:
@@ -286,7 +291,9 @@ class Recordings:
             s = self._sources[i]
             raise RecordingError(f'{int(bad.sum())} NaN/inf samples in channel {s.channel} '
                                  f'(mic "{s.mic}") between {start_s:.3f} and {stop_s:.3f} s: '
-                                 "the file is damaged", file=s.path, field=f"channel {s.channel}")
+                                 "the file is damaged; export it again, or choose a span "
+                                 "(--from/--to) without them", file=s.path,
+                                 field=f"channel {s.channel}")
 
     def _zero_fill_note(self, i, first, end, start_s, stop_s):
         s = self._sources[i]

@@ -11,9 +11,10 @@ For W delay sets of the same mics and pairs (e.g. the sliding windows of
    drops it.
 2. **Start** - the spherical-interpolation linear solution (first stage of Chan & Ho 1994,
    IEEE Trans. SP 42(8)), batched normal equations.
-3. **Refine** - Gauss-Newton with Levenberg-Marquardt damping on the whitened arrival-time
-   residuals (Foy 1976, IEEE Trans. AES 12(2)), every set with its own damping, then two
-   undamped Gauss-Newton polishing steps; covariance (J^T Q^-1 J)^-1 at the solution.
+3. **Refine** (:mod:`locate.batchsolve`) - Gauss-Newton with Levenberg-Marquardt damping on
+   the whitened arrival-time residuals (Foy 1976, IEEE Trans. AES 12(2)), every set with its
+   own damping, then two undamped Gauss-Newton polishing steps; covariance
+   (J^T Q^-1 J)^-1 at the solution.
 4. **Integrity** - the chi-square test of :mod:`locate.fix` and its fault exclusion (the mic
    whose exclusion best restores consistency, one at a time), batched over the failing sets.
 5. **Checks** - the ellipse-linearity check of :mod:`locate.fix_checks`, batched.  Sets far
@@ -29,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from locate.air import travel_time_gradient, travel_time_s
+from locate.batchsolve import Model, solve, subsets
 from locate.delays import DelaySet, all_pairs
 from locate.errors import TdoaError
 from locate.fix import REJECT_P_VALUE, locate_source
@@ -115,144 +116,6 @@ def _standardised_residuals(d, q, a, tau, cov):
     return resid / np.sqrt(np.clip(1.0 - hat, 1e-9, None))
 
 
-class _Model:
-    """Arrival-time differences to each set's first mic, whitened by the set's covariance.
-
-    ``mics`` (S, M, 3) are the mics of every set (the first is the reference), ``z`` (S, M-1)
-    the measured arrival times relative to it and ``cov`` (S, M-1, M-1) their covariance.
-    """
-
-    def __init__(self, mics, z, cov, c, wind, dims, source_z_m):
-        self.mics, self.z, self.c, self.wind = mics, z, c, wind
-        self.dims, self.source_z_m = dims, source_z_m
-        cz = 0.5 * (cov + np.swapaxes(cov, 1, 2))
-        self.winv = np.linalg.inv(np.linalg.cholesky(cz + np.eye(cz.shape[-1]) * 1e-30))
-
-    def point(self, x):
-        if self.dims == 2:
-            return np.concatenate([x, np.full(x.shape[:-1] + (1,), self.source_z_m)], -1)
-        return x
-
-    def plain_residual(self, x, sel=slice(None)):
-        t = travel_time_s(self.point(x)[:, None, :], self.mics[sel], self.c, self.wind)
-        return self.z[sel] - (t[:, 1:] - t[:, :1])
-
-    def residual(self, x, sel=slice(None)):
-        return (self.winv[sel] @ self.plain_residual(x, sel)[..., None])[..., 0]
-
-    def jacobian(self, x, sel=slice(None)):
-        g = travel_time_gradient(self.point(x)[:, None, :], self.mics[sel], self.c, self.wind)
-        jac = (g[:, 1:] - g[:, :1])[..., : self.dims]
-        return self.winv[sel] @ jac
-
-
-def _closed_form(mics, z, c, dims, source_z_m):
-    """Spherical-interpolation start of every set (still air, its first mic as origin)."""
-    m0 = mics[:, 0]
-    mi = mics[:, 1:] - m0[:, None]
-    r = c * z  # (S, M-1) range differences
-    if dims == 2:
-        zrel = source_z_m - m0[:, 2]
-        a = np.concatenate([-2 * mi[..., :2], -2 * r[..., None]], axis=-1)
-        b = r**2 - np.sum(mi**2, axis=-1) + 2 * mi[..., 2] * zrel[:, None]
-    else:
-        a = np.concatenate([-2 * mi, -2 * r[..., None]], axis=-1)
-        b = r**2 - np.sum(mi**2, axis=-1)
-    ata = np.swapaxes(a, 1, 2) @ a
-    atb = (np.swapaxes(a, 1, 2) @ b[..., None])[..., 0]
-    with np.errstate(invalid="ignore"):
-        ok = np.isfinite(ata).all(axis=(1, 2)) & (np.abs(np.linalg.det(ata)) > 0)
-    sol = np.full(atb.shape, np.nan)
-    if ok.any():
-        sol[ok] = np.linalg.solve(ata[ok], atb[ok][..., None])[..., 0]
-    return sol[:, :dims] + m0[:, :dims]
-
-
-def _solve(mics, z, cov, c, wind, dims, source_z_m):
-    """Closed-form start and LM for every set: (model, x, chi2, converged, bad_start)."""
-    model = _Model(mics, z, cov, c, wind, dims, source_z_m)
-    x0 = _closed_form(mics, z, c, dims, source_z_m)
-    bad = ~np.isfinite(x0).all(axis=1)
-    x0[bad] = mics[bad].mean(axis=1)[:, :dims]
-    x, chi2, conv = _levenberg_marquardt(model, x0)
-    return model, x, chi2, conv, bad
-
-
-def _subsets(tau, cov, used):
-    """Arrival-time problem of every set on its mics ``used`` (S, M): z (S, M-1), cov."""
-    rows = np.arange(len(used))[:, None]
-    ref, rest = used[:, :1], used[:, 1:]
-    z = tau[rows, rest] - tau[rows, ref]
-    c_rr = cov[rows[..., None], rest[:, :, None], rest[:, None, :]]
-    c_r0 = cov[rows, rest, ref]  # (S, M-1)
-    c_00 = cov[rows, ref, ref]  # (S, 1)
-    cz = c_rr - c_r0[:, :, None] - c_r0[:, None, :] + c_00[:, :, None]
-    return z, cz
-
-
-def _levenberg_marquardt(model, x, max_iter=60):
-    """Every set's own Levenberg-Marquardt run, as :func:`locate.fix._refine`."""
-    n_w = x.shape[0]
-    r = model.residual(x)
-    chi2 = np.sum(r**2, axis=-1)
-    lam = np.full(n_w, 1e-3)
-    active = np.isfinite(chi2)
-    converged = np.zeros(n_w, bool)
-    for _ in range(max_iter):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        jw = model.jacobian(x[idx], idx)
-        jtj = np.swapaxes(jw, 1, 2) @ jw
-        g = np.einsum("wpk,wp->wk", jw, r[idx])
-        scale2 = np.clip(np.diagonal(jtj, axis1=1, axis2=2), 1e-30, None)
-        improved = np.zeros(idx.size, bool)
-        xn, rn, chi2n = x[idx].copy(), r[idx].copy(), chi2[idx].copy()
-        trying = np.ones(idx.size, bool)
-        for _ in range(30):  # raise the damping of the sets that went uphill
-            t = np.flatnonzero(trying)
-            if t.size == 0:
-                break
-            a = jtj[t] + lam[idx[t], None, None] * (np.eye(scale2.shape[1]) * scale2[t, None])
-            step = np.linalg.solve(a, g[t][..., None])[..., 0]
-            x_try = x[idx[t]] + step
-            r_try = model.residual(x_try, idx[t])
-            c_try = np.sum(r_try**2, axis=-1)
-            ok = np.isfinite(c_try) & (c_try <= chi2[idx[t]])
-            good = t[ok]
-            xn[good], rn[good], chi2n[good] = x_try[ok], r_try[ok], c_try[ok]
-            improved[good] = True
-            trying[good] = False
-            lam[idx[t[~ok]]] *= 10.0
-        stuck = idx[~improved]  # no downhill step: at a minimum to numerical precision
-        converged[stuck] = True
-        active[stuck] = False
-        up = np.flatnonzero(improved)
-        iu = idx[up]
-        small = (np.linalg.norm(xn[up] - x[iu], axis=1)
-                 <= 1e-9 * (1.0 + np.linalg.norm(x[iu], axis=1)))
-        dchi = chi2[iu] - chi2n[up]
-        x[iu], r[iu], chi2[iu] = xn[up], rn[up], chi2n[up]
-        lam[iu] = np.maximum(lam[iu] / 10.0, 1e-12)
-        done = small | (dchi <= 1e-10 * (1.0 + chi2[iu]))
-        converged[iu[done]] = True
-        active[iu[done]] = False
-    for _ in range(2):  # undamped polish: the exact minimum to rounding
-        jw = model.jacobian(x)
-        jtj = np.swapaxes(jw, 1, 2) @ jw
-        g = np.einsum("wpk,wp->wk", jw, r)
-        ok = np.isfinite(g).all(axis=1) & (np.abs(np.linalg.det(jtj)) > 0)
-        if ok.any():
-            step = np.linalg.solve(jtj[ok], g[ok][..., None])[..., 0]
-            xt = x[ok] + step
-            rt = model.residual(xt, np.flatnonzero(ok))
-            ct = np.sum(rt**2, axis=-1)
-            better = ct <= chi2[ok]
-            sel = np.flatnonzero(ok)[better]
-            x[sel], r[sel], chi2[sel] = xt[better], rt[better], ct[better]
-    return x, chi2, converged
-
-
 def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, pairs=None,
                  wind_mps=None, dims=2, source_z_m=0.0, reject=True, fallback=True,
                  reject_p_value=REJECT_P_VALUE) -> BatchFix:
@@ -330,8 +193,8 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
     cov_f = np.zeros((n_w, n_mics, n_mics))
     cov_f[:, 1:, 1:] = cov_u
     used = np.tile(np.arange(n_mics), (n_w, 1))
-    z, cz = _subsets(tau_f, cov_f, used)
-    _, x, chi2, converged, bad_start = _solve(mics[used], z, cz, c, wind, dims, source_z_m)
+    z, cz = subsets(tau_f, cov_f, used)
+    _, x, chi2, converged, bad_start = solve(mics[used], z, cz, c, wind, dims, source_z_m)
     dof = np.full(n_w, n_mics - 1 - dims)
     p_value = np.where(dof > 0, stats.chi2.sf(chi2, np.maximum(dof, 1)), 1.0)
     rejected = np.zeros((n_w, n_mics), bool)
@@ -348,8 +211,8 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
     for m in np.unique(n_used):  # one group per number of mics kept
         g = np.flatnonzero(n_used == m)
         keep = np.sort(np.where(rejected[g], n_mics, np.arange(n_mics)), axis=1)[:, :m]
-        zg, czg = _subsets(tau_f[g], cov_f[g], keep)
-        model = _Model(mics[keep], zg, czg, c, wind, dims, source_z_m)
+        zg, czg = subsets(tau_f[g], cov_f[g], keep)
+        model = Model(mics[keep], zg, czg, c, wind, dims, source_z_m)
         jw = model.jacobian(x[g])
         info = np.swapaxes(jw, 1, 2) @ jw
         ok = np.isfinite(info).all(axis=(1, 2)) & (np.abs(np.linalg.det(info)) > 0)
@@ -367,8 +230,8 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
         if g.size == 0:
             continue
         keep = np.sort(np.where(rejected[g], n_mics, np.arange(n_mics)), axis=1)[:, :m]
-        zg, czg = _subsets(tau_f[g], cov_f[g], keep)
-        model = _Model(mics[keep], zg, czg, c, wind, dims, source_z_m)
+        zg, czg = subsets(tau_f[g], cov_f[g], keep)
+        model = Model(mics[keep], zg, czg, c, wind, dims, source_z_m)
         far[g], factor = _checks(model, mics[keep], x[g], chi2[g],
                                  covp[g, :dims, :dims], inflation_p[g], dims)
         covp[g] *= factor[:, None, None]
@@ -447,8 +310,8 @@ def _exclude(used, rejected, x, chi2, dof, p_value, tau, cov, mics, c, wind, dim
             break
         cols = np.array([[j for j in range(m) if j != k] for k in range(m)])  # (m, m-1)
         trial = cur[a][:, cols].reshape(-1, m - 1)  # every exclusion of every active set
-        zt, czt = _subsets(tau[idx[a]].repeat(m, axis=0), cov[idx[a]].repeat(m, axis=0), trial)
-        _, xt, ct, _, _ = _solve(mics[trial], zt, czt, c, wind, dims, source_z_m)
+        zt, czt = subsets(tau[idx[a]].repeat(m, axis=0), cov[idx[a]].repeat(m, axis=0), trial)
+        _, xt, ct, _, _ = solve(mics[trial], zt, czt, c, wind, dims, source_z_m)
         dt = m - 2 - dims
         pt = (stats.chi2.sf(ct, dt) if dt > 0 else np.ones_like(ct)).reshape(a.size, m)
         ct = ct.reshape(a.size, m)

@@ -17,6 +17,7 @@ import numpy as np
 from locate.errors import SiteFileError
 
 _DECIMAL_COMMA = re.compile(r"\s*[+-]?\d+,\d+\s*")
+MAX_LOCAL_M = 1e6  # a local frame spans at most +/-1000 km (flat-earth metres; common practice)
 _ISO = re.compile(r"(\d{4})-(\d{2})-(\d{2})[Tt ](\d{2}):(\d{2}):(\d{2})(\.\d+)?"
                   r"(Z|z|[+-]\d{2}:\d{2})?")
 
@@ -210,6 +211,12 @@ def position(ctx, t, coords, where, *, z_default=None, who=""):
             raise ctx.error(_join(where, "lat"), f"{vals[0]:g} is outside -90..90 degrees")
         if not -180.0 <= vals[1] <= 180.0:
             raise ctx.error(_join(where, "lon"), f"{vals[1]:g} is outside -180..180 degrees")
+    for k, v in zip(keys, vals, strict=True):
+        if (coords == "local" or k == "alt") and v is not None and abs(v) > MAX_LOCAL_M:
+            todo = ("give the ellipsoidal height in metres" if k == "alt" else "give metres "
+                    'from a nearby origin (or lat/lon with coordinates = "wgs84")')
+            raise ctx.error(_join(where, k), f"{v:g} m is beyond +/-{MAX_LOCAL_M / 1e3:g} km: "
+                            + todo)
     return vals
 
 
@@ -233,7 +240,12 @@ def points(ctx, value, field, coords, to_local, *, min_points):
     if coords == "wgs84":
         if np.any(np.abs(pts[:, 0]) > 90.0):
             raise ctx.error(field, "latitude outside -90..90: give [lat, lon] pairs")
+        if np.any(np.abs(pts[:, 1]) > 180.0):
+            raise ctx.error(field, "longitude outside -180..180: give [lat, lon] pairs")
         pts = to_local(pts[:, 0], pts[:, 1])[:, :2]
+    elif np.any(np.abs(pts) > MAX_LOCAL_M):
+        raise ctx.error(field, f"a coordinate is beyond +/-{MAX_LOCAL_M / 1e3:g} km: give "
+                        "metres from a nearby origin (pixels for an image)")
     return pts
 
 

@@ -26,6 +26,7 @@ __all__ = ["read_toml", "dump_toml"]
 
 _BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
 _AT_LINE = re.compile(r"\(at line (\d+), column (\d+)\)")
+_COMMA_NUMBER = re.compile(r"=\s*([+-]?\d+),(\d+)\s*(#.*)?$")  # "x = 6,5": a decimal comma
 
 
 def read_toml(path) -> dict:
@@ -62,6 +63,10 @@ def read_toml(path) -> dict:
             line = int(m.group(1))
             src = text.splitlines()[line - 1].strip() if line <= len(text.splitlines()) else ""
             shown = f" ({src[:60]!r})" if src else ""
+            comma = _COMMA_NUMBER.search(src)
+            if comma:
+                what = (f"the number has a decimal comma: write {comma.group(1)}."
+                        f"{comma.group(2)} (a decimal point)")
             raise SiteFileError(f"TOML syntax error at line {line}, column {m.group(2)}{shown}: "
                                 f"{what}; fix that line", file=path, field=f"line {line}") from None
         raise SiteFileError(f"TOML syntax error: {what}", file=path) from None
