@@ -1,0 +1,163 @@
+"""Interrupted runs leave nothing behind: Ctrl-C (SIGINT) or a kill (SIGKILL) in the middle of a
+long ``events`` or ``fix`` writes no result and no temporary file, leaves an earlier result and
+the inputs untouched, and a rerun works.
+
+The recording is 6 minutes of low-level noise at 4 kHz (five mics, ~14 MB in a temporary
+folder) with one bang 10 s before the end, so a run spends a while scanning.  The signal is
+sent once the child has read its modules and a quarter of the file (``rchar`` in
+``/proc/PID/io``, Linux), i.e. while it is certainly still scanning.  Results are written with
+a temp file + rename (``locate.results.write_atomic``).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile
+
+from locate.synth import Emission, Waveform, simulate_events
+from tests.cli_helpers import digest
+from tests.scenes import ARRAY_40M
+
+RATE_HZ = 4000
+MINUTES = 6.0
+BANG_AT_S = MINUTES * 60.0 - 10.0
+SOURCE_M = np.array([12.0, 25.0, 0.0])
+REPO = Path(__file__).resolve().parents[1]
+# at 12 degC, 70 % RH: Cramer 1993 (331.3 + 0.606 T m/s dry, about +0.6 m/s humid: from memory)
+SPEED_MPS = 339.17
+
+pytestmark = pytest.mark.skipif(not Path("/proc/self/io").exists(),
+                                reason="needs /proc/PID/io (Linux) to know a run is mid-way")
+
+
+@pytest.fixture(scope="module")
+def long_site(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("long")
+    rng = np.random.default_rng(8)
+    n = int(MINUTES * 60 * RATE_HZ)
+    x = (2e-3 * rng.standard_normal((n, len(ARRAY_40M)))).astype(np.float32)
+    wf = Waveform(kind="impulse", band_hz=(150.0, 1500.0), duration_s=0.08, rms_pa_at_1m=5.0)
+    sim = simulate_events(ARRAY_40M, [Emission(SOURCE_M, 0.3, wf)], sample_rate_hz=RATE_HZ,
+                          duration_s=1.0, temperature_c=12.0, relative_humidity=70.0, rng=rng)
+    assert abs(sim.sound_speed_mps - SPEED_MPS) < 0.01
+    k = int((BANG_AT_S - 0.3) * RATE_HZ)
+    x[k:k + RATE_HZ] += (sim.signals.T / 10.0).astype(np.float32)
+    soundfile.write(folder / "rec.wav", x, RATE_HZ, subtype="PCM_16")
+    lines = ['title = "Night survey at Holloway Cut"', "", "[air]", "temperature_c = 12.0",
+             "relative_humidity = 70.0", "", "[recording]", 'file = "rec.wav"', ""]
+    for k, (px, py, pz) in enumerate(ARRAY_40M, 1):
+        lines += ["[[mics]]", f'name = "M{k}"', f"x = {px}", f"y = {py}", f"z = {pz}",
+                  f"channel = {k}", ""]
+    (folder / "site.toml").write_text("\n".join(lines))
+    return folder
+
+
+def _env():
+    return dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+
+
+def _start(args):
+    return subprocess.Popen([sys.executable, "-m", "locate", *map(str, args)], env=_env(),
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+@pytest.fixture(scope="module")
+def startup_bytes():
+    """Bytes a child reads to start up and import the commands' modules (.py/.pyc files)."""
+    code = ("import locate.cli, locate.audio, locate.pipeline, locate.results, locate.site, "
+            "locate.fix, locate.events, locate.delays; from pathlib import Path; "
+            "print(next(ln.split()[1] for ln in Path('/proc/self/io').read_text().splitlines()"
+            " if ln.startswith('rchar:')))")
+    out = subprocess.run([sys.executable, "-c", code], env=_env(), capture_output=True,
+                         text=True, check=True)
+    return int(out.stdout.strip())
+
+
+def _threshold(long_site, startup_bytes):
+    """Read this much and the child is past its imports and a quarter into the recording."""
+    return startup_bytes + (long_site / "rec.wav").stat().st_size // 4
+
+
+def _bytes_read(pid) -> int:
+    try:
+        text = Path(f"/proc/{pid}/io").read_text()
+    except OSError:
+        return 0
+    return int(next(ln.split()[1] for ln in text.splitlines() if ln.startswith("rchar:")))
+
+
+def _interrupt_mid_run(proc, sig, threshold_bytes):
+    """Send ``sig`` once the child has read ``threshold_bytes``; returns (code, stderr)."""
+    while _bytes_read(proc.pid) < threshold_bytes:
+        if proc.poll() is not None:
+            out, err = proc.communicate()
+            pytest.fail(f"the run ended before it could be interrupted (exit {proc.returncode}):"
+                        f" make the recording longer\n{err}")
+        try:
+            proc.wait(timeout=0.01)
+        except subprocess.TimeoutExpired:
+            pass
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=60)
+    return proc.returncode, err
+
+
+def _listing(folder):
+    return sorted(p.name for p in folder.iterdir())
+
+
+@pytest.mark.parametrize("command, sig, target", [
+    ("events", signal.SIGINT, "new.json"),
+    ("events", signal.SIGKILL, "new.json"),
+    ("fix", signal.SIGINT, "earlier.json"),  # over a result an earlier run wrote
+    ("fix", signal.SIGKILL, "earlier.json"),
+], ids=["events-sigint-then-rerun", "events-sigkill", "fix-sigint-over-earlier-then-rerun",
+        "fix-sigkill-over-earlier"])
+def test_an_interrupted_run_leaves_no_result_and_no_temp_file(long_site, startup_bytes,
+                                                               tmp_path, command, sig, target):
+    old = tmp_path / "earlier.json"
+    old.write_text('{"schema": "tdoa-result/1", "kind": "events", "note": "an earlier run"}\n')
+    inputs = [long_site / "site.toml", long_site / "rec.wav"]
+    before = digest(inputs + [old])
+    listing = _listing(long_site), _listing(tmp_path)
+    proc = _start([command, long_site / "site.toml", "--json", tmp_path / target])
+    code, err = _interrupt_mid_run(proc, sig, _threshold(long_site, startup_bytes))
+    if sig == signal.SIGINT:
+        assert code == 130, err  # the shell's convention for Ctrl-C: 128 + SIGINT
+        assert err.strip().splitlines()[-1] == ("tdoa: interrupted; no partial result was "
+                                                "written"), err
+        assert "Traceback" not in err
+    else:
+        assert code == -signal.SIGKILL
+    assert not (tmp_path / "new.json").exists()  # no result file
+    assert (_listing(long_site), _listing(tmp_path)) == listing  # no .new.json.*.part either
+    assert digest(inputs + [old]) == before  # inputs and the earlier result untouched
+    if sig == signal.SIGINT:
+        _rerun_works(long_site, tmp_path, command)
+
+
+def _rerun_works(long_site, folder, command):
+    out = folder / "rerun.json"
+    proc = _start([command, long_site / "site.toml", "--json", out])
+    _, stderr = proc.communicate(timeout=300)
+    assert proc.returncode == 0, stderr
+    result = json.loads(out.read_text())
+    if command == "events":
+        (event,) = result["events"]
+        # the scene's truth: the bang leaves at BANG_AT_S and first reaches the nearest mic
+        # after distance / sound speed; onsets are found on 5 ms frames
+        first_heard_s = BANG_AT_S + np.min(np.linalg.norm(ARRAY_40M - SOURCE_M, axis=1)) \
+            / SPEED_MPS
+        assert abs(event["t_s"] - first_heard_s) < 0.01
+    else:
+        (f,) = result["fixes"]
+        assert np.linalg.norm(np.array(f["position_m"][:2]) - SOURCE_M[:2]) < 0.5  # metres
+    assert sorted(p.name for p in folder.iterdir()) == ["earlier.json", "rerun.json"]
