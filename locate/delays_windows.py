@@ -12,10 +12,10 @@ for throughput:
   and shared by the m windows that hold it and by all pairs.
 * **Only the analysis band is kept.**  Everything after the forward transform works on the band
   bins (plus the smoothing margin), and the two inverse transforms per pair (PHAT pass and
-  coherence-weighted pass) are done at a decimated size M ~ 3 x the band's top bin instead of
-  the padded window length: the correlation is sampled at ~1.5 x its Nyquist rate, the coarse
-  peak is refined by a parabola through the three highest samples (vertex height and position)
-  and the fine delay does not use the grid at all.
+  coherence-weighted pass) are done at a decimated size M ~ 2.5 x the band's top bin instead
+  of the padded window length: the correlation is sampled at ~1.25 x its Nyquist rate, the
+  coarse peak is refined by a parabola through the three highest samples (vertex height and
+  position) and the fine delay does not use the grid at all.
 * **Fine delay without trigonometry per iteration.**  The Newton steps on
   sum_k c_k cos(phi_k + omega_k d) use the Taylor moments nu_n = sum_k c_k e^{i phi_k} x_k^n
   (x_k = omega_k / omega_max), one matrix product per chunk; the series is cut where the
@@ -210,7 +210,7 @@ def _spectra(x, g: _Setup, starts, workers):
 
 def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag_s,
                             band_hz=None, pairs=None, offsets_s=None, t0_s=0.0, workers=None,
-                            chunk=8, oversample=1.5, coherence_step=None) -> WindowDelays:
+                            chunk=8, oversample=1.25, coherence_step=None) -> WindowDelays:
     """Delays, uncertainties and quality of every pair in sliding windows.
 
     Parameters

@@ -105,8 +105,8 @@ def coarse_peaks(r, setup, bands_hz):
     if g.decimated:
         # excluded lags below the peak count as -inf, above as +inf: the search window is
         # symmetric, so the kept values' middle stays at the middle rank (to a few ranks)
-        # on every third lag (the grid oversamples the correlation 1.5x; samples three steps
-        # apart are about independent, so the robust statistics lose little)
+        # on every third lag (the grid samples the correlation at 1.2-1.5x its Nyquist rate;
+        # samples three steps apart are about independent, so the statistics lose little)
         sub, fl = r[..., ::3], floor[..., ::3]
         below = lags[None, None, ::3] < lags[k][..., None]
         med = _split_median(sub, fl, below)

@@ -100,7 +100,7 @@ def bench_delays(folder, minutes, repeat=2):
     pairs = all_pairs(8)
     max_lag = geometric_max_lag_s(MICS8_M, pairs, C)
     n, hop = int(WINDOW_S * FS), int(HOP_S * FS)
-    g = _Setup(float(FS), n, hop, 8, pairs, max_lag, BAND_HZ, 1.5)
+    g = _Setup(float(FS), n, hop, 8, pairs, max_lag, BAND_HZ, 1.25)
     bw = 240
     block_s = ((bw - 1) * hop + n) / FS
     t_read = t_a = t_b = 0.0
