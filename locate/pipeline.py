@@ -17,8 +17,8 @@ from locate.echo_check import onset_mismatch
 from locate.errors import NothingFoundError, OptionError
 from locate.events_stream import scan_recordings
 from locate.fix import locate_source
-from locate.results import CAUTIONS, SCHEMA, fix_to_dict
 from locate.gis import add_wgs84_positions
+from locate.results import CAUTIONS, SCHEMA, fix_to_dict
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
            "plan_spans"]
@@ -196,6 +196,7 @@ def fix_result(site, cond, entries, *, warnings=(), dims=2, source_z_m=0.0, kind
         result["fixes"] = entries
     if extra:
         result.update(extra)
+    add_wgs84_positions(result, site.origin_wgs84)  # "position_wgs84" beside "position_m"
     return result
 
 
@@ -205,4 +206,3 @@ def require_events(events, start_s, stop_s):
             f"no event stands out of the background between {start_s:.2f} and {stop_s:.2f} s: "
             "give a span with --from/--to for a continuous sound, or lower --threshold")
     return events
-    add_wgs84_positions(result, site.origin_wgs84)  # "position_wgs84" beside "position_m"
