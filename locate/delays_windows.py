@@ -193,13 +193,16 @@ def _spectra(x, g: _Setup, starts, workers):
         first = int(starts[0])
         n_seg = len(starts) + m - 1
         seg = x[:, first:first + n_seg * hop].reshape(n_mics, n_seg, hop)
-        f = sfft.rfft(seg, g.nfft, axis=-1, workers=workers)[..., sl]  # (N, S, Ks)
+        # single precision where the spectra are used in single precision anyway
+        f = sfft.rfft(seg.astype(np.float32) if g.single else seg, g.nfft, axis=-1,
+                      workers=workers)[..., sl]  # (N, S, Ks)
         f = np.moveaxis(f, 1, 0)  # (S, N, Ks)
         sums = seg.sum(axis=-1).T  # (S, N)
         out = f[: len(starts)].copy()
         wsum = sums[: len(starts)].copy()
         for q in range(1, m):  # shift segment q of each window to its offset q * hop
-            out += np.exp(-1j * g.omega * (q * hop / g.fs)) * f[q:q + len(starts)]
+            shift = np.exp(-1j * g.omega * (q * hop / g.fs)).astype(f.dtype)
+            out += shift * f[q:q + len(starts)]
             wsum += sums[q:q + len(starts)]
         box = sfft.rfft(np.ones(n), g.nfft)[sl]
         return out - (wsum / n)[:, :, None] * box
