@@ -64,7 +64,7 @@ def _split_median(values, keep, below):
     return np.where(keep.any(axis=-1), out, np.nan)
 
 
-def coarse_peaks(r, setup, bands_hz):
+def coarse_peaks(r, setup, bands_hz, stride=3):
     """Coarse lag, peak height, score and second-peak ratio of every correlation curve.
 
     Parameters
@@ -76,6 +76,8 @@ def coarse_peaks(r, setup, bands_hz):
     bands_hz : ndarray, shape (C, 2)
         Band of each window (sets the main-lobe exclusion: 3/4 of a period of the band
         centre, at least two grid steps).
+    stride : int
+        On a decimated grid, the floor median and MAD use every ``stride``-th lag.
 
     Returns
     -------
@@ -105,10 +107,10 @@ def coarse_peaks(r, setup, bands_hz):
     if g.decimated:
         # excluded lags below the peak count as -inf, above as +inf: the search window is
         # symmetric, so the kept values' middle stays at the middle rank (to a few ranks)
-        # on every third lag (the grid samples the correlation at 1.2-1.5x its Nyquist rate;
-        # samples three steps apart are about independent, so the statistics lose little)
-        sub, fl = r[..., ::3], floor[..., ::3]
-        below = lags[None, None, ::3] < lags[k][..., None]
+        # on every stride-th lag (the grid samples the correlation at 1.2-1.5x its Nyquist
+        # rate; samples three steps apart are about independent: the statistics lose little)
+        sub, fl = r[..., ::stride], floor[..., ::stride]
+        below = lags[None, None, ::stride] < lags[k][..., None]
         med = _split_median(sub, fl, below)
         mad = _split_median(np.abs(sub - med[..., None]), fl, below) * 1.4826
     else:
