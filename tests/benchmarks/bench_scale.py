@@ -15,8 +15,8 @@
 (d) peak resident memory of ``tdoa events`` and ``tdoa fix`` (and ``fix --window``) on a
     1-hour and a 10-minute 6-channel 48 kHz file, each in its own child process.
 
-Recordings are written to /tmp (``--folder``) and removed unless ``--keep``.  Nothing here
-asserts a time: it prints a table (docs/benchmarks.md).
+Recordings are written to a new folder in /tmp (or ``--folder``) and removed unless
+``--keep``.  Nothing here asserts a time: it prints a table (docs/benchmarks.md).
 """
 
 from __future__ import annotations
@@ -25,6 +25,7 @@ import argparse
 import os
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -219,12 +220,14 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--only", choices=("delays", "fixes", "memory"), default=None)
     ap.add_argument("--minutes", type=float, default=10.0, help="length for (a)/(b)")
-    ap.add_argument("--folder", default="/tmp/tdoa-bench-scale")
+    ap.add_argument("--folder", default=None,
+                    help="where to write the recordings (default: a new folder in /tmp)")
     ap.add_argument("--keep", action="store_true")
     args = ap.parse_args(argv)
     if args.keep:
         os.environ["TDOA_BENCH_KEEP"] = "1"
-    folder = Path(args.folder)
+    # a folder of its own by default, so that two runs at once never share a recording
+    folder = Path(args.folder or tempfile.mkdtemp(prefix="tdoa-bench-scale-"))
     folder.mkdir(parents=True, exist_ok=True)
     print(f"machine: {os.cpu_count()} cores; load average {os.getloadavg()[0]:.1f}")
     table = []
