@@ -181,6 +181,12 @@ _PEAK = ("import resource, sys\n"
          "try:\n    main(sys.argv[1:])\n"
          "finally:\n"
          "    kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
+         "    try:  # VmHWM: this process's own peak (ru_maxrss may carry the parent's)\n"
+         "        for line in open('/proc/self/status'):\n"
+         "            if line.startswith('VmHWM:'):\n"
+         "                kb = int(line.split()[1])\n"
+         "    except OSError:\n"
+         "        pass\n"
          "    print(f'PEAK_KB {kb}', file=sys.stderr)\n")
 
 
