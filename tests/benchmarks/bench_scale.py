@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -268,6 +269,8 @@ def main(argv=None):
     print("\n| measurement | value | note |\n|---|---|---|")
     for row in table:
         print("| " + " | ".join(row) + " |")
+    if args.folder is None and not args.keep:
+        shutil.rmtree(folder, ignore_errors=True)
     return 0
 
 
