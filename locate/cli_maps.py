@@ -99,8 +99,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
         write_json(json_path, result)
         echo(ctx, f"Result written to {json_path}")
     if map_path:
-        from locate import plot
-        plot.save_figure(plot.map_figure(site, result), map_path)
+        _draw_map(site, result, map_path)
         echo(ctx, f"Map written to {map_path}")
     return result
 
