@@ -8,6 +8,7 @@ import numpy as np
 from locate.cli import (
     DEMO_STEPS,
     _check_span_args,
+    _draw_map,
     _site_inputs,
     check_band,
     cli,
