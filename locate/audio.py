@@ -203,13 +203,17 @@ class Recordings:
                                  field="--from")
         return start_s, stop_s
 
-    def read(self, start_s, stop_s):
+    def read(self, start_s, stop_s, *, out=None, scratch=None):
         """Read the common-time span ``[start_s, stop_s)`` of every mic.
 
         Parameters
         ----------
         start_s, stop_s : float
             Common time, seconds (see the module notes).
+        out : ndarray, shape (N, T), float64, optional
+            Written in place and returned when its shape fits (saves allocating a block).
+        scratch : dict, optional
+            Holds the frame buffers of the files between calls (used by :meth:`blocks`).
 
         Returns
         -------
@@ -235,17 +239,21 @@ class Recordings:
         span = np.where(drifting, np.ceil((n_out - 1) * scale).astype(np.int64), n_out - 1)
         pad = np.where(drifting, SINC_HALF_TAPS, 0)
         lo, hi = k0 - pad, k0 + span + pad + 1  # frames needed, [lo, hi) in mic samples
-        out = np.empty((self.n_mics, n_out))
+        if out is None or out.shape != (self.n_mics, n_out) or out.dtype != np.float64:
+            out = np.empty((self.n_mics, n_out))
         by_file: dict[Path, list[int]] = {}
         for i, s in enumerate(self._sources):
             by_file.setdefault(s.path, []).append(i)
         for path, idx in by_file.items():
             f_lo, f_hi = int(lo[idx].min()), int(hi[idx].max())
-            block = _read_frames(path, f_lo, f_hi, self._sources[idx[0]].n_frames)
+            block = _read_frames(path, f_lo, f_hi, self._sources[idx[0]].n_frames,
+                                 scratch=scratch)
+            finite = bool(np.isfinite(block).all()) if block.dtype.kind == "f" else True
             for i in idx:
                 s = self._sources[i]
                 x = block[lo[i] - f_lo: hi[i] - f_lo, s.channel - 1]
-                self._check_finite(x, i, start_s, stop_s)
+                if not finite:
+                    self._check_finite(x, i, start_s, stop_s)
                 self._zero_fill_note(i, k0[i], k0[i] + span[i] + 1, start_s, stop_s)
                 if drifting[i]:
                     pos = SINC_HALF_TAPS + np.arange(n_out) * scale[i]
@@ -256,12 +264,17 @@ class Recordings:
             self._warn(key, msg)
         return out, residual
 
-    def blocks(self, block_s, overlap_s=0.0, start_s=None, stop_s=None):
+    def blocks(self, block_s, overlap_s=0.0, start_s=None, stop_s=None, *,
+               reuse=False):
         """Yield ``(t0_s, signals (N, T), residual_offset_s (N,))`` block after block.
 
         Blocks are ``block_s`` long and start every ``block_s - overlap_s`` seconds (both
         rounded to whole samples); the last block is cut at ``stop_s``.  ``start_s`` and
         ``stop_s`` default to the span that all mics cover.  Memory is one block.
+
+        With ``reuse=True`` every block is read into the same arrays (no new memory per
+        block, which is most of the cost of reading): a block is valid only until the next
+        one is asked for; copy what must outlive it.
         """
         fs = self.sample_rate_hz
         block_n = int(round(float(block_s) * fs))
@@ -277,9 +290,12 @@ class Recordings:
         self._check_span(start, stop)
         n0, n_stop = int(round(start * fs)), int(round(stop * fs))
         k = n0
+        buffer, scratch = None, ({} if reuse else None)
         while True:
             k_end = min(k + block_n, n_stop)
-            signals, residual = self.read(k / fs, k_end / fs)
+            signals, residual = self.read(k / fs, k_end / fs, out=buffer, scratch=scratch)
+            if reuse:
+                buffer = signals
             yield k / fs, signals, residual
             if k_end >= n_stop:
                 break
@@ -305,18 +321,26 @@ class Recordings:
                        "the end of its recording; filled with zeros")
 
 
-def _read_frames(path, lo, hi, n_frames) -> np.ndarray:
+def _read_frames(path, lo, hi, n_frames, scratch=None) -> np.ndarray:
     """Frames ``[lo, hi)`` of a file, ``(hi - lo, channels)`` float32, zeros outside the file.
 
     float32 holds 24-bit PCM exactly and halves the memory of a block of many channels; the
-    caller converts one channel at a time to float64.
+    caller converts one channel at a time to float64.  ``scratch`` (a dict) keeps the buffer
+    of each file for the next call of the same size.
     """
     with soundfile.SoundFile(str(path)) as f:
-        out = np.zeros((hi - lo, f.channels), dtype=np.float32)
+        shape = (hi - lo, f.channels)
+        out = None if scratch is None else scratch.get(path)
+        if out is None or out.shape != shape:
+            out = np.zeros(shape, dtype=np.float32)
+            if scratch is not None:
+                scratch[path] = out
         a, b = max(lo, 0), min(hi, n_frames)
         if b > a:
             f.seek(a)
             f.read(frames=b - a, dtype="float32", always_2d=True, out=out[a - lo: b - lo])
+        out[: max(min(a, hi) - lo, 0)] = 0.0  # before the file (a reused buffer holds old data)
+        out[max(b, lo) - lo:] = 0.0  # after it
     return out
 
 
@@ -384,7 +408,7 @@ def _signal_notes(signals, mic_names):
     rms = np.zeros(n_ch)
     silent = np.zeros(n_ch, dtype=bool)
     for i in range(n_ch):  # one channel at a time: temporaries of one channel only
-        full = np.abs(x[i]) >= CLIP_LEVEL
+        full = (x[i] >= CLIP_LEVEL) | (x[i] <= -CLIP_LEVEL)
         n_full[i] = np.count_nonzero(full)
         if n_full[i] >= CLIP_RUN and n >= CLIP_RUN:
             run[i] = bool(np.any(np.all(np.stack([full[k: n - CLIP_RUN + 1 + k]

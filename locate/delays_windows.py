@@ -321,7 +321,8 @@ def recording_window_delays(recordings, window_s, hop_s, *, max_lag_s, band_hz=N
     n, hop = int(round(window_s * fs)), int(round(hop_s * fs))
     bw = max(int(block_windows), 1)
     block_s = ((bw - 1) * hop + n) / fs
-    for t0, signals, residual in recordings.blocks(block_s, (n - hop) / fs, start_s, stop_s):
+    for t0, signals, residual in recordings.blocks(block_s, (n - hop) / fs, start_s, stop_s,
+                                                   reuse=True):
         if signals.shape[1] < n:
             break
         yield estimate_delays_windows(signals, fs, n / fs, hop / fs, max_lag_s=max_lag_s,

@@ -181,10 +181,12 @@ def stream_frame_energy(recordings, start_s, stop_s, *, frame_s=FRAME_S, band_hz
     lo_all = int(np.ceil(recordings.start_s * fs))
     hi_all = int(np.floor(recordings.stop_s * fs))
     k = n0
+    raw, scratch = None, {}  # one set of block buffers, reused
     while k < n_stop - 1:
         k_end = min(k + block, n_stop)
         a, b = max(k - pad, min(lo_all, k)), min(k_end + pad, max(hi_all, k_end))
-        sig, _ = recordings.read(a / fs, b / fs)
+        raw, _ = recordings.read(a / fs, b / fs, out=raw, scratch=scratch)
+        sig = raw
         if band_hz is not None:
             sig = _band(sig, fs, band_hz)
         yield (k_end - k) / fs, frame_energy_db(sig[:, k - a:k_end - a], fs, frame_s=frame / fs)

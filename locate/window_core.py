@@ -161,8 +161,10 @@ def _fine_delays(a, omega, limit_s, taylor_s=None):
                                         np.repeat(x[:, None], n_terms + 1, axis=1)], axis=1),
                         axis=1)  # (K, J + 2): x^0 .. x^(J+1)
     a2 = a.reshape(-1, a.shape[-1])
-    mu = ((a2.real.astype(np.float32) @ powers).astype(float)
-          + 1j * (a2.imag.astype(np.float32) @ powers)).reshape(lead + (n_terms + 2,))
+    # einsum, not @: BLAS would start its own threads inside the caller's worker threads
+    mu = (np.einsum("ck,kj->cj", a2.real.astype(np.float32), powers).astype(float)
+          + 1j * np.einsum("ck,kj->cj", a2.imag.astype(np.float32), powers)
+          ).reshape(lead + (n_terms + 2,))
     inv_fact = 1.0 / np.array([math.factorial(j) for j in range(n_terms)], dtype=float)
 
     def t_sum(m, z):  # T_m / ds^m
@@ -310,7 +312,7 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
         sign = np.where(ii[sel] == u, 1.0, -1.0)
         f = wf[:, sel] * om * np.sqrt(a[:, u] / 2.0)[:, None, :]
         covf[:, sel[:, None], sel[None, :]] += (np.outer(sign, sign)
-                                                * np.matmul(f, np.swapaxes(f, 1, 2)))
+                                                * np.einsum("fak,fbk->fab", f, f))
     diag = np.arange(n_p)
     covf[:, diag, diag] += np.sum(wf**2 * om**2 * (a[:, ii] * a[:, jj] / 2.0), axis=-1)
     scale = g.nfft / n_eff

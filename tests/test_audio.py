@@ -101,6 +101,28 @@ def test_blocks_tile_the_recording(tmp_path):
         next(rec.blocks(0.5, 0.5))
 
 
+def test_reused_block_buffers_give_the_same_samples_as_fresh_reads(tmp_path):
+    # reference: Recordings.read of each span into new arrays (itself checked against
+    # soundfile.read above); a late mic and an own file make the edge blocks zero-filled,
+    # so stale samples in a reused buffer would show
+    _multichannel(tmp_path, n=FS * 3 + 77)
+    soundfile.write(tmp_path / "m4.flac", _noise(FS * 2, 1, seed=9)[:, 0], FS,
+                    subtype="PCM_24")
+    site = load_site(_site(tmp_path, [{"channel": 1}, {"channel": 2, "offset_s": 0.4},
+                                      {"channel": 3}, {"file": "m4.flac", "offset_s": 0.9}]))
+    rec = open_recordings(site)
+    fresh = list(rec.blocks(0.7, 0.2, 0.0, 3.0))
+    reused = [(t0, sig.copy(), res) for t0, sig, res in rec.blocks(0.7, 0.2, 0.0, 3.0,
+                                                                      reuse=True)]
+    assert [t for t, *_ in reused] == [t for t, *_ in fresh] and len(fresh) == 6
+    for (_, a, ra), (_, b, rb) in zip(fresh, reused, strict=True):
+        np.testing.assert_array_equal(a, b)
+        np.testing.assert_array_equal(ra, rb)
+    assert np.all(fresh[0][1][1, :int(0.4 * FS)] == 0.0)  # M2 not yet recording
+    last = fresh[-1][1][3]  # the block 2.5..3.0 s; M4's file ends at 2.9 s
+    assert np.all(last[int(0.4 * FS):] == 0.0) and np.all(last[:int(0.4 * FS) - 1] != 0.0)
+
+
 def test_per_mic_files_and_mixed_sources(tmp_path):
     _, whole = _multichannel(tmp_path, channels=2)
     own = _noise(FS * 2, 1, seed=5)[:, 0]

@@ -112,7 +112,8 @@ def bench_delays(folder, minutes, repeat=2):
     good = []
     t_all = time.perf_counter()
     tr = time.perf_counter()
-    for t0b, x, res in rec.blocks(block_s, (n - hop) / FS):
+    # reused buffers, as recording_window_delays reads them
+    for t0b, x, res in rec.blocks(block_s, (n - hop) / FS, reuse=True):
         t_read += time.perf_counter() - tr
         if x.shape[1] < n:
             break
