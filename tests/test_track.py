@@ -214,21 +214,31 @@ def test_ellipses_cover_the_truth_with_known_gaussian_delays():
 @pytest.mark.slow
 def test_vehicle_ellipse_coverage_on_simulated_audio():
     # Issue 3: track points inside their 95 % ellipses ~95 % of the time (Monte Carlo over
-    # independent noise; chi-square 2 dof from scipy.stats.chi2).
-    path = _vehicle_path(heading=100.0)
-    m2 = []
-    for seed in range(4):
+    # independent passes; chi-square 2 dof from scipy.stats.chi2).  The points of one pass share
+    # most of their error (one fitted path), so a pass is nearly all in or all out and the
+    # passes, not the points, are the independent trials: 12 passes in random directions.
+    # A 60-pass run of this scene gave 96.8 % of 4 140 points inside, heading and speed z-score
+    # spreads 0.99 and 0.82.
+    rng = np.random.default_rng(2000)
+    m2, heading_z, speed_z = [], [], []
+    for k in range(12):
+        heading = float(rng.uniform(0.0, 360.0))
+        path = _vehicle_path(heading=heading)
         sim = _simulate(VEHICLE_MICS, path, (synth.Waveform("noise", band_hz=(150.0, 3000.0)),),
-                        14.0, 10.0, seed=100 + seed)
+                        14.0, 10.0, seed=2000 + k)
         res = track_recording(_span(sim, 1.0, 13.5), FS, VEHICLE_MICS, C, t0_s=1.0,
                               source_z_m=0.5, band_hz=(150.0, 3000.0))
         err = res.position_m - path.position_m(res.t_emit_s)
         m2.append(_horizontal_m2(err, res.covariance_m2))
+        heading_z.append((((res.heading_deg - heading + 180.0) % 360.0) - 180.0)
+                         / res.heading_sd_deg)
+        speed_z.append((res.speed_mps - 20.0) / res.speed_sd_mps)
     frac = np.mean(np.concatenate(m2) < CHI2_95_2D)
-    # Measured 0.71 on these seeds (276 points): the errors are sub-millimetre but the delay
-    # covariance is at the 1 us level, so small systematic timing errors show; the Gaussian-delay
-    # test above reaches ~95 %.  This bound guards against a gross loss of consistency.
-    assert 0.6 <= frac
+    assert 0.85 <= frac  # 0.93 on these passes
+    assert np.mean(np.abs(heading_z) < 1.96) >= 0.75  # normal 95 % interval, 12 trials
+    # stated sds neither too small (spread > 1.6) nor grossly too large; 12 trials put the
+    # spread of a z-score within about +-0.4 of its true value (speed 0.48, heading 1.24 here)
+    assert 0.3 < np.std(speed_z) < 1.6 and 0.3 < np.std(heading_z) < 1.6
 
 
 def test_window_longer_than_the_span_is_an_option_error():
