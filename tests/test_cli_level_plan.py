@@ -15,8 +15,9 @@ ARRAY = np.array([[0.0, 0.0, 1.5], [60.0, 0.0, 1.5], [60.0, 55.0, 1.5], [0.0, 55
 P_FULL_SCALE_PA = 20.0  # the recorder's 0 dBFS sine is 20 Pa rms = 120 dB SPL
 
 
-@pytest.fixture(scope="module", params=[(120.0, 150.0, 1.5), (-180.0, 260.0, 1.5)],
-                ids=["about 100 m", "about 300 m"])
+@pytest.fixture(scope="module",
+                params=[(-60.0, 20.0, 1.5), (120.0, 150.0, 1.5), (-180.0, 260.0, 1.5)],
+                ids=["about 60 m", "about 100 m", "about 300 m"])
 def level_scene(request, tmp_path_factory):
     src = np.array(request.param)
     folder = tmp_path_factory.mktemp("level")
