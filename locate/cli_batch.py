@@ -38,7 +38,10 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path):
     echo(ctx, f"{len(tasks)} task(s) from {Path(manifest_path).name} on {where}; results in "
               f"{out_dir}")
 
+    finished = []
+
     def report(rec):
+        finished.append(rec["status"] != "failed")
         label = f"{rec['name']} ({rec['command']}, {Path(rec['site']).name}, {rec['span']})"
         if rec["status"] == "failed":
             warn(f"task {label} failed: {rec['error']}")
@@ -46,7 +49,13 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path):
             echo(ctx, f"  {rec['status']:<8} {label}"
                       + (f": {rec['error']}" if rec["error"] else ""))
 
-    summary = run_tasks(tasks, jobs=jobs, scheduler=scheduler, resume=resume, on_done=report)
+    try:
+        summary = run_tasks(tasks, jobs=jobs, scheduler=scheduler, resume=resume,
+                            on_done=report)
+    except KeyboardInterrupt:
+        click.echo(f"tdoa: batch interrupted after {sum(finished)} of {len(tasks)} task(s); "
+                   "their results are kept: rerun with --resume to do the rest", err=True)
+        raise
     doc = summary_document(tasks, summary)
     write_json(summary_path or out_dir / "batch-summary.json", doc)
     n = doc["counts"]

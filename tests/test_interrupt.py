@@ -1,6 +1,7 @@
 """Interrupted runs leave nothing behind: Ctrl-C (SIGINT) or a kill (SIGKILL) in the middle of a
 long ``events`` or ``fix`` writes no result and no temporary file, leaves an earlier result and
-the inputs untouched, and a rerun works.
+the inputs untouched, and a rerun works.  An interrupted ``batch`` keeps the results of the
+tasks that finished and ``--resume`` does the rest.
 
 The recording is 6 minutes of low-level noise at 4 kHz (five mics, ~14 MB in a temporary
 folder) with one bang 10 s before the end, so a run spends a while scanning.  The signal is
@@ -161,3 +162,45 @@ def _rerun_works(long_site, folder, command):
         (f,) = result["fixes"]
         assert np.linalg.norm(np.array(f["position_m"][:2]) - SOURCE_M[:2]) < 0.5  # metres
     assert sorted(p.name for p in folder.iterdir()) == ["earlier.json", "rerun.json"]
+
+
+def test_an_interrupted_batch_keeps_finished_results_and_resume_does_the_rest(long_site,
+                                                                               tmp_path):
+    # Ctrl-C in a terminal reaches the whole process group (the batch and its workers): the
+    # finished tasks keep their (complete) results, the running ones write nothing, and
+    # --resume runs only what is missing.  Common practice for resumable batch runners.
+    out = tmp_path / "out"
+    site = (long_site / "site.toml").as_posix()
+    lines = ["[defaults]", f'output_dir = "{out.as_posix()}"', ""]
+    for k in range(1, 9):
+        lines += ["[[task]]", f'name = "scan-{k}"', f'site = "{site}"', 'command = "events"', ""]
+    manifest = tmp_path / "jobs.toml"
+    manifest.write_text("\n".join(lines))
+    proc = subprocess.Popen([sys.executable, "-m", "locate", "batch", str(manifest), "--jobs",
+                             "2"], env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, start_new_session=True)
+    while not out.exists() or len(list(out.glob("scan-*.json"))) < 2:
+        if proc.poll() is not None:
+            pytest.fail(f"the batch ended before it could be interrupted:\n{proc.stderr.read()}")
+        try:
+            proc.wait(timeout=0.01)
+        except subprocess.TimeoutExpired:
+            pass
+    os.killpg(proc.pid, signal.SIGINT)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert "rerun with --resume" in err
+    assert err.strip().splitlines()[-1] == "tdoa: interrupted; no partial result was written"
+    kept = sorted(p.name for p in out.iterdir())
+    assert 2 <= len(kept) < 8 and all(n.startswith("scan-") and n.endswith(".json")
+                                      for n in kept), kept  # no temp files, no summary yet
+    for name in kept:  # every file left is a whole result
+        (event,) = json.loads((out / name).read_text())["events"]
+        assert abs(event["t_s"] - BANG_AT_S) < 0.2
+    proc = subprocess.run([sys.executable, "-m", "locate", "batch", str(manifest), "--resume",
+                           "--jobs", "2"], env=_env(), capture_output=True, text=True,
+                          timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    assert f"{8 - len(kept)} done, 0 found nothing, {len(kept)} skipped" in proc.stdout
+    assert len(list(out.glob("scan-*.json"))) == 8
