@@ -65,9 +65,17 @@ def _env():
     return dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
 
 
-def _start(args):
+def _default_sigint():
+    # A test run started in the background of a non-interactive shell inherits SIGINT ignored,
+    # and Python keeps an ignored SIGINT ignored; a terminal's Ctrl-C reaches a foreground
+    # process with the default disposition, which is what these tests stand for.
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
+def _start(args, **kwargs):
     return subprocess.Popen([sys.executable, "-m", "locate", *map(str, args)], env=_env(),
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=_default_sigint, **kwargs)
 
 
 @pytest.fixture(scope="module")
@@ -176,9 +184,7 @@ def test_an_interrupted_batch_keeps_finished_results_and_resume_does_the_rest(lo
         lines += ["[[task]]", f'name = "scan-{k}"', f'site = "{site}"', 'command = "events"', ""]
     manifest = tmp_path / "jobs.toml"
     manifest.write_text("\n".join(lines))
-    proc = subprocess.Popen([sys.executable, "-m", "locate", "batch", str(manifest), "--jobs",
-                             "2"], env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            text=True, start_new_session=True)
+    proc = _start(["batch", manifest, "--jobs", "2"], start_new_session=True)
     while not out.exists() or len(list(out.glob("scan-*.json"))) < 2:
         if proc.poll() is not None:
             pytest.fail(f"the batch ended before it could be interrupted:\n{proc.stderr.read()}")
