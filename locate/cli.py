@@ -123,6 +123,62 @@ def _check_span_args(start_s, stop_s, window_s=None):
         raise OptionError(f"window {window_s:g} s must be positive", field="--window")
 
 
+def _check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path):
+    if hop_s is not None and not sweep:
+        raise OptionError("--hop works with --window --sweep only", field="--hop")
+    if not sweep:
+        return
+    if window_s is None or start_s is None:
+        raise OptionError("--sweep needs --window and a span (--from/--to)", field="--sweep")
+    if hop_s is not None and not 0 < hop_s <= window_s:
+        raise OptionError(f"hop {hop_s:g} s must be positive and at most the window "
+                          f"({window_s:g} s)", field="--hop")
+    if solve_air or panels_path:
+        raise OptionError("--sweep does not combine with "
+                          + ("--solve-air" if solve_air else "--panels")
+                          + ": use --window without --sweep", field="--sweep")
+
+
+def _sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims, source_z_m,
+           reject, warnings, json_path, csv_path, geojson_path, map_path):
+    """``fix --window W --sweep``: every window at once (locate.sweep), summary on screen."""
+    from locate.gis import write_geojson
+    from locate.pipeline import fix_result
+    from locate.results import fixes_csv, write_atomic, write_json
+    from locate.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines
+
+    hop_s = window_s if hop_s is None else hop_s
+    n_windows = int((stop_s - start_s - window_s) // hop_s) + 1
+    with progress_bar(ctx, n_windows, "Locating windows") as bar:
+        entries, notes = sweep_fixes(rec, site, cond, start_s, stop_s, window_s, hop_s,
+                                     band_hz=band_hz, dims=dims, source_z_m=source_z_m,
+                                     reject=reject, progress=bar.update)
+    warnings = warnings + notes + [w for w in rec.warnings if w not in warnings]
+    if not entries:
+        for w in warnings:
+            warn(w)
+        raise NothingFoundError("no window gave a usable fix (see the warnings above)")
+    result = fix_result(site, cond, entries, warnings=warnings + [SWEEP_NOTE], dims=dims,
+                        source_z_m=source_z_m)
+    lines, window_warnings = sweep_summary_lines(entries, window_s, hop_s)
+    for line in lines:
+        echo(ctx, line)
+    for w in window_warnings + result["warnings"]:
+        warn(w)
+    if json_path:
+        write_json(json_path, result)
+        echo(ctx, f"Result written to {json_path}")
+    if csv_path:
+        write_atomic(csv_path, fixes_csv(result))
+    if geojson_path:
+        write_geojson(geojson_path, result, site.origin_wgs84)
+        echo(ctx, f"GeoJSON written to {geojson_path}")
+    if map_path:
+        _draw_map(site, result, map_path)
+        echo(ctx, f"Map written to {map_path}")
+    return result
+
+
 def _site_inputs(site):
     files = [site.path, site.recording_file] + [m.file for m in site.mics]
     return [f for f in files if f is not None]
@@ -179,6 +235,11 @@ def check(ctx, site_path, dims):
 @output_options
 @click.option("--window", "window_s", type=float, default=None,
               help="Fix every window of this length (s) across --from/--to (steady source).")
+@click.option("--hop", "hop_s", type=float, default=None,
+              help="With --window --sweep: step between windows (s; default: the window).")
+@click.option("--sweep", is_flag=True,
+              help="With --window: the fast path for long spans (windowed delays, batched "
+                   "locator; no per-window echo check or budget) and a summary on screen.")
 @click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
               help="Event detection: dB above the background.")
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
@@ -187,8 +248,8 @@ def check(ctx, site_path, dims):
 @field_options
 @click.pass_context
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
-        csv_path, map_path, window_s, threshold_db, panels_path, no_reject, geojson_path=None,
-        solve_air=False, solve_wind=False, events_choice=None):
+        csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
+        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.airfit import fit_entry
@@ -208,6 +269,7 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
 
     band_hz = parse_band(band)
     _check_span_args(start_s, stop_s, window_s)
+    _check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path)
     site = load(site_path, dims)
     inputs = _site_inputs(site)
     for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
@@ -239,6 +301,10 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     else:
         spans, times = [(start_s, stop_s)], [start_s]
     entries, fixes = [], []
+    if sweep:
+        return _sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
+                      source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
+                      map_path)
     with progress_bar(ctx, len(spans), "Locating") as bar:
         for (a, b), t in zip(spans, times):
             try:
@@ -414,6 +480,8 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
             screen = max((v for v in r["barrier_db"] if v is not None), default=0.0)
             echo(ctx, f"   at {r['name']} ({r['distance_m']:.0f} m): {_db(r['lpa_db'])} "
                       f"{unit}(A), barrier up to {_db(screen)} dB")
+        for note in lev.get("notes", []):
+            warn(f"#{k}: {note}")
     echo(ctx, "Screening estimate only: ground effect, meteorology and reflections are not "
               "modelled; not a compliance measurement.")
     if json_path:
@@ -437,6 +505,8 @@ def _check_same_site(site, result, result_path):
         raise ResultFileError(f"its mics ({', '.join(map(str, names))}) are not this site's "
                               f"({', '.join(site.mic_names)}): was it made from another site "
                               "file?", file=result_path, field="mics")
+    from locate.results import check_mic_positions
+    check_mic_positions(site, result, result_path)
 
 
 @cli.command()

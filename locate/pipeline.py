@@ -6,7 +6,7 @@ fix, events) over a :class:`locate.audio.Recordings` reader.  Nothing here write
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -134,6 +134,8 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
                              band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
                              keep_curves=keep_curves)
+    delays = _aligned_delays(recordings, delays, start_s, stop_s, band_hz, max_lag,
+                             keep_curves)
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
     amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
@@ -170,6 +172,29 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
     return entry, fix, delays, entry["warnings"]
+
+
+def _aligned_delays(recordings, delays, start_s, stop_s, band_hz, max_lag, keep_curves):
+    """Second pass with each mic's window shifted by its arrival offset (locate.align)."""
+    from locate.align import arrival_shifts_s, shifted_recordings
+
+    shifts = arrival_shifts_s(delays, recordings.n_mics)
+    shifted = None if shifts is None else shifted_recordings(recordings, shifts, start_s,
+                                                             stop_s)
+    if shifted is None:
+        return delays
+    signals, residual = shifted.read(start_s, stop_s)
+    ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]
+    # the search stays centred on the shifted pair delay: shrink it by the shift's size
+    lag = np.maximum(max_lag - np.abs(shifts[jj] - shifts[ii]), 0.0) + 1e-3
+    second = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=lag,
+                             band_hz=band_hz, pairs=delays.pairs, offsets_s=residual + shifts,
+                             t_s=start_s, keep_curves=keep_curves)
+    if second.curves is not None:  # back on the lags of the unshifted windows
+        for k, curve in enumerate(second.curves):
+            move = float(shifts[jj[k]] - shifts[ii[k]])
+            curve["lags_s"] = [v + move for v in curve["lags_s"]]
+    return replace(second, max_lag_s=max_lag)
 
 
 def fix_result(site, cond, entries, *, warnings=(), dims=2, source_z_m=0.0, kind="fix",
