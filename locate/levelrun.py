@@ -14,6 +14,9 @@ from locate.results import jsonable
 __all__ = ["level_for_fix"]
 
 
+BACKGROUND_MARGIN_DB = 6.0  # a background span must be this much quieter in the source band
+
+
 def _background_span(entry, recordings, length_s):
     """A span of the same length just before the fix's span (or after it at the start)."""
     a, b = entry["span_s"]
@@ -85,14 +88,28 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
     notes = []
     bg_span = _background_span(entry, recordings, length / fs)
     active_s = length / fs
+    lp_bg = None
     if bg_span is not None:
         bg, _ = recordings.read(*bg_span)
         bg = bg[:, :length]
         lp_bg = levels.octave_band_levels_db(bg, fs, full_scale_db_spl=fs_db, bands_hz=bands)
+        if not _quieter(lp, lp_bg, bands, entry.get("band_hz")):
+            lp_bg = None
+            notes.append("the sound goes on beside the fix's span (a steady source?): there is "
+                         "no background span to correct with")
+    if lp_bg is not None:
         lp = levels.background_corrected_db(lp, lp_bg)
         active_s = _active_duration_s(aligned, bg, fs) or active_s
     else:
-        notes.append("no background span beside the event: levels are not noise-corrected")
+        if bg_span is None:
+            notes.append("no background span beside the event: levels are not "
+                         "noise-corrected")
+        lp, outside = _outside_source_band(lp, bands, entry.get("band_hz"))
+        if outside:
+            notes.append("band(s) " + ", ".join(f"{b:g} Hz" for b in outside) + " lie "
+                         "outside the band the source was located in and could not be "
+                         "noise-corrected: left out (they would carry background noise, "
+                         "back-propagated as if it were the source)")
     # level while the source sounds: the energy over the window spread over its active part
     lp = lp + 10.0 * np.log10(length / fs / active_s)
     if np.any(dist < 0.5):
@@ -130,3 +147,28 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
         notes=notes,
     )
     return out
+
+
+def _outside_source_band(lp, bands, band_hz):
+    """Blank (NaN) the octave bands wholly outside the fix's coherent band ``band_hz``."""
+    if band_hz is None or len(band_hz) != 2:
+        return lp, []
+    lo, hi = levels.octave_band_edges_hz(bands)
+    outside = (hi <= float(band_hz[0])) | (lo >= float(band_hz[1]))
+    if not outside.any():
+        return lp, []
+    lp = np.array(lp, dtype=float)
+    lp[..., outside] = np.nan
+    return lp, [b for b, o in zip(bands, outside) if o]
+
+
+def _quieter(lp, lp_bg, bands, band_hz, margin_db=BACKGROUND_MARGIN_DB):
+    """Is the background span at least ``margin_db`` below the fix's span in the source band?"""
+    lo, hi = levels.octave_band_edges_hz(bands)
+    sel = np.ones(len(bands), bool) if band_hz is None else (
+        (hi > float(band_hz[0])) & (lo < float(band_hz[1])))
+    with np.errstate(divide="ignore"):
+        def total(x):
+            x = np.asarray(x, dtype=float)[..., sel]
+            return 10.0 * np.log10(np.nansum(10.0 ** (x / 10.0)))
+        return total(lp) - total(lp_bg) >= margin_db

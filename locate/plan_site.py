@@ -350,8 +350,8 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
     res.region_before = pl.region_metric(pos, pts, objective=objective, **kw)
     res.ranking = pl.propose_next_mic(pos, cand, pts, objective=objective,
                                       candidate_names=cand_names, **kw)[: int(n_ranked)]
-    res.proposals = pl.propose_mics(pos, cand, pts, k=n_propose, objective=objective,
-                                    candidate_names=cand_names, **kw)
+    res.proposals = [] if int(n_propose) == 0 else pl.propose_mics(
+        pos, cand, pts, k=n_propose, objective=objective, candidate_names=cand_names, **kw)
     new = np.vstack([pos] + [p.position_m[None] for p in res.proposals])
     kw["timing"] = tm.with_mics(len(res.proposals))
     res.grid_after = pl.expected_ellipse_grid(new, xs, ys, source_z_m=source_z_m, **kw)

@@ -25,6 +25,7 @@ from locate import __version__
 from locate import report_context as rc
 from locate import report_format as rf
 from locate.errors import OptionError, ResultFileError, SiteFileError, TdoaError
+from locate.results import check_mic_positions, mic_moves_m
 
 __all__ = ["KINDS", "SECTIONS", "build_report", "make_report", "check_same_site",
            "recordings_info", "report_demo_step"]
@@ -79,10 +80,9 @@ def check_same_site(site, result, label):
                               f"{site.path.name} ({', '.join(site.mic_names)}{detail}): was "
                               "it made from another site?", file=label, field="mics")
     notes = []
-    try:
-        pos = np.array([m["position_m"] for m in mics], dtype=float)
-        moved = np.linalg.norm(pos - site.positions_m, axis=1)
-    except (KeyError, TypeError, ValueError):
+    check_mic_positions(site, result, label)
+    moved = mic_moves_m(site, result)
+    if moved is None:
         return notes
     if np.nanmax(moved) > SAME_PLACE_M:
         k = int(np.nanargmax(moved))

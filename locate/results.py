@@ -144,6 +144,44 @@ def read_result(path, *, kinds=None) -> dict:
     return obj
 
 
+OTHER_SITE_FRACTION = 0.1  # a mic this far (fraction of the array's extent, and > 1 m) off
+OTHER_SITE_MIN_M = 1.0  # its site-file position: the result belongs to another layout
+
+
+def mic_moves_m(site, result):
+    """How far each mic of ``result`` (``mics[].position_m``) lies from the site's, (N,) m.
+
+    None when the result does not give positions for exactly the site's mics.
+    """
+    mics = result.get("mics")
+    try:
+        pos = np.array([m["position_m"] for m in mics], dtype=float)
+        return np.linalg.norm(pos - site.positions_m, axis=1)
+    except (KeyError, TypeError, ValueError, IndexError):
+        return None
+
+
+def check_mic_positions(site, result, label):
+    """Refuse a result whose mics (same names) stand elsewhere: another site's layout.
+
+    A re-survey moves mics by centimetres; a mic more than ``OTHER_SITE_FRACTION`` of the
+    array's extent and more than ``OTHER_SITE_MIN_M`` from its site-file position means the
+    result was made for another site that happens to use the same mic names.
+    """
+    moved = mic_moves_m(site, result)
+    if moved is None or not np.all(np.isfinite(moved)):
+        return
+    pos = site.positions_m
+    extent = float(np.max(np.linalg.norm(pos[:, None, :] - pos[None, :, :], axis=-1)))
+    limit = max(OTHER_SITE_FRACTION * extent, OTHER_SITE_MIN_M)
+    k = int(np.argmax(moved))
+    if moved[k] > limit:
+        raise ResultFileError(
+            f"its mic {site.mic_names[k]} stands {moved[k]:.1f} m from where the site file "
+            f"{Path(site.path).name} puts it (mics with the same names, elsewhere): was it "
+            "made from another site?", file=label, field="mics")
+
+
 def fix_to_dict(fix, delays, mic_names, *, t_s, span_s=None, extra=None) -> dict:
     """One entry of ``"fixes"`` in the result JSON."""
     cov = np.asarray(fix.covariance_m2, dtype=float)

@@ -58,6 +58,37 @@ def test_sound_power_is_recovered_within_1_db_per_band(level_scene, tmp_path):
     assert "Screening estimate" in out
 
 
+def test_steady_source_without_background_leaves_out_bands_outside_its_band(tmp_path):
+    # A steady 300-2500 Hz source sounds through the whole recording: there is no background
+    # beside it to correct with, so the bands wholly outside the band it was located in
+    # (octave edges per IEC 61260-1) hold only noise and must not be back-propagated.
+    # Truth as the level scene: Lw = Lp(1 m) + 11 dB (textbook), Lp(1 m) of the emitted signal.
+    src = np.array([-150.0, 120.0, 1.5])
+    wave = Waveform(kind="noise", band_hz=(300.0, 2500.0), duration_s=8.0, rms_pa_at_1m=60.0)
+    sim = simulate_events(ARRAY, [Emission(src, -1.0, wave)], sample_rate_hz=24000.0,
+                          duration_s=6.5, temperature_c=15.0, relative_humidity=60.0,
+                          noise_rms=2e-3, rng=np.random.default_rng(62))
+    site = write_site(tmp_path, ARRAY, sim.signals, 24000.0, temperature_c=15.0,
+                      humidity=60.0, full_scale_pa=P_FULL_SCALE_PA * np.sqrt(2))
+    site.write_text(site.read_text().replace("channel = ", "full_scale_db_spl = 120.0\n"
+                                             "channel = "))
+    emitted = sim.emitted_signals[0] / (P_FULL_SCALE_PA * np.sqrt(2))
+    lw_true = levels.octave_band_levels_db(emitted, sim.emitted_rate_hz,
+                                           full_scale_db_spl=120.0) + 11.0
+    fix_json, lev_json = tmp_path / "fix.json", tmp_path / "lev.json"
+    code, _, err = run(["fix", site, "--from", 2.0, "--to", 4.0, "--source-z", src[2],
+                        "--json", fix_json])
+    assert code == 0, err
+    code, _, err = run(["level", site, fix_json, "--json", lev_json])
+    assert code == 0, err
+    assert "outside the band the source was located in" in err
+    doc = json.loads(lev_json.read_text())
+    got = {b: v for b, v in zip(doc["bands_hz"], doc["source_lw_db"])}
+    assert got[63] is None and got[4000] is None and got[8000] is None
+    for b in (500, 1000):
+        assert abs(got[b] - lw_true[list(BANDS).index(b)]) <= 1.0, (b, got[b])
+
+
 def test_level_without_calibration_is_labelled_dbfs(level_scene, tmp_path):
     site, src, _ = level_scene
     plain = tmp_path / "uncal.toml"
@@ -81,6 +112,32 @@ def test_level_refuses_a_result_from_another_site(level_scene, tmp_path):
     assert code == 2 and "mics" in err and len(err.strip().splitlines()) == 1
 
 
+def test_level_and_map_refuse_a_result_whose_same_named_mics_stand_elsewhere(level_scene,
+                                                                            tmp_path):
+    # common practice: a result belongs to the layout it was computed for; mics with this
+    # site's names 300 m away mean another site, a few cm a re-survey (accepted)
+    site, src, _ = level_scene
+    fix_json = tmp_path / "fix.json"
+    code, _, err = run(["fix", site, "--source-z", src[2], "--json", fix_json])
+    assert code == 0, err
+    doc = json.loads(fix_json.read_text())
+    for m in doc["mics"]:
+        m["position_m"][0] += 0.03
+    resurveyed = tmp_path / "resurveyed.json"
+    resurveyed.write_text(json.dumps(doc))
+    code, _, err = run(["level", site, resurveyed])
+    assert code == 0, err
+    for m in doc["mics"]:
+        m["position_m"][0] += 300.0
+    elsewhere = tmp_path / "elsewhere.json"
+    elsewhere.write_text(json.dumps(doc))
+    for args in (["level", site, elsewhere], ["map", site, elsewhere, "-o", tmp_path / "m.png"]):
+        code, _, err = run(args)
+        assert code == 2 and "another site" in err and "mics" in err, err
+        assert len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "m.png").exists()
+
+
 def test_level_refuses_a_result_of_another_schema(level_scene, tmp_path):
     site, _, _ = level_scene
     bad = tmp_path / "bad.json"
@@ -99,6 +156,17 @@ def test_plan_proposes_a_mic_and_writes_a_map(level_scene, tmp_path):
     assert doc["kind"] == "plan" and doc["proposals"]
     assert doc["proposals"][0]["factor"] > 1.0
     assert "Proposed next mic" in out
+
+
+def test_plan_with_propose_0_maps_the_layout_only(level_scene, tmp_path):
+    # --propose takes 0..10 (its help): 0 is the map of the present layout, no proposal
+    site, _, _ = level_scene
+    doc_path = tmp_path / "plan.json"
+    code, out, err = run(["plan", site, "--timing-sd", "2e-5", "--propose", "0", "--json",
+                          doc_path])
+    assert code == 0, err
+    assert json.loads(doc_path.read_text())["proposals"] == []
+    assert "Proposed next mic" not in out
 
 
 def test_plan_rejects_a_bad_extent(level_scene):
