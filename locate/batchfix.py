@@ -315,7 +315,9 @@ def _exclude(used, rejected, x, chi2, dof, p_value, tau, cov, mics, c, wind, dim
         dt = m - 2 - dims
         pt = (stats.chi2.sf(ct, dt) if dt > 0 else np.ones_like(ct)).reshape(a.size, m)
         ct = ct.reshape(a.size, m)
-        best = np.argmax(np.where(np.isfinite(ct), pt, -1.0), axis=1)
+        # same dof for every exclusion of a step: the best p-value is the least chi-square
+        # (and chi-square does not underflow to a tie when several mics are faulty)
+        best = np.argmin(np.where(np.isfinite(ct), ct, np.inf), axis=1)
         r = np.arange(a.size)
         dropped[a, cur[a, best]] = True
         new = np.empty((idx.size, m - 1), int)

@@ -21,6 +21,7 @@ uniform wind (:func:`locate.air.travel_time_s`).  Steps:
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -92,6 +93,22 @@ class Fix:
     dims: int = 2
     residuals_s: np.ndarray | None = None
     covariance_inflation: float = 1.0
+
+
+def _log_p_value(chi2, dof):
+    """log P(X > chi2), X ~ chi-square(dof); finite far into the tail (ranking exclusions).
+
+    Where scipy's ``logsf`` gives -inf, the leading terms of the upper incomplete gamma
+    function's asymptotic series: log Q(a, x) ~ (a - 1) log x - x - lgamma(a), a = dof / 2,
+    x = chi2 / 2 (Abramowitz & Stegun 1964, 6.5.32).
+    """
+    if dof <= 0:
+        return 0.0
+    v = float(stats.chi2.logsf(chi2, dof))
+    if np.isfinite(v):
+        return v
+    a, x = 0.5 * dof, 0.5 * max(float(chi2), 1e-300)
+    return (a - 1.0) * math.log(x) - x - math.lgamma(a)
 
 
 def predict_delays(source_m, mic_positions_m, pairs, sound_speed_mps, wind_mps=None):
@@ -494,7 +511,9 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
         while (state[5] > 0 and stats.chi2.sf(state[3], state[5]) < reject_p_value
                and trial_used.size > need + 1):
             trials = [(k, fit(trial_used[trial_used != k])) for k in trial_used]
-            k, state = max(trials, key=lambda t: stats.chi2.sf(t[1][3], t[1][5]))
+            # log p: with two or more faulty mics every p-value of one exclusion can
+            # underflow to 0, and a tie would drop the first mic, not the worst one
+            k, state = max(trials, key=lambda t: _log_p_value(t[1][3], t[1][5]))
             trial_used = trial_used[trial_used != k]
             trial_rejected.append(names[k])
         if trial_rejected and (state[5] == 0

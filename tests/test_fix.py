@@ -112,6 +112,34 @@ def test_mic_with_a_gross_clock_error_is_rejected():
     assert any("rejected" in w for w in fx.warnings)
 
 
+SEVEN_MICS = np.array([[0.0, 0.0, 1.2], [40.0, 0.0, 1.5], [38.0, 35.0, 1.1], [2.0, 38.0, 1.3],
+                       [20.0, 18.0, 1.0], [-10.0, 20.0, 1.4], [25.0, -12.0, 1.2]])
+
+
+def test_two_mics_with_gross_clock_errors_are_both_rejected():
+    # With two faults of tens of ms against a 5 us timing sd every single exclusion leaves a
+    # chi-square whose p-value underflows to 0; the exclusions must still be ranked.
+    rng = np.random.default_rng(9)
+    src = np.array([31.0, 12.0, 0.0])
+    clock = np.array([0.0, 0.0, 0.031, 0.0, -0.0035, 0.0, 0.0])
+    ds = synthetic_delays(SEVEN_MICS, src, 5 * US, rng, clock=clock)
+    fx = locate_source(SEVEN_MICS, ds, 343.0, mic_names=list("ABCDEFG"))
+    assert sorted(fx.rejected_mics) == ["C", "E"]
+    assert np.linalg.norm(fx.position_m[:2] - src[:2]) < 5 * MM
+    from locate.batchfix import locate_batch
+    bf = locate_batch(SEVEN_MICS, ds.delay_s[None], ds.covariance_s2, 343.0, fallback=False)
+    assert list(np.flatnonzero(bf.rejected[0])) == [2, 4]
+    assert np.linalg.norm(bf.position_m[0, :2] - src[:2]) < 5 * MM
+
+
+@pytest.mark.parametrize("chi2, dof", [(3.0, 2), (50.0, 3), (300.0, 3), (700.0, 6)])
+def test_log_p_value_matches_scipy_where_scipy_is_finite(chi2, dof):
+    # reference: scipy.stats.chi2.logsf; beyond its range the asymptotic series takes over
+    from locate.fix import _log_p_value
+    assert _log_p_value(chi2, dof) == pytest.approx(stats.chi2.logsf(chi2, dof), rel=1e-9)
+    assert np.isfinite(_log_p_value(1e9, dof)) and _log_p_value(1e9, dof) < -4e8
+
+
 def test_mirror_solution_is_reported_for_a_three_mic_layout():
     # Three mics, two range differences: two hyperbola branches can cross twice.
     mics = np.array([[0.0, 0.0, 0.0], [30.0, 0.0, 0.0], [0.0, 30.0, 0.0]])
