@@ -415,7 +415,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             band_hz=band_hz, max_lag_s=max_lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
-            raise NothingFoundError("no coherent sound along the path in the track windows")
+            raise NothingFoundError(
+                "no coherent sound along the path in the track windows"
+                + ("" if band_hz is not None else ": the whole band was searched; give --band "
+                   "around the source's sound (e.g. its octaves above the background)")
+                + "; a source passing close to the mics may need a shorter --window")
         new = fit_path(centres, eps, cov_w, mics, pairs, c, usable=ok_w, warp=warp,
                        initial=warp, robust=tolerant, knots_s=knots, **kw)
         moved = np.max(np.linalg.norm(new.path.position_m(new.t_emit_s)
