@@ -123,62 +123,6 @@ def _check_span_args(start_s, stop_s, window_s=None):
         raise OptionError(f"window {window_s:g} s must be positive", field="--window")
 
 
-def _check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path):
-    if hop_s is not None and not sweep:
-        raise OptionError("--hop works with --window --sweep only", field="--hop")
-    if not sweep:
-        return
-    if window_s is None or start_s is None:
-        raise OptionError("--sweep needs --window and a span (--from/--to)", field="--sweep")
-    if hop_s is not None and not 0 < hop_s <= window_s:
-        raise OptionError(f"hop {hop_s:g} s must be positive and at most the window "
-                          f"({window_s:g} s)", field="--hop")
-    if solve_air or panels_path:
-        raise OptionError("--sweep does not combine with "
-                          + ("--solve-air" if solve_air else "--panels")
-                          + ": use --window without --sweep", field="--sweep")
-
-
-def _sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims, source_z_m,
-           reject, warnings, json_path, csv_path, geojson_path, map_path):
-    """``fix --window W --sweep``: every window at once (locate.sweep), summary on screen."""
-    from locate.gis import write_geojson
-    from locate.pipeline import fix_result
-    from locate.results import fixes_csv, write_atomic, write_json
-    from locate.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines
-
-    hop_s = window_s if hop_s is None else hop_s
-    n_windows = int((stop_s - start_s - window_s) // hop_s) + 1
-    with progress_bar(ctx, n_windows, "Locating windows") as bar:
-        entries, notes = sweep_fixes(rec, site, cond, start_s, stop_s, window_s, hop_s,
-                                     band_hz=band_hz, dims=dims, source_z_m=source_z_m,
-                                     reject=reject, progress=bar.update)
-    warnings = warnings + notes + [w for w in rec.warnings if w not in warnings]
-    if not entries:
-        for w in warnings:
-            warn(w)
-        raise NothingFoundError("no window gave a usable fix (see the warnings above)")
-    result = fix_result(site, cond, entries, warnings=warnings + [SWEEP_NOTE], dims=dims,
-                        source_z_m=source_z_m)
-    lines, window_warnings = sweep_summary_lines(entries, window_s, hop_s)
-    for line in lines:
-        echo(ctx, line)
-    for w in window_warnings + result["warnings"]:
-        warn(w)
-    if json_path:
-        write_json(json_path, result)
-        echo(ctx, f"Result written to {json_path}")
-    if csv_path:
-        write_atomic(csv_path, fixes_csv(result))
-    if geojson_path:
-        write_geojson(geojson_path, result, site.origin_wgs84)
-        echo(ctx, f"GeoJSON written to {geojson_path}")
-    if map_path:
-        _draw_map(site, result, map_path)
-        echo(ctx, f"Map written to {map_path}")
-    return result
-
-
 def _site_inputs(site):
     files = [site.path, site.recording_file] + [m.file for m in site.mics]
     return [f for f in files if f is not None]
@@ -223,9 +167,21 @@ def check(ctx, site_path, dims):
         x, y, z = m.position_m
         echo(ctx, f"  {name:<8} x {x:9.2f}  y {y:9.2f}  z {z:6.2f} m   {Path(path).name} "
                   f"ch {ch}  offset {m.offset_s:+.6f} s")
+    opened = list(rec.warnings)
+    stop_s = min(rec.stop_s, rec.start_s + CHECK_SCAN_S)  # dead, silent or clipped channels
+    with progress_bar(ctx, stop_s - rec.start_s, "Reading the recordings") as bar:
+        for _t0, signals, _ in rec.blocks(60.0, 0.0, rec.start_s, stop_s, reuse=True):
+            bar.update(signals.shape[1] / rec.sample_rate_hz)
+    found = [w for w in rec.warnings if w not in opened]
+    scanned = (f"the first {stop_s - rec.start_s:.0f} s" if stop_s < rec.stop_s
+               else "all of it")
+    echo(ctx, f"Signals   read {scanned}: "
+              + (f"{len(found)} channel problem(s), see the warnings" if found else
+                 "no dead, silent or clipped channel"))
     for w in list(site.warnings) + list(rec.warnings):
         warn(w)
-    echo(ctx, "Site file and recordings look usable.")
+    echo(ctx, "Site file and recordings look usable." if not found else
+         "Site file and recordings are readable; mind the channel warnings before a fix.")
 
 
 @cli.command()
@@ -269,7 +225,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
 
     band_hz = parse_band(band)
     _check_span_args(start_s, stop_s, window_s)
-    _check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path)
+    from locate.cli_sweep import check_sweep_args, run_sweep
+    check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path)
     site = load(site_path, dims)
     inputs = _site_inputs(site)
     for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
@@ -302,9 +259,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         spans, times = [(start_s, stop_s)], [start_s]
     entries, fixes = [], []
     if sweep:
-        return _sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
-                      source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
-                      map_path)
+        return run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
+                         source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
+                         map_path)
     with progress_bar(ctx, len(spans), "Locating") as bar:
         for (a, b), t in zip(spans, times):
             try:
@@ -371,9 +328,14 @@ def _print_fixes(ctx, site, cond, result):
             warn(f"#{k}: {w}")
 
 
+CHECK_SCAN_S = 300.0  # tdoa check reads this much of the recordings for channel problems
+
+
 def _len(v):
     if v is None or not np.isfinite(v):
         return "unbounded"
+    if v < 1e-4:
+        return f"{v * 1e6:.1f} um"
     if v < 0.01:
         return f"{v * 1000:.1f} mm"
     return f"{v * 100:.1f} cm" if v < 1 else f"{v:.2f} m"

@@ -134,8 +134,11 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
     return entries, notes
 
 
-def sweep_summary_lines(entries, window_s, hop_s, max_warnings=5):
+def sweep_summary_lines(entries, window_s, hop_s, max_warnings=5,
+                        length=lambda v: f"{v:.3g} m"):
     """Printed summary of a sweep: where the fixes gather and how they scatter.
+
+    ``length`` formats a length in metres for the screen.
 
     Returns
     -------
@@ -154,8 +157,9 @@ def sweep_summary_lines(entries, window_s, hop_s, max_warnings=5):
     lines = [f"{len(entries)} window(s) of {window_s:g} s every {hop_s:g} s, "
              f"{t0:.2f}..{t1:.2f} s",
              f"   median position x {med[0]:.2f} m, y {med[1]:.2f} m, z {med[2]:.2f} m; "
-             f"95 % of the fixes within {np.quantile(dist, 0.95):.2f} m of it",
-             f"   median 95 % ellipse {np.nanmedian(major):.3g} m x {np.nanmedian(minor):.3g} m "
+             f"95 % of the fixes within {length(np.quantile(dist, 0.95))} of it",
+             f"   median 95 % ellipse {length(np.nanmedian(major))} x "
+             f"{length(np.nanmedian(minor))} "
              f"(half-axes); {n_rej} window(s) with a rejected mic"]
     warns = [f"window at {e['t_s']:.2f} s: {w}" for e in entries for w in e["warnings"]]
     if len(warns) > max_warnings:

@@ -61,6 +61,22 @@ def test_check_prints_the_geometry(bang_site):
     assert "5 mics" in stdout and "48000 Hz" in stdout
 
 
+def test_check_reads_the_signals_and_names_a_dead_mic(bang_site, tmp_path):
+    # common practice: a channel 40 dB or more below the others is dead or unplugged
+    import soundfile
+    x, fs = soundfile.read(bang_site.parent / "rec.wav", always_2d=True)
+    x[:, 3] *= 1e-5  # M4 at -100 dB
+    soundfile.write(tmp_path / "rec.wav", x, fs, subtype="FLOAT")
+    site = tmp_path / "site.toml"
+    site.write_text(bang_site.read_text())
+    code, stdout, stderr = run(["check", site])
+    assert code == 0, stderr
+    assert 'mic "M4"' in stderr and "dead or unplugged" in stderr
+    assert "look usable" not in stdout and "channel warnings" in stdout
+    code, stdout, _ = run(["check", bang_site])
+    assert "no dead, silent or clipped channel" in stdout and "look usable" in stdout
+
+
 def test_events_lists_every_bang(bang_site):
     code, stdout, stderr = run(["events", bang_site])
     assert code == 0, stderr
