@@ -434,7 +434,8 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
         unit = "dB" if lev["calibrated"] else "dBFS-rel"
         echo(ctx, f"#{k} at ({entry['position_m'][0]:.1f}, {entry['position_m'][1]:.1f}) m: "
                   f"sound power {_db(lev['source_lwa_db'])} {unit}(A) "
-                  f"(+-{lev['lw_position_sd_db']:.1f} dB from the position)")
+                  f"(+-{lev['lw_position_sd_db']:.1f} dB from the position), averaged over "
+                  f"the {lev['active_duration_s']:.3g} s it sounds")
         echo(ctx, "   band Hz   " + " ".join(f"{b:>6}" for b in lev["bands_hz"]))
         echo(ctx, "   Lw        " + " ".join(f"{_db(v):>6}" for v in lev["source_lw_db"]))
         echo(ctx, "   mic spread" + " ".join(f"{_db(v):>6}" for v in lev["mic_spread_db"]))

@@ -141,6 +141,7 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
         calibrated=calibrated, t_s=entry.get("t_s"), span_s=[a, b],
         position_m=[float(v) for v in source],
         lw_position_sd_db=round(lw_sd, 3),
+        active_duration_s=round(float(active_s), 4),
         mics=[{"name": m.name, "distance_m": round(float(d), 3),
                "lp_db": jsonable(np.round(row, 2))}
               for m, d, row in zip(site.mics, dist, lp)],
