@@ -191,9 +191,11 @@ def uncertainty_budget(fix, delays, mic_positions_m, sound_speed_mps, *, sds, wi
         spot = suggest_mic(fix.position_m, mics[np.asarray(fix.used, bool)], geom,
                             sound_speed_mps, dims)
         geom["suggest_mic_m"] = [round(float(v), 1) for v in spot]
-        hint = (f"the source is outside the array: add a mic toward it (bearing "
-                f"{geom['bearing_deg']:.0f} deg from the array centre, e.g. near "
-                f"({spot[0]:.0f}, {spot[1]:.0f}) m; see tdoa plan)")
+        off = np.asarray(spot[:2], float) - geom["centre_m"]
+        spot_bearing = float(np.degrees(np.arctan2(off[0], off[1])) % 360.0)
+        hint = (f"the source is outside the array (bearing {geom['bearing_deg']:.0f} deg from "
+                f"the array centre): add a mic out that way, best near ({spot[0]:.0f}, "
+                f"{spot[1]:.0f}) m (bearing {spot_bearing:.0f} deg; see tdoa plan)")
     elif dominant == "unexplained":
         hint = ("the delays disagree more than the declared uncertainties allow: check the "
                 "survey, the clocks and for echoes")
