@@ -51,7 +51,7 @@ def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, d
     for w in window_warnings + result["warnings"]:
         warn(w)
     if json_path:
-        write_json(json_path, result)
+        write_json(json_path, result, indent=None)  # thousands of windows: compact
         echo(ctx, f"Result written to {json_path}")
     if csv_path:
         write_atomic(csv_path, fixes_csv(result))

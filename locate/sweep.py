@@ -6,7 +6,9 @@ delays of all windows are estimated together and located together
 (:func:`locate.batchfix.locate_batch`), each mic's windows shifted by its arrival offset
 (:mod:`locate.align`); the result entries have the fields of
 :func:`locate.pipeline.fix_span`'s, except what needs each window's samples or a full
-single-window analysis: no echo (onset) check and no uncertainty budget per window.
+single-window analysis: no echo (onset) check and no uncertainty budget per window,
+and the per-pair delays are not kept (``delays`` is empty: an hour of windows would hold
+millions of them).
 """
 
 from __future__ import annotations
@@ -23,8 +25,8 @@ from locate.results import fix_to_dict
 __all__ = ["sweep_fixes", "SWEEP_NOTE"]
 
 SWEEP_NOTE = ("windows fixed by the fast sweep (windowed delays, batched locator): no echo "
-              "check and no uncertainty budget per window; fix a single window without "
-              "--sweep for those")
+              "check, no uncertainty budget and no pair delays kept per window; fix a single "
+              "window without --sweep for those")
 
 
 def _batched_fix(bf, w, names, dims):
@@ -126,6 +128,7 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
             entry["warnings"] = list(dict.fromkeys(
                 _quality_notes(wd.quality[w], pairs, names) + list(fx.warnings)))
             entry["uncertainty_budget"] = None
+            entry["delays"] = []  # per-pair delays of every window: too many to keep
             entries.append(entry)
         if progress is not None:
             progress(len(wd))
