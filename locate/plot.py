@@ -172,6 +172,9 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
                         wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file)
 
 
+MANY_FIXES = 40  # above this many fixes on one map (a sweep), fixes are drawn as dots
+
+
 def _compose(names, mics, result, entries, sketch, receivers, barriers, air, wind_mps, title,
              caption, fix_index, hyperbolae, zoom, width_in, file):
     kind = result["kind"]
@@ -182,7 +185,8 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     est = np.array([entries[k]["position_m"][:2] for k in shown])
 
     # ---- view and layout (inches): map on the left, side column right, caption below
-    step = 1 if kind == "fix" else max(1, math.ceil(len(shown) / 8))
+    many = kind == "fix" and len(shown) > MANY_FIXES  # a sweep: dots, every k-th ellipse
+    step = 1 if kind == "fix" and not many else max(1, math.ceil(len(shown) / 8))
     ell_of = [k for n, k in enumerate(shown) if entries[k]["e95"] is not None
               and (n % step == 0 or n == len(shown) - 1)]
     core = [mics[:, :2], est] + [p[None] for _, p in rec]
@@ -210,7 +214,8 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     pt_per_m = map_w * 72.0 / (x1 - x0)
     notes = []
     lab = mk.Labeller(fig, ax)
-    lab.protect(est, 7.5 if kind == "fix" else 3.5, weight=100.0 if kind == "fix" else 3.0)
+    lab.protect(est if not many else est[[shown.index(k) for k in ell_of]],
+                7.5 if kind == "fix" else 3.5, weight=100.0 if kind == "fix" else 3.0)
     lab.protect(mics[:, :2], 5.5, weight=10.0)
     for _, p in rec:
         lab.protect(p, 5.0, weight=10.0)
@@ -234,6 +239,14 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     if kind == "track":
         draw_track(ax, lab, result, [entries[k] for k in shown], shown, ell_of, entries,
                     view, pt_per_m)
+    elif many:
+        ax.plot(est[:, 0], est[:, 1], "o", ms=2.2, color=color, alpha=0.45, mew=0,
+                zorder=29, gid="estimates")
+        for k in ell_of:
+            mk.draw_ellipse(ax, entries[k]["position_m"][:2], entries[k]["e95"], 0.95, color,
+                            gid=f"ellipse95:{k + 1}")
+        notes.append(f"{len(shown)} fixes drawn as dots; the 95 % ellipses and numbers of every "
+                     f"{step}th")
     else:
         for k in shown:
             e = entries[k]
@@ -274,7 +287,7 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
         if len(shown) >= 2 and all(t is not None for t in ts):
             time_ticks(ax, lab, np.asarray(ts, dtype=float), est, pt_per_m)
     if kind == "fix" and len(shown) > 1:
-        for k in shown:
+        for k in (ell_of if many else shown):
             lab.point_label(entries[k]["position_m"][:2], str(k + 1), prefer=(1, 1),
                             dist_pt=5, fontsize=8, fontweight="bold", color=color)
     if len(lines) <= 15:

@@ -192,6 +192,21 @@ def test_several_fixes_get_numbers_and_no_hyperbola_tangle():
     assert len(by_gid(axes(one, "map"), "hyperbola:2:")) == 6
 
 
+def test_a_sweep_of_many_fixes_is_drawn_as_dots_with_every_kth_ellipse():
+    # hundreds of windows of one steady source: one dot each, 95 % ellipses and numbers for
+    # about eight of them (common practice for dense point sets: thin the annotations)
+    res = exact_fix_result(n_fixes=200)
+    fig = draw_map(MICS, NAMES, res)
+    ax = axes(fig, "map")
+    (dots,) = by_gid(ax, "estimates")
+    assert len(dots.get_xdata()) == 200
+    assert 7 <= len(by_gid(ax, "ellipse95:")) <= 9 and not by_gid(ax, "estimate:")
+    numbers = [t for t in ax.texts if t.get_text().isdigit()]
+    assert 7 <= len(numbers) <= 9
+    words = " ".join(t.get_text() for t in fig.texts).replace("\n", " ")
+    assert "200 fixes drawn as dots" in words
+
+
 def test_mics_can_come_from_the_result_itself():
     fig = draw_map(None, None, exact_fix_result())
     assert len(by_gid(axes(fig, "map"), "mic:")) == 4
