@@ -212,7 +212,6 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     from locate.airfit import summary_lines as air_summary
     from locate.audio import open_recordings
     from locate.event_choice import choose_events
-    from locate.gis import write_geojson
     from locate.pipeline import (
         conditions_for,
         fix_result,
@@ -221,7 +220,7 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         require_events,
         scan_events,
     )
-    from locate.results import check_output_path, fixes_csv, write_atomic, write_json
+    from locate.results import check_output_path
 
     band_hz = parse_band(band)
     _check_span_args(start_s, stop_s, window_s)
@@ -290,8 +289,20 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         echo(ctx, line)
     for w in result["warnings"]:
         warn(w)
+    write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path)
+    if panels_path:
+        _draw_panels(result, panels_path)
+    return result
+
+
+def write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path, *,
+                      compact=False):
+    """The files a fix result asked for: JSON (compact for sweeps), CSV, GeoJSON, map."""
+    from locate.gis import write_geojson
+    from locate.results import fixes_csv, write_atomic, write_json
+
     if json_path:
-        write_json(json_path, result)
+        write_json(json_path, result, indent=None if compact else 1)
         echo(ctx, f"Result written to {json_path}")
     if csv_path:
         write_atomic(csv_path, fixes_csv(result))
@@ -301,9 +312,6 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     if map_path:
         _draw_map(site, result, map_path)
         echo(ctx, f"Map written to {map_path}")
-    if panels_path:
-        _draw_panels(result, panels_path)
-    return result
 
 
 def _print_fixes(ctx, site, cond, result):

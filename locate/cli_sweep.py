@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from locate.cli import _draw_map, _len, echo, progress_bar, warn
+from locate.cli import _len, echo, progress_bar, warn, write_fix_outputs
 from locate.errors import NothingFoundError, OptionError
 
 __all__ = ["check_sweep_args", "run_sweep"]
@@ -27,9 +27,7 @@ def check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path):
 def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims, source_z_m,
            reject, warnings, json_path, csv_path, geojson_path, map_path):
     """``fix --window W --sweep``: every window at once (locate.sweep), summary on screen."""
-    from locate.gis import write_geojson
     from locate.pipeline import fix_result
-    from locate.results import fixes_csv, write_atomic, write_json
     from locate.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines
 
     hop_s = window_s if hop_s is None else hop_s
@@ -50,15 +48,6 @@ def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, d
         echo(ctx, line)
     for w in window_warnings + result["warnings"]:
         warn(w)
-    if json_path:
-        write_json(json_path, result, indent=None)  # thousands of windows: compact
-        echo(ctx, f"Result written to {json_path}")
-    if csv_path:
-        write_atomic(csv_path, fixes_csv(result))
-    if geojson_path:
-        write_geojson(geojson_path, result, site.origin_wgs84)
-        echo(ctx, f"GeoJSON written to {geojson_path}")
-    if map_path:
-        _draw_map(site, result, map_path)
-        echo(ctx, f"Map written to {map_path}")
+    write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path,
+                      compact=True)  # thousands of windows: compact JSON
     return result
