@@ -211,6 +211,27 @@ def _extent(pos, extras, extent_m, *, pad_frac=0.6, pad_min_m=10.0):
     return lo[0] - pad, hi[0] + pad, lo[1] - pad, hi[1] + pad
 
 
+def declared_arrival_cov_s2(site, sound_speed_mps):
+    """Arrival-time covariance (N, N) s^2 from the site's declared survey and clock sds.
+
+    A horizontal position error of sd s per axis moves a mic's arrival time by its projection
+    on the direction to the source, sd s / c whatever that direction (first order, as the fix's
+    budget, JCGM 100:2008); clock errors add their variance, shared by the mics of one clock
+    (one audio file), whose common error cancels between them.  Sound-speed and wind sds are
+    left out (they scale with the distance to each mic, not per mic).
+    """
+    from locate.budget_inputs import declared_sds
+
+    sds = declared_sds(site)
+    n = len(site.mics)
+    cov = np.diag((np.asarray(sds["position_m"], float) / float(sound_speed_mps)) ** 2)
+    clk, grp = np.asarray(sds["clock_s"], float), np.asarray(sds["clock_group"], int)
+    for g in np.unique(grp):
+        members = grp == g
+        cov[np.ix_(members, members)] += float(clk[members].max()) ** 2 if members.any() else 0.0
+    return cov.reshape(n, n)
+
+
 def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=None,
               grid_step_m=None, extent_m=None, candidates=None, region=None, dims=2,
               source_z_m=0.0, objective="worst", n_propose=1, probability=0.95,
@@ -266,7 +287,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
     c = site.air.sound_speed_mps()
     wind = site.air.wind_mps() if site.air.wind_speed_mps else None
     tm = timing_model(len(pos), timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
-                      duration_s=duration_s)
+                      duration_s=duration_s).with_declared(declared_arrival_cov_s2(site, c))
     z_mic = float(np.median(pos[:, 2]))
     rec_pos = np.array([[*r.position_m[:2], source_z_m] for r in site.receivers]).reshape(-1, 3)
     outline = site_region_outline(site)

@@ -31,6 +31,7 @@ span longer than the sound, with its SNR diluted accordingly, predicts the same.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -94,6 +95,9 @@ class TimingModel:
     band_hz : tuple or None
     snr_db : ndarray, shape (N,) or None
         In-band SNR per mic, when given that way.
+    extra_arrival_cov_s2 : ndarray, shape (N, N) or None
+        Arrival-time covariance from declared survey and clock uncertainties
+        (:func:`with_declared`), added to the measurement's.
     """
 
     kind: str
@@ -103,6 +107,7 @@ class TimingModel:
     duration_s: float | None = None
     band_hz: tuple | None = None
     snr_db: np.ndarray | None = None
+    extra_arrival_cov_s2: np.ndarray | None = None
 
     @property
     def n_mics(self) -> int:
@@ -113,9 +118,13 @@ class TimingModel:
         """Covariance of the pair delays, shape (P, P), s^2 (default: all pairs i < j)."""
         n = self.n_mics
         pairs = all_pairs(n) if pairs is None else np.asarray(pairs, dtype=int).reshape(-1, 2)
+        extra = 0.0
+        if self.extra_arrival_cov_s2 is not None:
+            a = incidence_matrix(pairs, n)
+            extra = a @ self.extra_arrival_cov_s2 @ a.T
         if self.kind == "arrival_sd":
             a = incidence_matrix(pairs, n)
-            return (a * self.arrival_sd_s**2) @ a.T
+            return (a * self.arrival_sd_s**2) @ a.T + extra
         f, nsr, t = self.freqs_hz, self.noise_to_signal, float(self.duration_s)
         df = float(f[1] - f[0]) if len(f) > 1 else 1.0
         om2 = (2 * np.pi * f) ** 2
@@ -129,7 +138,7 @@ class TimingModel:
             cov += fu @ fu.T
         cov[np.diag_indices(len(pairs))] += np.sum(w**2 * om2 * ai * aj / 2.0, axis=1)
         # sums over cells 1/T wide: each sum is T df sum_k; the ratio keeps one 1/(T df)
-        return cov / np.outer(d, d) / (t * df)
+        return cov / np.outer(d, d) / (t * df) + extra
 
     def information_weights(self):
         """M = A^T Q^+ A, shape (N, N), 1/s^2: position information is G^T M G.
@@ -137,7 +146,7 @@ class TimingModel:
         For independent arrival errors this is W - w w^T / sum(w) with w = 1/sd^2 (the
         emission time eliminated); otherwise the pseudo-inverse over all pairs.
         """
-        if self.kind == "arrival_sd":
+        if self.kind == "arrival_sd" and self.extra_arrival_cov_s2 is None:
             w = 1.0 / self.arrival_sd_s**2
             return np.diag(w) - np.outer(w, w) / w.sum()
         pairs = all_pairs(self.n_mics)
@@ -154,20 +163,42 @@ class TimingModel:
         return np.sqrt(1.0 / (2.0 * self.duration_s * df * np.sum(om2 / self.noise_to_signal,
                                                                    axis=1)))
 
+    def with_declared(self, extra_arrival_cov_s2) -> TimingModel:
+        """The same model plus an arrival-time covariance (N, N) from declared uncertainties."""
+        extra = np.asarray(extra_arrival_cov_s2, float).reshape(self.n_mics, self.n_mics)
+        return dataclasses.replace(self, extra_arrival_cov_s2=extra if np.any(extra) else None)
+
     def with_mics(self, n_new=1):
-        """The model for the same mics plus ``n_new`` more, each with the median of theirs."""
+        """The model for the same mics plus ``n_new`` more, each with the median of theirs
+        (a declared survey/clock variance too, as an independent one)."""
+        extra = None
+        if self.extra_arrival_cov_s2 is not None:
+            n = self.n_mics
+            extra = np.zeros((n + n_new, n + n_new))
+            extra[:n, :n] = self.extra_arrival_cov_s2
+            extra[np.arange(n, n + n_new), np.arange(n, n + n_new)] = np.median(
+                np.diag(self.extra_arrival_cov_s2))
         if self.kind == "arrival_sd":
             sd = np.append(self.arrival_sd_s, np.full(n_new, np.median(self.arrival_sd_s)))
-            return TimingModel("arrival_sd", arrival_sd_s=sd)
+            return TimingModel("arrival_sd", arrival_sd_s=sd, extra_arrival_cov_s2=extra)
         nsr = np.vstack([self.noise_to_signal,
                          np.repeat(np.median(self.noise_to_signal, axis=0)[None], n_new, 0)])
         snr = None if self.snr_db is None else np.append(self.snr_db,
                                                          np.full(n_new, np.median(self.snr_db)))
         return TimingModel("carter", freqs_hz=self.freqs_hz, noise_to_signal=nsr,
-                           duration_s=self.duration_s, band_hz=self.band_hz, snr_db=snr)
+                           duration_s=self.duration_s, band_hz=self.band_hz, snr_db=snr,
+                           extra_arrival_cov_s2=extra)
 
     def describe(self) -> str:
         """One line for captions and summaries."""
+        text = self._describe_measurement()
+        if self.extra_arrival_cov_s2 is not None:
+            ex = np.sqrt(np.diag(self.extra_arrival_cov_s2)) * 1e6
+            text += (f"; declared survey/clock uncertainty adds up to {ex.max():.3g} µs per "
+                     "mic")
+        return text
+
+    def _describe_measurement(self) -> str:
         sd = self.equivalent_arrival_sd_s() * 1e6
         sd_txt = (f"{sd[0]:.3g} µs" if np.ptp(sd) <= 1e-3 * sd.max()
                   else f"{sd.min():.3g}–{sd.max():.3g} µs")
@@ -191,6 +222,8 @@ class TimingModel:
                                                                      self.freqs_hz[-1]))])
             if self.snr_db is not None:
                 out["snr_db"] = [float(v) for v in self.snr_db]
+        if self.extra_arrival_cov_s2 is not None:
+            out["declared_arrival_cov_s2"] = self.extra_arrival_cov_s2.tolist()
         return out
 
 

@@ -407,3 +407,51 @@ def test_oversized_grid_is_refused():
     xs = np.linspace(0, 1000, 2001)
     with pytest.raises(OptionError, match="too large"):
         expected_ellipse_grid(SQUARE, xs, xs, sound_speed_mps=C, timing_sd_s=1e-4)
+
+
+def test_declared_survey_uncertainty_widens_the_map_as_a_monte_carlo_of_the_locator(tmp_path):
+    # Mics surveyed to 5 cm per axis ([survey] position_sd_m): the true mics stand off their
+    # nominal positions by N(0, 5 cm); the locator, given the nominal ones, scatters by more
+    # than the timing alone explains.  Reference: Monte Carlo of locate_source on exact delays
+    # from the true mics (+2 us timing noise per mic), 400 trials; the plan's first-order map
+    # (JCGM 100:2008 propagation, as the fix's budget) within 20 % of the scatter.
+    from locate.air import travel_time_s
+    from locate.delays import DelaySet
+    from locate.plan_site import declared_arrival_cov_s2
+    from locate.site import load_site
+    from locate.toml_io import dump_toml
+
+    doc = {"air": {"temperature_c": 20.0, "relative_humidity": 50.0, "sound_speed_mps": C},
+           "survey": {"position_sd_m": 0.05},
+           "mics": [{"name": f"M{k + 1}", "x": float(x), "y": float(y), "z": float(z)}
+                    for k, (x, y, z) in enumerate(SQUARE)]}
+    path = tmp_path / "survey.toml"
+    path.write_text(dump_toml(doc))
+    site = load_site(path, require_audio=False)
+    src = np.array([110.0, 70.0, 0.0])
+    tm = timing_model(len(SQUARE), timing_sd_s=2 * US)
+    planned = tm.with_declared(declared_arrival_cov_s2(site, C))
+    assert "declared survey/clock uncertainty" in planned.describe()
+    grid = [np.array([src[0], src[0] + 1.0]), np.array([src[1], src[1] + 1.0])]
+    bare = expected_ellipse_grid(SQUARE, *grid, sound_speed_mps=C, timing=tm)
+    pred = expected_ellipse_grid(SQUARE, *grid, sound_speed_mps=C, timing=planned)
+    pred_major = float(pred["semi_major_m"][0, 0])
+    assert pred_major > 3.0 * float(bare["semi_major_m"][0, 0])
+    rng = np.random.default_rng(12)
+    pairs = all_pairs(len(SQUARE))
+    a = incidence_matrix(pairs, len(SQUARE))
+    cov = (2 * US) ** 2 * a @ a.T
+    errs = []
+    for _ in range(400):
+        true_mics = SQUARE + rng.normal(0.0, 0.05, SQUARE.shape)
+        t = travel_time_s(src, true_mics, C) + rng.normal(0.0, 2 * US, len(SQUARE))
+        ds = DelaySet(pairs=pairs, delay_s=t[pairs[:, 1]] - t[pairs[:, 0]],
+                      sd_s=np.sqrt(np.diag(cov)), covariance_s2=cov, peak=np.ones(len(pairs)),
+                      score=np.full(len(pairs), 100.0), second_ratio=np.zeros(len(pairs)),
+                      quality=("good",) * len(pairs), t_s=0.0, duration_s=1.0,
+                      band_hz=(100.0, 4000.0), sample_rate_hz=48000.0,
+                      max_lag_s=np.full(len(pairs), 0.3))
+        fx = locate_source(SQUARE, ds, C, reject=False)
+        errs.append(fx.position_m[:2] - src[:2])
+    scatter = ellipse(np.pad(np.cov(np.array(errs).T), ((0, 1), (0, 1))), 0.95)
+    assert pred_major == pytest.approx(scatter["semi_major_m"], rel=0.2)
