@@ -8,7 +8,9 @@ variance at 0-20 dB SNR in this project's simulations), while the delays themsel
 little.  Cutting each mic's window later by its arrival offset (pre-steering the records
 before correlating them, common practice) leaves only the residual delay between the windows,
 and the model holds again.  A burst wholly inside the span keeps its place
-in each shifted window, so aligning is harmless for impulsive events too.
+in each shifted window and gains nothing; aligning is done only when the sound goes on across
+both ends of the span (:func:`sound_at_both_edges`), since shifted windows also move
+reflections against the direct sound.
 
 The offsets come from a first pass over the same span: pair delays reduced to arrival times
 (:func:`locate.fix.arrival_times`), centred on their median.  The shifted spans are read through
@@ -19,9 +21,11 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["arrival_shifts_s", "shifted_recordings", "MIN_SHIFT_SAMPLES"]
+__all__ = ["arrival_shifts_s", "shifted_recordings", "sound_at_both_edges", "MIN_SHIFT_SAMPLES",
+           "EDGE_POWER_RATIO"]
 
 MIN_SHIFT_SAMPLES = 2.0  # below this largest shift (samples) the first pass is kept
+EDGE_POWER_RATIO = 0.5  # the sound goes on across the span's ends: edges this loud vs the span
 
 
 def arrival_shifts_s(delays, n_mics) -> np.ndarray | None:
@@ -59,3 +63,21 @@ def shifted_recordings(recordings, shifts_s, start_s, stop_s):
             > recordings.stop_s + 0.5 / recordings.sample_rate_hz):
         return None
     return recordings.with_clocks(recordings.offsets_s - shifts_s, recordings.drift_ppm)
+
+
+def sound_at_both_edges(signals, sample_rate_hz, shifts_s, ratio=EDGE_POWER_RATIO) -> bool:
+    """Does the sound go on across both ends of the span (a continuous sound)?
+
+    The mean power of the first and of the last ``max |shift|`` (at least 1 ms) of each mic's
+    span against the whole span's; True when, for the median mic, both ends reach ``ratio``.
+    A burst inside the span leaves only background at its ends.
+    """
+    x = np.asarray(signals, dtype=float)
+    n = x.shape[1]
+    e = int(min(max(np.max(np.abs(shifts_s)) * sample_rate_hz, 1e-3 * sample_rate_hz), n // 4))
+    if e < 1:
+        return False
+    whole = np.mean(x**2, axis=1)
+    ends = np.minimum(np.mean(x[:, :e] ** 2, axis=1), np.mean(x[:, -e:] ** 2, axis=1))
+    ok = whole > 0
+    return bool(ok.any() and np.median(ends[ok] / whole[ok]) >= ratio)

@@ -134,7 +134,7 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
                              band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
                              keep_curves=keep_curves)
-    delays = _aligned_delays(recordings, delays, start_s, stop_s, band_hz, max_lag,
+    delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
                              keep_curves)
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
@@ -174,11 +174,16 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     return entry, fix, delays, entry["warnings"]
 
 
-def _aligned_delays(recordings, delays, start_s, stop_s, band_hz, max_lag, keep_curves):
-    """Second pass with each mic's window shifted by its arrival offset (locate.align)."""
-    from locate.align import arrival_shifts_s, shifted_recordings
+def _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
+                    keep_curves):
+    """Second pass with each mic's window shifted by its arrival offset (locate.align), for
+    a sound that goes on across the span's ends."""
+    from locate.align import arrival_shifts_s, shifted_recordings, sound_at_both_edges
 
     shifts = arrival_shifts_s(delays, recordings.n_mics)
+    if shifts is not None and not sound_at_both_edges(signals, recordings.sample_rate_hz,
+                                                      shifts):
+        shifts = None
     shifted = None if shifts is None else shifted_recordings(recordings, shifts, start_s,
                                                              stop_s)
     if shifted is None:
