@@ -294,8 +294,11 @@ def _caption(res):
         src = {"site": "the site file's candidates", "grid": "a grid of candidates",
                "given": "the given candidates"}[res.candidate_kind]
         words.append(msg + f", chosen greedily from {src}")
-    words.append("a bound: mic-position, clock and sound-speed errors, echoes and wind "
-                 "gusts make real ellipses larger; local metres, x east, y north")
+    declared = res.timing.extra_arrival_cov_s2 is not None
+    words.append(("a bound with the declared survey and clock uncertainties: sound-speed "
+                  "errors" if declared else "a bound: mic-position, clock and sound-speed "
+                  "errors") + ", echoes and wind gusts make real ellipses larger; local "
+                 "metres, x east, y north")
     return "; ".join(words) + "."
 
 
