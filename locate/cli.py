@@ -194,8 +194,9 @@ def check(ctx, site_path, dims):
 @click.option("--hop", "hop_s", type=float, default=None,
               help="With --window --sweep: step between windows (s; default: the window).")
 @click.option("--sweep", is_flag=True,
-              help="With --window: the fast path for long spans (windowed delays, batched "
-                   "locator; no per-window echo check or budget) and a summary on screen.")
+              help="With --window: the fast path for one steady source over a long span "
+                   "(windowed delays, batched locator; no per-window echo check or budget) "
+                   "and a summary on screen.")
 @click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
               help="Event detection: dB above the background.")
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
