@@ -278,7 +278,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
             entries.append(entry)
             fixes.append(fx)
             bar.update(1)
-    warnings.extend(w for w in rec.warnings if w not in warnings)
+    # the reads' channel notes, unless a fix already said the same (its own figures)
+    said = {_shape(w) for e in entries for w in e["warnings"]} | {_shape(w) for w in warnings}
+    warnings.extend(w for w in rec.warnings if _shape(w) not in said)
     if not entries:
         for w in warnings:
             warn(w)
@@ -335,6 +337,12 @@ def _print_fixes(ctx, site, cond, result):
             echo(ctx, "   " + budget_summary(f["uncertainty_budget"]))
         for w in f["warnings"]:
             warn(f"#{k}: {w}")
+
+
+def _shape(message):
+    """A warning with its numbers blanked: the same note about other figures compares equal."""
+    import re
+    return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
 
 
 CHECK_SCAN_S = 300.0  # tdoa check reads this much of the recordings for channel problems
