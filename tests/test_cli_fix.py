@@ -75,6 +75,9 @@ def test_check_reads_the_signals_and_names_a_dead_mic(bang_site, tmp_path):
     assert "look usable" not in stdout and "channel warnings" in stdout
     code, stdout, _ = run(["check", bang_site])
     assert "no dead, silent or clipped channel" in stdout and "look usable" in stdout
+    # fix says it once, with the fix (not again at the top level with other figures)
+    code, _, stderr = run(["fix", site, "--from", 1.5, "--to", 2.0, "--source-z", 0.5])
+    assert stderr.count("dead or unplugged") == 1, stderr
 
 
 def test_events_lists_every_bang(bang_site):
