@@ -21,8 +21,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["arrival_shifts_s", "shifted_recordings", "sound_at_both_edges", "MIN_SHIFT_SAMPLES",
-           "EDGE_POWER_RATIO"]
+__all__ = ["aligned_recordings", "arrival_shifts_s", "shifted_recordings", "sound_at_both_edges",
+           "MIN_SHIFT_SAMPLES", "EDGE_POWER_RATIO"]
 
 MIN_SHIFT_SAMPLES = 2.0  # below this largest shift (samples) the first pass is kept
 EDGE_POWER_RATIO = 0.5  # the sound goes on across the span's ends: edges this loud vs the span
@@ -81,3 +81,16 @@ def sound_at_both_edges(signals, sample_rate_hz, shifts_s, ratio=EDGE_POWER_RATI
     ends = np.minimum(np.mean(x[:, :e] ** 2, axis=1), np.mean(x[:, -e:] ** 2, axis=1))
     ok = whole > 0
     return bool(ok.any() and np.median(ends[ok] / whole[ok]) >= ratio)
+
+
+def aligned_recordings(recordings, first_pass, start_s, stop_s, signals=None):
+    """``(recordings read at each mic's arrival offset, shifts_s (N,))``, or
+    ``(recordings, None)`` when the first pass gives no shifts (:func:`arrival_shifts_s`), the
+    shifted span leaves the recordings, or - with the span's ``signals`` given - the sound does
+    not go on across both ends of the span (:func:`sound_at_both_edges`)."""
+    shifts = arrival_shifts_s(first_pass, recordings.n_mics)
+    if shifts is None or (signals is not None and not sound_at_both_edges(
+            signals, recordings.sample_rate_hz, shifts)):
+        return recordings, None
+    shifted = shifted_recordings(recordings, shifts, start_s, stop_s)
+    return (recordings, None) if shifted is None else (shifted, shifts)

@@ -7,6 +7,7 @@ input is valid but nothing usable was found); ``--debug`` shows the traceback.
 
 from __future__ import annotations
 
+import re
 import sys
 import traceback
 from pathlib import Path
@@ -341,7 +342,6 @@ def _print_fixes(ctx, site, cond, result):
 
 def _shape(message):
     """A warning with its numbers blanked: the same note about other figures compares equal."""
-    import re
     return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
 
 

@@ -108,6 +108,14 @@ def plan_spans(events, recordings, positions_m, cond):
     return spans
 
 
+def search_lags_s(site, cond, pairs):
+    """Lag search half-width of each pair, (P,) s: geometry, wind, 0.5 ms and 3 clock sds."""
+    clock_sd = np.array([m.clock_sd_s or 0.0 for m in site.mics])
+    margin = 5e-4 + 3.0 * (clock_sd[pairs[:, 0]] + clock_sd[pairs[:, 1]])
+    return geometric_max_lag_s(site.positions_m, pairs, cond.sound_speed_mps,
+                               wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
+
+
 def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
              keep_curves=False, reject=True, t_s=None, extra_covariance=None):
     """Read one span, estimate delays and fix the source.
@@ -127,10 +135,7 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
                           "at every mic", field="--to")
     warnings = check_signals(signals, names)
     pairs = all_pairs(len(names))
-    clock_sd = np.array([m.clock_sd_s or 0.0 for m in site.mics])
-    margin = 5e-4 + 3.0 * (clock_sd[pairs[:, 0]] + clock_sd[pairs[:, 1]])
-    max_lag = geometric_max_lag_s(positions, pairs, cond.sound_speed_mps,
-                                  wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
+    max_lag = search_lags_s(site, cond, pairs)
     delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
                              band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
                              keep_curves=keep_curves)
@@ -178,15 +183,10 @@ def _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_l
                     keep_curves):
     """Second pass with each mic's window shifted by its arrival offset (locate.align), for
     a sound that goes on across the span's ends."""
-    from locate.align import arrival_shifts_s, shifted_recordings, sound_at_both_edges
+    from locate.align import aligned_recordings
 
-    shifts = arrival_shifts_s(delays, recordings.n_mics)
-    if shifts is not None and not sound_at_both_edges(signals, recordings.sample_rate_hz,
-                                                      shifts):
-        shifts = None
-    shifted = None if shifts is None else shifted_recordings(recordings, shifts, start_s,
-                                                             stop_s)
-    if shifted is None:
+    shifted, shifts = aligned_recordings(recordings, delays, start_s, stop_s, signals=signals)
+    if shifts is None:
         return delays
     signals, residual = shifted.read(start_s, stop_s)
     ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]

@@ -15,11 +15,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from locate.align import arrival_shifts_s, shifted_recordings
+from locate.align import aligned_recordings
 from locate.batchfix import locate_batch
-from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
+from locate.delays import all_pairs, estimate_delays
 from locate.delays_windows import recording_window_delays
 from locate.fix import REJECT_P_VALUE, Fix
+from locate.pipeline import search_lags_s
 from locate.results import fix_to_dict
 
 __all__ = ["sweep_fixes", "SWEEP_NOTE"]
@@ -93,10 +94,7 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
     hop_s = window_s if hop_s is None else hop_s
     positions, names = site.positions_m, site.mic_names
     pairs = all_pairs(len(names))
-    clock_sd = np.array([m.clock_sd_s or 0.0 for m in site.mics])
-    margin = 5e-4 + 3.0 * (clock_sd[pairs[:, 0]] + clock_sd[pairs[:, 1]])
-    max_lag = geometric_max_lag_s(positions, pairs, cond.sound_speed_mps,
-                                  wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
+    max_lag = search_lags_s(site, cond, pairs)
     # Windows cut at each mic's arrival offset (locate.align), from a first pass over the
     # start of the span: a steady source keeps its offsets.
     pilot_stop = min(stop_s, start_s + max(2.0, 4.0 * window_s))
@@ -104,11 +102,9 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
     pilot = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
                             band_hz=band_hz, pairs=pairs, offsets_s=residual)
     del signals
-    shifts = arrival_shifts_s(pilot, len(names))
-    shifted = None if shifts is None else shifted_recordings(recordings, shifts, start_s,
-                                                             stop_s)
-    if shifted is None:
-        shifted, shifts = recordings, np.zeros(len(names))
+    shifted, shifts = aligned_recordings(recordings, pilot, start_s, stop_s)
+    if shifts is None:
+        shifts = np.zeros(len(names))
     move = shifts[pairs[:, 1]] - shifts[pairs[:, 0]]
     entries, missing = [], 0
     for wd in recording_window_delays(shifted, window_s, hop_s, max_lag_s=max_lag,
