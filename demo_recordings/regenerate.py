@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from locate.audio import write_audio
+from locate.io.audio import write_audio
 from locate.synth import Emission, StraightPath, Waveform, simulate_events, simulate_moving
 
 HERE = Path(__file__).resolve().parent

@@ -4,9 +4,10 @@ Pure numpy/scipy; all randomness comes from the ``numpy.random.Generator`` passe
 Sources:
 
 * Spherical spreading (textbook): pressure falls as 1/r; -6 dB per doubling of distance.
-* Atmospheric absorption: ISO 9613-1:1993 via :func:`locate.air.absorption_db_per_m`, applied
+* Atmospheric absorption: ISO 9613-1:1993 via :func:`locate.physics.air.absorption_db_per_m`,
+applied
   as the zero-phase gain 10**(-alpha(f) r / 20).
-* Travel time in a uniform wind: :func:`locate.air.travel_time_s`.
+* Travel time in a uniform wind: :func:`locate.physics.air.travel_time_s`.
 * Ground reflection (textbook image method): a plane z = 0 with a frequency-independent
   reflection coefficient Q; the image source sits at (x, y, -z).
 * Retarded (emission) time of a moving source (textbook kinematics): t = t_e + tau with
@@ -51,8 +52,8 @@ from scipy import fft as sfft
 from scipy.interpolate import CubicSpline
 from scipy.special import i0
 
-from locate import air
 from locate.errors import ConvergenceError
+from locate.physics import air
 
 __all__ = [
     "Waveform", "Emission", "StraightPath", "WaypointPath", "Simulation",
@@ -315,7 +316,7 @@ def emission_time_s(t_heard_s, mic_m, path, sound_speed_mps, wind_mps=None, *,
         'closed' (StraightPath only): the root of the quadratic
         (c^2 - |u|^2) tau^2 + 2 (d.u) tau - |d|^2 = 0 with u = v - w and d = p(t) - m.
         'iterate': Newton on tau - T(p(t - tau)) with T the still-source travel time
-        (:func:`locate.air.travel_time_s`), at most ``max_iter`` steps.
+        (:func:`locate.physics.air.travel_time_s`), at most ``max_iter`` steps.
 
     Returns
     -------
@@ -356,7 +357,7 @@ def _iterate(t, mic, path, c, wind, tau, tol_s, max_iter):
     """Newton on g(tau) = tau - T(p(t - tau)) over the instants not yet settled.
 
     g' = 1 + grad T . v, grad T from implicit differentiation of |r - w T| = c T with
-    r = m - p (as in :func:`locate.air.travel_time_gradient`).  ``t`` (M,), ``mic`` (M, 3).
+    r = m - p (as in :func:`locate.physics.air.travel_time_gradient`).  ``t`` (M,), ``mic`` (M, 3).
     """
     if tau is None:
         tau = air.travel_time_s(path.position_m(t), mic, c, wind)

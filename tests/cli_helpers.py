@@ -9,8 +9,8 @@ from pathlib import Path
 
 import numpy as np
 
-from locate.audio import write_audio
 from locate.cli import main
+from locate.io.audio import write_audio
 
 
 def run(args):

@@ -16,7 +16,7 @@ import numpy as np
 import soundfile
 
 from locate import synth
-from locate.site import dump_site_toml
+from locate.io.site import dump_site_toml
 
 GAIN_FS_PER_PA = 0.02  # recorder gain: full scale per pascal (0 dBFS ~ 128 dB SPL)
 

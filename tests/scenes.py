@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
-from locate.fix import locate_source
+from locate.fix.solver import locate_source
+from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
 from locate.synth import Emission, Waveform, simulate_events
 
 # A 5-mic, ~40 m aperture array of an invented survey (heights of tripods vary a little).

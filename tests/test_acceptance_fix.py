@@ -3,7 +3,7 @@
 Scene: 5 mics, ~40 m aperture, broadband burst 100-4000 Hz, 1 s, 10 dB SNR per channel
 (simulator definition: white noise over the full band, see locate.synth), 48 kHz.
 The Cramer-Rao bound is evaluated at the truth for each trial's own delay covariance
-(Chan & Ho 1994 form, locate.uncertainty.crlb_covariance); the 95 % region uses chi-square
+(Chan & Ho 1994 form, locate.geometry.ellipses.crlb_covariance); the 95 % region uses chi-square
 with 2 dof (scipy.stats.chi2.ppf(0.95, 2) = 5.991).
 """
 
@@ -11,10 +11,10 @@ import numpy as np
 import pytest
 from matplotlib.path import Path as PolyPath
 
-from locate.air import sound_speed_mps, wind_vector_mps
-from locate.delays import DelaySet
-from locate.fix import locate_source
-from locate.uncertainty import crlb_covariance
+from locate.fix.solver import locate_source
+from locate.geometry.ellipses import crlb_covariance
+from locate.physics.air import sound_speed_mps, wind_vector_mps
+from locate.signal.delays import DelaySet
 from tests.scenes import ARRAY_40M, CENTRE_40M, burst_delays, inside
 
 pytestmark = pytest.mark.slow

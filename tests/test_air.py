@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from locate import air
+from locate.physics import air
 
 MPS = 1.0
 

@@ -1,4 +1,4 @@
-"""Joint position + sound-speed (+ wind) fit: ``tdoa fix --solve-air`` and locate.airfit.
+"""Joint position + sound-speed (+ wind) fit: ``tdoa fix --solve-air`` and locate.fix.air_solve.
 
 Truth comes from the project's exact simulator (locate.synth) run with the true air; the
 site file states an air temperature 10 degC off.  Reference library for the Jacobian:
@@ -11,17 +11,19 @@ import numpy as np
 import pytest
 from scipy.optimize._numdiff import approx_derivative
 
-from locate import airfit, synth
-from locate.air import sound_speed_mps, wind_vector_mps
-from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
-from locate.fix import arrival_times, locate_source
-from locate.site import Air
+from locate import synth
+from locate.fix import air_solve as airfit
+from locate.fix.solver import arrival_times, locate_source
+from locate.io.site import Air
+from locate.physics.air import sound_speed_mps, wind_vector_mps
+from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
 from tests.field_scene import MICS7_M, burst, run_cli, site_dict, write_multichannel, write_site
 
 MM = 1e-3
 RATE_HZ = 48000.0
 T_TRUE_C, T_SITE_C, RH = 22.0, 12.0, 60.0
-C_TRUE = sound_speed_mps(T_TRUE_C, RH)  # Cramer (1993) via locate.air: the simulator's speed
+C_TRUE = sound_speed_mps(T_TRUE_C, RH)  # Cramer (1993) via locate.physics.air: the simulator's
+# speed
 SOURCES = [np.array([9.0, 38.0, 1.0]), np.array([33.0, 11.0, 1.0]), np.array([47.0, 52.0, 1.0]),
            np.array([-5.0, 8.0, 1.0])]
 

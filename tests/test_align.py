@@ -1,4 +1,4 @@
-"""Arrival-aligned windows (locate.align): when they are used and what they leave alone.
+"""Arrival-aligned windows (locate.fix.align): when they are used and what they leave alone.
 
 Truth from the simulator (locate.synth); the spread of (error / stated sd) of a calibrated
 delay is 1 (definition of a standard deviation).
@@ -8,8 +8,8 @@ import json
 
 import numpy as np
 
-import locate.align as align
-from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
+import locate.fix.align as align
+from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
 from locate.synth import Emission, Waveform, simulate_events
 from tests.cli_helpers import run, write_site
 from tests.scenes import ARRAY_40M

@@ -1,4 +1,4 @@
-"""Tests for locate.audio: aligned span reads, blocks, offsets, drift, checks, errors."""
+"""Tests for locate.io.audio: aligned span reads, blocks, offsets, drift, checks, errors."""
 
 import datetime as dt
 import os
@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 import soundfile
 
-from locate.audio import check_signals, open_recordings, write_audio
 from locate.errors import OptionError, RecordingError
-from locate.site import load_site
-from locate.toml_io import dump_toml
+from locate.io.audio import check_signals, open_recordings, write_audio
+from locate.io.site import load_site
+from locate.io.toml import dump_toml
 
 FS = 8000
 LAYOUT = [(0.0, 0.0, 1.2), (40.0, 0.0, 1.5), (40.0, 30.0, 1.3), (0.0, 30.0, 1.2)]

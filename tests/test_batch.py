@@ -6,8 +6,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from locate import batch as batch_mod
 from locate.synth import Emission, Waveform, simulate_events
+from locate.workflows import batch as batch_mod
 from tests.cli_helpers import run, write_site
 from tests.scenes import ARRAY_40M
 
@@ -96,7 +96,7 @@ def test_resume_reruns_nothing_that_finished(survey, monkeypatch):
               if p.name != "batch-summary.json"}
     calls = []
     real = batch_mod.run_task
-    monkeypatch.setattr(batch_mod, "run_task", lambda t: calls.append(t.name) or real(t))
+    monkeypatch.setattr(batch_mod, "run_task", lambda t, r: calls.append(t.name) or real(t, r))
     code, out, err = run(["batch", survey / "jobs.toml", "--jobs", "1", "--resume"])
     assert code == 1 and calls == ["broken"]  # only the failed task runs again
     assert {p: p.stat().st_mtime_ns for p in stamps} == stamps

@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from scipy.optimize import least_squares
 
-from locate.batchfix import locate_batch
-from locate.delays import DelaySet, all_pairs
-from locate.fix import locate_source, predict_delays
+from locate.fix.batched import locate_batch
+from locate.fix.solver import locate_source, predict_delays
+from locate.signal.delays import DelaySet, all_pairs
 
 MM = 1e-3
 C = 343.0
@@ -48,7 +48,7 @@ def _delay_set(d, q):
 
 @pytest.mark.parametrize("dims", [2, 3])
 def test_batch_fixes_match_locate_source_including_rejected_mics(dims):
-    # Reference: locate.fix.locate_source, set by set (integrity test and mic exclusion on).
+    # Reference: locate.fix.solver.locate_source, set by set (integrity test and mic exclusion on).
     rng = np.random.default_rng(3 + dims)
     _, d, q = _sets(60, rng, dims=dims, bad_every=6, echo_every=10)
     bf = locate_batch(MICS, d, q, C, dims=dims)

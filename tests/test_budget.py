@@ -13,14 +13,14 @@ import soundfile
 from scipy import stats
 from scipy.differentiate import jacobian
 
-from locate import budget as B
-from locate.air import sound_speed_mps, travel_time_s
-from locate.delays import DelaySet, all_pairs, estimate_delays, geometric_max_lag_s
-from locate.fix import locate_source, predict_delays
-from locate.site import load_site
+from locate.accuracy import budget as B
+from locate.fix.solver import locate_source, predict_delays
+from locate.geometry.ellipses import crlb_covariance, ellipse
+from locate.io.site import load_site
+from locate.io.toml import dump_toml
+from locate.physics.air import sound_speed_mps, travel_time_s
+from locate.signal.delays import DelaySet, all_pairs, estimate_delays, geometric_max_lag_s
 from locate.synth import Emission, Waveform, simulate_events
-from locate.toml_io import dump_toml
-from locate.uncertainty import crlb_covariance, ellipse
 
 NS = 1e-9
 MM = 1e-3
@@ -416,7 +416,7 @@ def test_far_outside_the_array_the_monte_carlo_region_is_reported():
     assert mc["used"] and mc["axes_disagreement"] > 0.10, mc
     assert budget["method"] == "Monte Carlo propagation (JCGM 101:2008)"
     # the reported ellipse is the Monte Carlo 95 % region, no shorter than the first-order one
-    # (which the locator's linearity check, locate.fix_checks, has already enlarged: it says so)
+    # (which the locator's linearity check, locate.fix.integrity, has already enlarged: it says so)
     got = ellipse(fix.covariance_m2)["semi_major_m"]
     assert got == pytest.approx(mc["ellipse95"]["semi_major_m"], abs=0.01)
     assert any("ellipse was enlarged" in w for w in plain.warnings)

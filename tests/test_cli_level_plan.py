@@ -5,7 +5,7 @@ import json
 import numpy as np
 import pytest
 
-from locate import levels
+from locate.physics import levels
 from locate.synth import Emission, Waveform, simulate_events
 from tests.cli_helpers import run, write_site
 
@@ -32,7 +32,7 @@ def level_scene(request, tmp_path_factory):
     text += '\n[[receivers]]\nname = "Rook Cottage"\nx = 20.0\ny = 80.0\nz = 1.5\n'
     site.write_text(text)
     # True sound power per band: free-field Lw = Lp(1 m) + 11 dB (textbook), with Lp(1 m)
-    # the band level of the emitted signal itself (locate.levels on the emitted samples).
+    # the band level of the emitted signal itself (locate.physics.levels on the emitted samples).
     emitted = sim.emitted_signals[0] / (P_FULL_SCALE_PA * np.sqrt(2))
     lp1 = levels.octave_band_levels_db(emitted, sim.emitted_rate_hz, full_scale_db_spl=120.0)
     return site, src, lp1 + 11.0

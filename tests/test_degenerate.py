@@ -26,8 +26,8 @@ import json
 import numpy as np
 import pytest
 
+from locate.geometry.ellipses import chi2_scale
 from locate.synth import Emission, Waveform, simulate_events
-from locate.uncertainty import chi2_scale
 from tests.cli_helpers import run, write_site
 from tests.scenes import ARRAY_40M
 

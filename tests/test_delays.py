@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from locate.delays import all_pairs, estimate_delays, gcc_phat, geometric_max_lag_s
+from locate.signal.delays import all_pairs, estimate_delays, gcc_phat, geometric_max_lag_s
 from locate.synth import Waveform
 from tests.scenes import ARRAY_40M, RATE_HZ, burst_delays
 

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
-from locate.delays_windows import estimate_delays_windows, window_starts
+from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
+from locate.signal.windowed import estimate_delays_windows, window_starts
 from locate.synth import Emission, Waveform, simulate_events
 from tests.scenes import ARRAY_40M, RATE_HZ
 
@@ -37,7 +37,7 @@ def test_window_starts_cover_only_whole_windows():
 
 @pytest.mark.parametrize("hop_s", [0.25, 0.2])  # whole-hop windows (shared segments) or not
 def test_band_given_delays_agree_with_estimate_delays_within_a_tenth_of_sd(scene, hop_s):
-    # Reference: locate.delays.estimate_delays on each window (the published method).
+    # Reference: locate.signal.delays.estimate_delays on each window (the published method).
     sim, pairs, max_lag = scene
     band = (100.0, 3000.0)
     wd = estimate_delays_windows(sim.signals, RATE_HZ, 0.5, hop_s, max_lag_s=max_lag,
@@ -91,9 +91,9 @@ def test_integer_lag_matches_scipy_correlate_and_offsets_are_added():
 
 def test_windows_read_in_overlapping_blocks_equal_one_pass_over_the_span(scene, tmp_path):
     # Reference: estimate_delays_windows over the whole span in memory (same samples).
-    from locate.audio import open_recordings
-    from locate.delays_windows import WindowDelays, recording_window_delays
-    from locate.site import load_site
+    from locate.io.audio import open_recordings
+    from locate.io.site import load_site
+    from locate.signal.windowed import WindowDelays, recording_window_delays
     from tests.cli_helpers import write_site
 
     sim, _, max_lag = scene

@@ -3,8 +3,8 @@
 import numpy as np
 
 from locate import synth
-from locate.doppler import peak_frequency_hz, predicted_frequency
-from locate.motion import straight_path
+from locate.track.doppler import peak_frequency_hz, predicted_frequency
+from locate.track.motion import straight_path
 
 FS = 8000.0
 C = 343.0

@@ -7,8 +7,8 @@ import pytest
 
 from locate import synth
 from locate.errors import NothingFoundError, OptionError
-from locate.event_choice import choose_events, parse_event_choice
-from locate.events import Event
+from locate.signal.event_choice import choose_events, parse_event_choice
+from locate.signal.events import Event
 from tests.field_scene import MICS7_M, burst, run_cli, site_dict, write_multichannel, write_site
 
 TIMES = (0.4, 1.6, 2.9, 4.1)  # emission times of four bursts, s

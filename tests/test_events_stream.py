@@ -3,10 +3,10 @@
 import numpy as np
 import pytest
 
-from locate.audio import open_recordings
-from locate.events import detect_events
-from locate.events_stream import EventStream
-from locate.site import load_site
+from locate.io.audio import open_recordings
+from locate.io.site import load_site
+from locate.signal.event_scan import EventStream
+from locate.signal.events import detect_events
 from locate.synth import Emission, Waveform, simulate_events
 from tests.cli_helpers import write_site
 from tests.scenes import ARRAY_40M, RATE_HZ
@@ -27,7 +27,7 @@ def _envelope(rng, n_mics=5, n_frames=12000):
 
 @pytest.mark.parametrize("seed", range(6))
 def test_stream_finds_exactly_the_events_of_the_whole_envelope(seed):
-    # Reference: locate.events.detect_events on the whole envelope at once.
+    # Reference: locate.signal.events.detect_events on the whole envelope at once.
     rng = np.random.default_rng(seed)
     e = _envelope(rng)
     kw = dict(frame_s=0.005, t0_s=3.0, threshold_db=10.0, min_mics=3, max_spread_s=0.2,
@@ -69,7 +69,7 @@ def test_streamed_scan_finds_simulated_bursts_at_their_arrival(tmp_path):
                           duration_s=30.0, snr_db=25.0, rng=rng)
     site = load_site(write_site(tmp_path, ARRAY_40M, sim.signals, RATE_HZ))
     rec = open_recordings(site)
-    from locate.pipeline import conditions_for, scan_events
+    from locate.workflows.fixing import conditions_for, scan_events
     events = scan_events(rec, site.positions_m, conditions_for(site), band_hz=(200.0, 4000.0),
                          block_s=4.0)
     assert len(events) == 3

@@ -4,11 +4,11 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from locate.air import travel_time_s
-from locate.delays import DelaySet, all_pairs
 from locate.errors import NothingFoundError
-from locate.fix import arrival_times, locate_source, predict_delays
-from locate.uncertainty import crlb_covariance, ellipse, gdop
+from locate.fix.solver import arrival_times, locate_source, predict_delays
+from locate.geometry.ellipses import crlb_covariance, ellipse, gdop
+from locate.physics.air import travel_time_s
+from locate.signal.delays import DelaySet, all_pairs
 from tests.scenes import ARRAY_40M
 
 MM = 1e-3
@@ -126,7 +126,7 @@ def test_two_mics_with_gross_clock_errors_are_both_rejected():
     fx = locate_source(SEVEN_MICS, ds, 343.0, mic_names=list("ABCDEFG"))
     assert sorted(fx.rejected_mics) == ["C", "E"]
     assert np.linalg.norm(fx.position_m[:2] - src[:2]) < 5 * MM
-    from locate.batchfix import locate_batch
+    from locate.fix.batched import locate_batch
     bf = locate_batch(SEVEN_MICS, ds.delay_s[None], ds.covariance_s2, 343.0, fallback=False)
     assert list(np.flatnonzero(bf.rejected[0])) == [2, 4]
     assert np.linalg.norm(bf.position_m[0, :2] - src[:2]) < 5 * MM
@@ -135,7 +135,7 @@ def test_two_mics_with_gross_clock_errors_are_both_rejected():
 @pytest.mark.parametrize("chi2, dof", [(3.0, 2), (50.0, 3), (300.0, 3), (700.0, 6)])
 def test_log_p_value_matches_scipy_where_scipy_is_finite(chi2, dof):
     # reference: scipy.stats.chi2.logsf; beyond its range the asymptotic series takes over
-    from locate.fix import _log_p_value
+    from locate.fix.solver import _log_p_value
     assert _log_p_value(chi2, dof) == pytest.approx(stats.chi2.logsf(chi2, dof), rel=1e-9)
     assert np.isfinite(_log_p_value(1e9, dof)) and _log_p_value(1e9, dof) < -4e8
 

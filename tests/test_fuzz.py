@@ -4,12 +4,12 @@ the one user-facing error type, :class:`locate.errors.TdoaError` - never anythin
 * Site files: a valid site dict perturbed at random (values replaced by other TOML types,
   NaN/inf, huge or negative numbers, keys deleted or misspelt, tables replaced by scalars),
   written as TOML and sometimes damaged as text (characters dropped, inserted or swapped).
-  :func:`locate.site.load_site` must return a :class:`~locate.site.Site` or raise TdoaError;
-  when it succeeds, :func:`locate.audio.open_recordings` must too.
+  :func:`locate.io.site.load_site` must return a :class:`~locate.io.site.Site` or raise TdoaError;
+  when it succeeds, :func:`locate.io.audio.open_recordings` must too.
 * Delay sets: random geometry (including coincident, collinear and far-flung mics), delays
   from a random source with noise and with some entries replaced by NaN, inf, huge or random
   values, and random covariances (correlated, diagonal, tiny, huge, zero, infinite).
-  :func:`locate.fix.locate_source` must return a Fix with a finite position (and a NaN-free
+  :func:`locate.fix.solver.locate_source` must return a Fix with a finite position (and a NaN-free
   covariance) or raise TdoaError (NothingFoundError and ConvergenceError are subclasses).
 
 The example counts below add up to 2 050 in CI; set ``TDOA_FUZZ_EXAMPLES=N`` to run N examples
@@ -29,12 +29,12 @@ import soundfile
 from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 
-from locate.audio import open_recordings
-from locate.delays import DelaySet, all_pairs
 from locate.errors import TdoaError
-from locate.fix import Fix, locate_source, predict_delays
-from locate.site import Site, load_site
-from locate.toml_io import dump_toml
+from locate.fix.solver import Fix, locate_source, predict_delays
+from locate.io.audio import open_recordings
+from locate.io.site import Site, load_site
+from locate.io.toml import dump_toml
+from locate.signal.delays import DelaySet, all_pairs
 
 _EXTRA = os.environ.get("TDOA_FUZZ_EXAMPLES")
 

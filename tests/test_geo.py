@@ -1,11 +1,11 @@
-"""Tests for locate.geo: WGS84 <-> ENU (pyproj, EPSG:4979 -> EPSG:4978) and GeoJSON."""
+"""Tests for locate.geometry.frames: WGS84 <-> ENU (pyproj, EPSG:4979 -> EPSG:4978) and GeoJSON."""
 
 import numpy as np
 import pyproj
 import pytest
 
-from locate import geo
 from locate.errors import OptionError, TdoaError
+from locate.geometry import frames as geo
 
 MM = 1e-3
 A_WGS84_M = 6378137.0  # WGS84 semi-major axis, NIMA TR8350.2 Table 3.1

@@ -3,7 +3,7 @@
 Reference library: pyproj (PROJ).  Geodetic <-> geocentric is EPSG:4979 (WGS 84 geographic
 3-D) <-> EPSG:4978 (WGS 84 geocentric); local east-north-up is PROJ's own "topocentric"
 conversion (EPSG conversion method 9837, geocentric/topocentric), an implementation that
-locate.geo does not use.
+locate.geometry.frames does not use.
 """
 
 import json
@@ -14,7 +14,7 @@ import pytest
 from scipy import stats
 
 from locate import synth
-from locate.gis import add_wgs84_positions, result_geojson
+from locate.results.geojson import add_wgs84_positions, result_geojson
 from tests.field_scene import MICS7_M, burst, run_cli, site_dict, write_multichannel, write_site
 
 CM = 0.01
@@ -59,7 +59,7 @@ def twin_sites(tmp_path_factory):
 
 def _source_z_in(site_path):
     """Height of the sources (z = 1 m in the local scene) in a WGS84 site's own frame."""
-    from locate.site import load_site
+    from locate.io.site import load_site
 
     origin = load_site(site_path).origin_wgs84
     lon, lat, alt = _topocentric(ORIGIN).transform(*SOURCES[0], direction="INVERSE")

@@ -7,7 +7,7 @@ The recording is 6 minutes of low-level noise at 4 kHz (five mics, ~14 MB in a t
 folder) with one bang 10 s before the end, so a run spends a while scanning.  The signal is
 sent once the child has read its modules and a quarter of the file (``rchar`` in
 ``/proc/PID/io``, Linux), i.e. while it is certainly still scanning.  Results are written with
-a temp file + rename (``locate.results.write_atomic``).
+a temp file + rename (``locate.results.documents.write_atomic``).
 """
 
 from __future__ import annotations
@@ -81,8 +81,9 @@ def _start(args, **kwargs):
 @pytest.fixture(scope="module")
 def startup_bytes():
     """Bytes a child reads to start up and import the commands' modules (.py/.pyc files)."""
-    code = ("import locate.cli, locate.audio, locate.pipeline, locate.results, locate.site, "
-            "locate.fix, locate.events, locate.delays; from pathlib import Path; "
+    code = ("import locate.cli, locate.io.audio, locate.workflows.fixing, "
+            "locate.results.documents, locate.io.site, locate.fix.solver, locate.signal.events, "
+            "locate.signal.delays; from pathlib import Path; "
             "print(next(ln.split()[1] for ln in Path('/proc/self/io').read_text().splitlines()"
             " if ln.startswith('rchar:')))")
     out = subprocess.run([sys.executable, "-c", code], env=_env(), capture_output=True,

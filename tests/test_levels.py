@@ -1,4 +1,5 @@
-"""Tests for locate.bands / locate.levels against published values and reference libraries."""
+"""Tests for locate.physics.bands / locate.physics.levels against published values and reference
+libraries."""
 
 from __future__ import annotations
 
@@ -6,9 +7,9 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from locate import levels
-from locate.air import absorption_db_per_m
 from locate.errors import SiteFileError, TdoaError
+from locate.physics import levels
+from locate.physics.air import absorption_db_per_m
 
 DB = 1.0  # unit: decibel
 DB_PER_KM = 1e-3  # dB/m per dB/km

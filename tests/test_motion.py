@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from locate import air
 from locate.errors import ConvergenceError
-from locate.motion import (
+from locate.physics import air
+from locate.track.motion import (
     Path,
     closest_approach,
     emission_time_iterative_s,
@@ -14,7 +14,7 @@ from locate.motion import (
     heading_deg,
     straight_path,
 )
-from locate.retarded import Parametrisation, arrival_times, predict_delays
+from locate.track.retarded import Parametrisation, arrival_times, predict_delays
 
 US = 1e-6
 NS = 1e-9
@@ -53,7 +53,8 @@ def test_closed_form_emission_time_satisfies_the_retarded_time_equation():
 
 def test_closed_form_matches_iteration_and_a_reference_root_finder_with_wind():
     # Outside check: scipy.optimize.brentq on t_e + T(p(t_e) -> m) - t_h (textbook kinematics;
-    # T in wind from locate.air.travel_time_s) against the closed-form quadratic root and the
+    # T in wind from locate.physics.air.travel_time_s) against the closed-form quadratic root and
+    # the
     # bounded Newton/fixed-point iteration.
     wind = air.wind_vector_mps(8.0, 300.0)
     path = Path(np.array([0.0, 5.0, 11.0]),

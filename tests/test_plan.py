@@ -1,7 +1,8 @@
-"""Tests for array planning: locate.timing_model, locate.plan, locate.plan_site, locate.plan_plot.
+"""Tests for array planning: locate.accuracy.timing, locate.accuracy.plan,
+locate.accuracy.plan_site, locate.draw.plan.
 
 References: the Cramer-Rao bound of the locator as computed point by point by
-locate.uncertainty.crlb_covariance (Chan & Ho 1994 form, pseudo-inverse over pairs); Carter
+locate.geometry.ellipses.crlb_covariance (Chan & Ho 1994 form, pseudo-inverse over pairs); Carter
 (1987) for the delay bound; the textbook arrival-time bound for a known signal in white noise;
 and a Monte Carlo of the real locator on simulated audio (locate.synth -> estimate_delays ->
 locate_source).
@@ -18,29 +19,29 @@ import pytest
 from scipy import fft as sfft
 
 from locate import synth
-from locate.delays import all_pairs, estimate_delays, geometric_max_lag_s
-from locate.errors import OptionError, SiteFileError
-from locate.fix import locate_source
-from locate.plan import (
+from locate.accuracy.plan import (
     candidate_grid,
     expected_ellipse_grid,
     expected_ellipses,
-    plan_site,
     points_in_polygon,
     propose_mics,
     propose_next_mic,
     region_metric,
 )
-from locate.plan_plot import plan_figure
-from locate.site import Air, Mic, Receiver, Site
-from locate.timing_model import (
+from locate.accuracy.plan_site import plan_site
+from locate.accuracy.timing import (
     carter_delay_sd_s,
     in_band_snr_db,
-    incidence_matrix,
     timing_from_spectra,
     timing_model,
 )
-from locate.uncertainty import crlb_covariance, ellipse
+from locate.draw.plan import plan_figure
+from locate.errors import OptionError, SiteFileError
+from locate.fix.solver import locate_source
+from locate.geometry.ellipses import crlb_covariance, ellipse
+from locate.geometry.pairs import incidence_matrix
+from locate.io.site import Air, Mic, Receiver, Site
+from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
 
 M = 1.0  # unit: metre
 MM = 1e-3
@@ -120,7 +121,7 @@ def test_in_band_snr_adds_the_noise_outside_the_band():
 @pytest.mark.parametrize("spec", [dict(timing_sd_s=[40e-6, 60e-6, 50e-6, 45e-6, 80e-6]),
                                   dict(band_hz=(250.0, 2500.0), snr_db=3.0, duration_s=0.4)])
 def test_batched_ellipses_match_crlb_covariance_point_by_point(dims, spec):
-    # reference: locate.uncertainty.crlb_covariance + ellipse at each point (pinv over pairs)
+    # reference: locate.geometry.ellipses.crlb_covariance + ellipse at each point (pinv over pairs)
     wind = np.array([3.0, -1.5, 0.0])
     pts = np.array([[10, 10, 0.5], [70, 20, 0.5], [-40, 90, 0.5], [20, -60, 2.0]])
     tm = timing_model(5, **spec)
@@ -415,11 +416,11 @@ def test_declared_survey_uncertainty_widens_the_map_as_a_monte_carlo_of_the_loca
     # than the timing alone explains.  Reference: Monte Carlo of locate_source on exact delays
     # from the true mics (+2 us timing noise per mic), 400 trials; the plan's first-order map
     # (JCGM 100:2008 propagation, as the fix's budget) within 20 % of the scatter.
-    from locate.air import travel_time_s
-    from locate.delays import DelaySet
-    from locate.plan_site import declared_arrival_cov_s2
-    from locate.site import load_site
-    from locate.toml_io import dump_toml
+    from locate.accuracy.plan_site import declared_arrival_cov_s2
+    from locate.io.site import load_site
+    from locate.io.toml import dump_toml
+    from locate.physics.air import travel_time_s
+    from locate.signal.delays import DelaySet
 
     doc = {"air": {"temperature_c": 20.0, "relative_humidity": 50.0, "sound_speed_mps": C},
            "survey": {"position_sd_m": 0.05},

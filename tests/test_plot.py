@@ -13,10 +13,10 @@ from matplotlib.patches import Ellipse
 from matplotlib.text import Text
 from scipy.stats import chi2
 
-from locate.air import sound_speed_mps, travel_time_s, wind_vector_mps
+from locate.draw.figures import check_result, draw_map, panels_figure, save_figure
 from locate.errors import OptionError, ResultFileError
-from locate.plot import check_result, draw_map, panels_figure, save_figure
-from locate.sketch import Georef, SiteSketch
+from locate.io.sketch import Georef, SiteSketch
+from locate.physics.air import sound_speed_mps, travel_time_s, wind_vector_mps
 
 MM = 1e-3
 CM = 1e-2
@@ -33,7 +33,7 @@ COV = np.array([[0.04, 0.015, 0.0], [0.015, 0.02, 0.0], [0.0, 0.0, 0.0]])
 
 def exact_fix_result(rejected=("M5",), cov=COV, curves=False, n_fixes=1):
     """A fix result built by hand from an exact geometry: every delay is the wind-aware travel
-    time difference (locate.air.travel_time_s), so each used pair's hyperbola passes through
+    time difference (locate.physics.air.travel_time_s), so each used pair's hyperbola passes through
     SOURCE.  The rejected mic's delays are spoiled by 3 ms (an echo)."""
     t = travel_time_s(SOURCE, MICS, C, WIND)
     delays = []
@@ -96,7 +96,8 @@ def test_one_hyperbola_per_used_pair_each_through_the_true_source(fix_map):
     for cs in sets:
         assert isinstance(cs, Collection)
         verts = [p.vertices for p in cs.get_paths() if len(p.vertices) > 1]
-        # Reference: the delays were made with locate.air.travel_time_s at the true source, so
+        # Reference: the delays were made with locate.physics.air.travel_time_s at the true
+        # source, so
         # the zero contour of predicted - measured must pass through it (grid ~0.3 m apart,
         # linear interpolation along cell edges: well within 1 cm; ignoring the 4 m/s wind
         # would put them 10-45 cm off).

@@ -13,10 +13,15 @@ import numpy as np
 import pytest
 from matplotlib import image as mpimg
 
-from locate import chromium
 from locate.errors import OptionError, ResultFileError, SiteFileError
-from locate.report import SECTIONS, build_report, make_report, recordings_info, report_demo_step
-from locate.site import load_site
+from locate.io.site import load_site
+from locate.report import chromium
+from locate.report.build import (
+    SECTIONS,
+    build_report,
+    make_report,
+    recordings_info,
+)
 from tests.cli_helpers import digest, run, write_site
 
 MM = 1e-3
@@ -59,7 +64,7 @@ def _e95(cov):
 
 def fix_result(names=NAMES, n=3):
     """A hand-made fix result: three sounds, one with a rejected and a silent mic, one with an
-    uncertainty budget (keys as documented in locate.budget.uncertainty_budget)."""
+    uncertainty budget (keys as documented in locate.accuracy.budget.uncertainty_budget)."""
     spots = [(31.2345, 22.4567), (12.5, 40.25), (48.0, 15.5), (20.0, 20.0)]
     covs = [_cov(0.012, 0.006, 0.3), _cov(0.4, 0.15, -0.5), _cov(0.002, 0.001, 0.0),
             _cov(0.05, 0.05, 0.0)]
@@ -501,16 +506,17 @@ def test_cli_writes_the_html_report_atomically(survey, tmp_path):
 
 
 def test_demo_step_writes_a_report_from_the_results_present(survey, tmp_path):
-    from locate import cli
-    from locate.demo import find_demo_dir
+    from locate.cli import cli
+    from locate.cli.demo import STEPS, find_demo_dir
 
     demo_dir = find_demo_dir()
     site = load_site(demo_dir / "yard.toml", require_audio=False)
     res = fix_result(names=site.mic_names, n=2)
     res["mics"] = [{"name": m.name, "position_m": m.position_m.tolist()} for m in site.mics]
     (tmp_path / "yard-fix.json").write_text(json.dumps(res))
-    with click.Context(cli.cli, obj={"quiet": True}) as ctx:
-        report_demo_step(ctx, demo_dir, tmp_path)
+    reports = dict(STEPS)["reports"]
+    with click.Context(cli, obj={"quiet": True}) as ctx:
+        reports(ctx, demo_dir, tmp_path)
     page = Page((tmp_path / "report.html").read_text())
     assert len(page.body_rows("fixes-1")) == 2
     assert not (tmp_path / "lane-report.html").exists()  # no track result: no lane report

@@ -1,4 +1,4 @@
-"""Tests for locate.site: loading, validation messages, geometry warnings, TOML round trip."""
+"""Tests for locate.io.site: loading, validation messages, geometry warnings, TOML round trip."""
 
 import copy
 import datetime as dt
@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 import soundfile
 
-from locate import geo
 from locate.errors import OptionError, SiteFileError
-from locate.site import dump_site_toml, load_site, parse_start_time, start_time_offsets_s
-from locate.toml_io import dump_toml
+from locate.geometry import frames as geo
+from locate.io.site import dump_site_toml, load_site, parse_start_time, start_time_offsets_s
+from locate.io.toml import dump_toml
 
 FS = 8000
 

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from locate.errors import SiteFileError
-from locate.sketch import (
+from locate.io.sketch import (
     Georef,
     geojson_features,
     label_point,
@@ -167,7 +167,7 @@ def test_geojson_in_local_metres_gives_one_outline_per_ring_and_line():
 
 def test_geojson_on_a_wgs84_site_goes_through_the_geo_conversion():
     pyproj = pytest.importorskip("pyproj")
-    from locate import geo
+    from locate.geometry import frames as geo
 
     origin = (52.0, 4.5, 0.0)
     to_local = lambda lon, lat: geo.lonlat_to_local(lon, lat, origin)  # noqa: E731

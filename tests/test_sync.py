@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 from locate import synth
-from locate.geo import wgs84_from_enu
-from locate.site import load_site, start_time_offsets_s
-from locate.sync import fit_clocks
+from locate.geometry.frames import wgs84_from_enu
+from locate.io.site import load_site, start_time_offsets_s
+from locate.sync.clocks import fit_clocks
 from tests.field_scene import (
     MICS7_M,
     burst,
@@ -133,7 +133,7 @@ def test_fixes_after_sync_are_as_good_as_with_perfect_clocks(recorders, tmp_path
 
 
 def test_fit_clocks_recovers_an_exact_linear_clock_model():
-    # Clock model of locate.audio: t = o + tau / (1 + p); corrections delta(tau) = A + B tau
+    # Clock model of locate.io.audio: t = o + tau / (1 + p); corrections delta(tau) = A + B tau
     # with B = 1/(1 + p*) - 1/(1 + p).  Two noise-free events must give A and p* exactly.
     o = np.array([0.0, 1.0, -0.5])
     p_true = np.array([0.0, 12.0, -7.5]) * 1e-6

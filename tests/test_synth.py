@@ -4,8 +4,9 @@ import numpy as np
 import pytest
 from scipy.signal import hilbert
 
-from locate import air, synth
+from locate import synth
 from locate.errors import ConvergenceError
+from locate.physics import air
 
 FS = 48000.0
 NS = 1e-9  # one nanosecond, s
@@ -99,7 +100,7 @@ def test_absorption_matches_iso_9613_at_a_tone():
     on = synth.simulate_events(mic, [synth.Emission(src, 0.1, tone)], **kw)
     off = synth.simulate_events(mic, [synth.Emission(src, 0.1, tone)], absorption=False, **kw)
     loss_db = 20 * np.log10(np.std(off.signals) / np.std(on.signals))
-    # ISO 9613-1:1993 eq. (5) as implemented in locate.air
+    # ISO 9613-1:1993 eq. (5) as implemented in locate.physics.air
     assert loss_db == pytest.approx(air.absorption_db_per_m(f, 20.0, 70.0) * r, abs=0.01)
     # ISO 9613-2:1996 Table 2, 20 degC / 70 %: 22.9 dB/km at 4 kHz (from memory)
     assert loss_db == pytest.approx(22.9 * r / 1000.0, abs=0.03)

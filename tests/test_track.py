@@ -12,10 +12,10 @@ from scipy import stats
 
 from locate import synth
 from locate.errors import NothingFoundError, OptionError
-from locate.motion import heading_deg, straight_path
-from locate.pathfit import fit_path
-from locate.retarded import Parametrisation, predict_delays
-from locate.track import describe_fit, naive_fit, track_recording, track_to_dict
+from locate.track.motion import heading_deg, straight_path
+from locate.track.pathfit import fit_path
+from locate.track.retarded import Parametrisation, predict_delays
+from locate.track.tracker import describe_fit, naive_fit, track_recording, track_to_dict
 
 FS = 8000.0
 C = 343.0

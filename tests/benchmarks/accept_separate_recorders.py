@@ -32,7 +32,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
 from locate import synth  # noqa: E402
-from locate.site import load_site, start_time_offsets_s  # noqa: E402
+from locate.io.site import load_site, start_time_offsets_s  # noqa: E402
 from tests.field_scene import (  # noqa: E402
     MICS7_M,
     burst,

@@ -4,13 +4,13 @@
     python tests/benchmarks/bench_scale.py --only delays   # or: fixes, memory
 
 (a) windowed delays of a 10-minute 8-channel 48 kHz recording (0.5 s windows, 50 % overlap,
-    all 28 pairs, band 100-3000 Hz) with :func:`locate.delays_windows.recording_window_delays`;
+    all 28 pairs, band 100-3000 Hz) with :func:`locate.signal.windowed.recording_window_delays`;
 (b) the bare FFT work of the same windows, measured in the same run, block by block on the
     same samples: forward rfft of every window of every channel and one irfft per pair, at
     the padded size ``estimate_delays`` uses (float64; also in float32, (b32), since (a) works
     in single precision from its forward transforms on), scipy.fft with all cores; (a) and (b)
     alternate on each block and each keeps the better of two runs;
-(c) fixes per second of :func:`locate.batchfix.locate_batch` on 10 000 synthetic delay sets
+(c) fixes per second of :func:`locate.fix.batched.locate_batch` on 10 000 synthetic delay sets
     (8 mics, correlated covariances, 1 % of the sets with a faulty clock);
 (d) peak resident memory of ``tdoa events`` and ``tdoa fix`` (and ``fix --window``) on a
     1-hour and a 10-minute 6-channel 48 kHz file, each in its own child process.
@@ -37,12 +37,12 @@ from scipy import fft as sfft
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from locate.audio import open_recordings  # noqa: E402
-from locate.batchfix import locate_batch  # noqa: E402
-from locate.delays import all_pairs, geometric_max_lag_s  # noqa: E402
-from locate.delays_windows import _Setup, estimate_delays_windows  # noqa: E402
-from locate.fix import predict_delays  # noqa: E402
-from locate.site import load_site  # noqa: E402
+from locate.fix.batched import locate_batch  # noqa: E402
+from locate.fix.solver import predict_delays  # noqa: E402
+from locate.io.audio import open_recordings  # noqa: E402
+from locate.io.site import load_site  # noqa: E402
+from locate.signal.delays import all_pairs, geometric_max_lag_s  # noqa: E402
+from locate.signal.windowed import _Setup, estimate_delays_windows  # noqa: E402
 from tests.benchmarks.bench_events_memory import MICS6_M  # noqa: E402
 from tests.benchmarks.bench_events_memory import (  # noqa: E402
     write_recording as write_events_recording,

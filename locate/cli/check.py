@@ -1,0 +1,59 @@
+"""``tdoa check``: validate the site file and recordings."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+import numpy as np
+
+from locate.cli.common import (
+    echo,
+    load,
+    progress_bar,
+    warn,
+)
+
+CHECK_SCAN_S = 300.0  # tdoa check reads this much of the recordings for channel problems
+
+
+@click.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
+@click.pass_context
+def check(ctx, site_path, dims):
+    """Validate the site file and recordings; print geometry and warnings."""
+    from locate.io.audio import open_recordings
+    from locate.workflows.fixing import conditions_for
+
+    site = load(site_path, dims)
+    rec = open_recordings(site)
+    cond = conditions_for(site)
+    pos = site.positions_m
+    span = np.max(np.linalg.norm(pos[:, None, :2] - pos[None, :, :2], axis=-1))
+    echo(ctx, f"Site      {site.title}  ({site.path.name}, coordinates {site.coordinates})")
+    echo(ctx, f"Air       {cond.temperature_c:g} degC, {cond.relative_humidity:g} % RH, "
+              f"sound speed {cond.sound_speed_mps:.2f} m/s; wind {cond.wind_speed_mps:g} m/s "
+              f"from {cond.wind_from_deg:g} deg")
+    echo(ctx, f"Audio     {rec.sample_rate_hz:g} Hz, {rec.duration_s:.2f} s common to all mics")
+    echo(ctx, f"Array     {len(pos)} mics, widest spacing {span:.1f} m "
+              f"(largest delay {span / cond.sound_speed_mps * 1e3:.1f} ms)")
+    for (name, path, ch), m in zip(rec.files, site.mics):
+        x, y, z = m.position_m
+        echo(ctx, f"  {name:<8} x {x:9.2f}  y {y:9.2f}  z {z:6.2f} m   {Path(path).name} "
+                  f"ch {ch}  offset {m.offset_s:+.6f} s")
+    opened = list(rec.warnings)
+    stop_s = min(rec.stop_s, rec.start_s + CHECK_SCAN_S)  # dead, silent or clipped channels
+    with progress_bar(ctx, stop_s - rec.start_s, "Reading the recordings") as bar:
+        for _t0, signals, _ in rec.blocks(60.0, 0.0, rec.start_s, stop_s, reuse=True):
+            bar.update(signals.shape[1] / rec.sample_rate_hz)
+    found = [w for w in rec.warnings if w not in opened]
+    scanned = (f"the first {stop_s - rec.start_s:.0f} s" if stop_s < rec.stop_s
+               else "all of it")
+    echo(ctx, f"Signals   read {scanned}: "
+              + (f"{len(found)} channel problem(s), see the warnings" if found else
+                 "no dead, silent or clipped channel"))
+    for w in list(site.warnings) + list(rec.warnings):
+        warn(w)
+    echo(ctx, "Site file and recordings look usable." if not found else
+         "Site file and recordings are readable; mind the channel warnings before a fix.")

@@ -1,0 +1,59 @@
+"""``tdoa events``: list detected events."""
+
+from __future__ import annotations
+
+import click
+
+from locate.cli.common import (
+    check_band,
+    check_span_args,
+    echo,
+    load,
+    parse_band,
+    progress_bar,
+    site_inputs,
+    span_options,
+    warn,
+)
+
+
+@click.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@span_options
+@click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
+              help="dB above the background for a frame to count as active.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.pass_context
+def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
+    """List detected events with time, duration, level and how many mics heard them."""
+    from locate.io.audio import open_recordings
+    from locate.results.documents import check_output_path, write_json
+    from locate.workflows.fixing import conditions_for, fix_result, require_events, scan_events
+
+    band_hz = parse_band(band)
+    if start_s is not None or stop_s is not None:
+        check_span_args(start_s, stop_s)
+    site = load(site_path)
+    check_output_path(json_path, site_inputs(site))
+    rec = open_recordings(site)
+    check_band(band_hz, rec.sample_rate_hz)
+    cond = conditions_for(site)
+    a = rec.start_s if start_s is None else start_s
+    b = rec.stop_s if stop_s is None else stop_s
+    with progress_bar(ctx, b - a, "Scanning for events") as bar:
+        found = scan_events(rec, site.positions_m, cond, band_hz=band_hz, start_s=a, stop_s=b,
+                            threshold_db=threshold_db, progress=bar.update)
+    require_events(found, a, b)
+    rows = [ev.to_dict(site.mic_names) for ev in found]
+    echo(ctx, f"{len(rows)} event(s) in {a:.2f}..{b:.2f} s")
+    echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'above bg':>9} {'mics':>5}  first mic")
+    for k, r in enumerate(rows, 1):
+        echo(ctx, f"{k:>3} {r['t_s']:>10.3f} s {r['duration_s']:>6.3f} s {r['level_db']:>6.1f} dB "
+                  f"{r['n_mics']:>5}  {r['first_mic']}")
+    for w in rec.warnings:
+        warn(w)
+    if json_path:
+        result = fix_result(site, cond, [], kind="events", extra={"events": rows},
+                            warnings=rec.warnings)
+        write_json(json_path, result)
+    return rows

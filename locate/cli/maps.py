@@ -1,0 +1,175 @@
+"""``tdoa track`` and ``tdoa map``."""
+
+from __future__ import annotations
+
+import click
+import numpy as np
+
+from locate.cli.common import (
+    check_band,
+    check_span_args,
+    draw_map,
+    echo,
+    geometry_options,
+    load,
+    parse_band,
+    progress_bar,
+    site_inputs,
+    warn,
+)
+from locate.errors import OptionError
+
+__all__ = ["track", "map_command"]
+
+
+@click.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.option("--from", "start_s", type=float, required=True,
+              help="Start of the pass, seconds into the recording.")
+@click.option("--to", "stop_s", type=float, required=True, help="End of the pass, seconds.")
+@click.option("--window", "window_s", type=float, default=None,
+              help="Analysis window, s (default: from the array size and --speed-guess).")
+@click.option("--hop", "hop_s", type=float, default=None, help="Window hop, s.")
+@click.option("--band", default=None, metavar="LO:HI", help="Analysis band, Hz.")
+@geometry_options
+@click.option("--model", type=click.Choice(["straight", "segments"]), default="straight",
+              show_default=True, help="Constant velocity, or piecewise straight segments.")
+@click.option("--segment", "segment_s", type=float, default=None,
+              help="Segment length for --model segments, s.")
+@click.option("--speed-guess", "speed_guess_mps", type=float, default=20.0, show_default=True,
+              help="Rough speed, m/s; sets the default window.")
+@click.option("--tone", "tone", default=None, metavar="HZ|auto",
+              help="Track this tone (or the strongest, 'auto') for a Doppler speed check.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--map", "map_path", type=click.Path(dir_okay=False), default=None)
+@click.pass_context
+def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
+          sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
+    """Reconstruct a moving source's track (emission-time positions, heading, speed)."""
+    from locate.io.audio import open_recordings
+    from locate.results.documents import check_output_path, write_json
+    from locate.track.tracker import track_recording, track_to_dict
+    from locate.workflows.fixing import conditions_for, fix_result
+
+    band_hz = parse_band(band)
+    check_span_args(start_s, stop_s, window_s)
+    if window_s is not None and window_s > stop_s - start_s:
+        raise OptionError(f"window {window_s:g} s is longer than the span "
+                          f"{stop_s - start_s:g} s: shorten --window or widen --from/--to",
+                          field="--window")
+    if hop_s is not None and hop_s <= 0:
+        raise OptionError(f"hop {hop_s:g} s must be positive", field="--hop")
+    tone_hz = None if tone is None else ("auto" if tone == "auto" else _float(tone, "--tone"))
+    site = load(site_path, dims)
+    for p, opt in ((json_path, "--json"), (map_path, "--map")):
+        check_output_path(p, site_inputs(site), option=opt)
+    rec = open_recordings(site)
+    check_band(band_hz, rec.sample_rate_hz)
+    cond = conditions_for(site, sound_speed_mps)
+    signals, _ = rec.read(start_s, stop_s)
+    points = [m.position_m for m in site.mics] + [r.position_m for r in site.receivers]
+    names = site.mic_names + [r.name for r in site.receivers]
+    bearing_from = site.receivers[0].position_m if site.receivers else site.mics[0].position_m
+    with progress_bar(ctx, 100, "Tracking") as bar:
+        state = {"done": 0}
+
+        def progress(done, total):
+            step = int(100 * done / max(total, 1)) - state["done"]
+            if step > 0:
+                bar.update(step)
+                state["done"] += step
+
+        res = track_recording(signals, rec.sample_rate_hz, site.positions_m,
+                              cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
+                              hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,
+                              wind_mps=cond.wind_mps, model=model, segment_s=segment_s,
+                              expected_speed_mps=speed_guess_mps, points_m=np.array(points),
+                              bearing_from_m=bearing_from, tone_hz=tone_hz, progress=progress)
+    doc = track_to_dict(res, site.mic_names, point_names=names)
+    warnings = list(rec.warnings) + list(res.warnings)
+    result = fix_result(site, cond, [], kind="track", warnings=warnings, dims=dims,
+                        source_z_m=source_z_m,
+                        extra={"track": doc, "span_s": [start_s, stop_s]})
+    _print_track(ctx, site, cond, doc, bearing_from_name=names[len(site.mics)]
+                 if site.receivers else site.mic_names[0])
+    for w in result["warnings"]:
+        warn(w)
+    if json_path:
+        write_json(json_path, result)
+        echo(ctx, f"Result written to {json_path}")
+    if map_path:
+        draw_map(site, result, map_path)
+        echo(ctx, f"Map written to {map_path}")
+    return result
+
+
+def _float(text, field):
+    try:
+        return float(text)
+    except ValueError:
+        raise OptionError(f"{text!r} is not a number", field=field) from None
+
+
+def _print_track(ctx, site, cond, doc, bearing_from_name):
+    pts = doc["points"]
+    echo(ctx, f"{site.title}: {len(pts)} track points, sound speed {cond.sound_speed_mps:.2f} m/s")
+    echo(ctx, f"Heading {doc['heading_deg']:.1f} +- {doc['heading_sd_deg']:.1f} deg, "
+              f"speed {doc['speed_mps']:.2f} +- {doc['speed_sd_mps']:.2f} m/s "
+              f"({doc['speed_mps'] * 3.6:.1f} km/h)")
+    if pts:
+        lag = max(p["lag_m"] for p in pts)
+        ang = max(abs(p["lag_bearing_deg"]) for p in pts)
+        echo(ctx, f"Heard-from vs is-now: up to {lag:.1f} m and {ang:.1f} deg of bearing seen "
+                  f"from {bearing_from_name}")
+    for c in doc.get("closest_approach", []):
+        echo(ctx, f"  closest to {c['name']}: {c['distance_m']:.1f} m at emission time "
+                  f"{c['t_s']:.2f} s (heard {c['t_heard_s']:.2f} s)"
+                  + ("" if c.get("within_span", True) else "  [outside the analysed span]"))
+    dop = doc.get("doppler")
+    if isinstance(dop, dict) and dop.get("speed_mps") is not None:
+        echo(ctx, f"Doppler speed {dop['speed_mps']:.2f} +- {dop.get('speed_sd_mps', 0):.2f} "
+                  "m/s (independent check)")
+
+
+@click.command("map")
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.argument("result_path", metavar="RESULT", type=click.Path())
+@click.option("-o", "--output", "out_path", type=click.Path(dir_okay=False), required=True,
+              help="Map file: PNG, SVG or PDF.")
+@click.option("--fix", "fix_no", type=int, default=None,
+              help="Draw only this fix (1-based), with its hyperbolae.")
+@click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
+              help="Also draw the correlation diagnostics of the fix (needs a result written "
+                   "with fix --panels).")
+@click.pass_context
+def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
+    """Draw a fix or track result over the site sketch."""
+    from locate.cli.common import check_same_site
+    from locate.draw import figures as plot
+    from locate.results.documents import check_output_path, read_result
+
+    site = load(site_path)
+    for p, opt in ((out_path, "--output"), (panels_path, "--panels")):
+        check_output_path(p, site_inputs(site) + [result_path], option=opt)
+    result = read_result(result_path, kinds=("fix", "track"))
+    check_same_site(site, result, result_path)
+    index = None
+    if fix_no is not None:
+        n = len(result.get("fixes", []))
+        if not 1 <= fix_no <= n:
+            raise OptionError(f"the result holds {n} fix(es); --fix {fix_no} is not one of "
+                              "them", field="--fix")
+        index = fix_no - 1
+    if site.sketch is not None and site.sketch.image is not None \
+            and not site.sketch.image.exists():
+        raise OptionError(f"the sketch image {site.sketch.image} does not exist: fix the path "
+                          "or remove sketch.image", file=site.path, field="sketch.image")
+    notes = []
+    fig = plot.map_figure(site, result, warnings=notes, fix_index=index)
+    plot.save_figure(fig, out_path)
+    for w in notes:
+        warn(w)
+    echo(ctx, f"Map written to {out_path}")
+    if panels_path:
+        plot.save_figure(plot.panels_figure(result, fix_index=index or 0), panels_path)
+        echo(ctx, f"Diagnostics written to {panels_path}")

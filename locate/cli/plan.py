@@ -1,0 +1,97 @@
+"""``tdoa plan``: expected accuracy over the site and the best next mic."""
+
+from __future__ import annotations
+
+import click
+
+from locate.cli.common import (
+    echo,
+    fmt_length,
+    load,
+    parse_band,
+    site_inputs,
+)
+from locate.errors import OptionError
+
+
+@click.command()
+@click.argument("site_path", metavar="SITE", type=click.Path())
+@click.option("-o", "--output", "out_path", type=click.Path(dir_okay=False), default=None,
+              help="Planning map (PNG, SVG or PDF).")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--timing-sd", "timing_sd_s", type=float, default=None,
+              help="Expected arrival-time accuracy per mic, seconds (e.g. 2e-5).")
+@click.option("--band", default=None, metavar="LO:HI",
+              help="Predict the timing from the source band (with --snr, --duration).")
+@click.option("--snr", "snr_db", type=float, default=None, help="In-band SNR, dB.")
+@click.option("--duration", "duration_s", type=float, default=None,
+              help="Length of the analysed sound, s.")
+@click.option("--grid-step", "grid_step_m", type=float, default=None)
+@click.option("--extent", default=None, metavar="X0:X1:Y0:Y1", help="Map area, metres.")
+@click.option("--candidates", default="auto", show_default=True,
+              type=click.Choice(["auto", "site", "grid", "none"]),
+              help="Where a new mic may go.")
+@click.option("--region", default="auto", show_default=True,
+              type=click.Choice(["auto", "polygon", "receivers", "extent"]),
+              help="Where accuracy matters.")
+@click.option("--objective", default="worst", show_default=True,
+              type=click.Choice(["worst", "mean"]))
+@click.option("--propose", "n_propose", type=click.IntRange(0, 10), default=1, show_default=True)
+@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
+@click.option("--source-z", "source_z_m", type=float, default=0.0, show_default=True)
+@click.pass_context
+def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,
+         grid_step_m, extent, candidates, region, objective, n_propose, dims, source_z_m):
+    """Expected 95 % ellipse size over the site for the mic layout; best next mic(s)."""
+    from locate.accuracy.plan_site import plan_site
+    from locate.results.documents import check_output_path, write_json
+
+    band_hz = parse_band(band)
+    site = load(site_path, dims, require_audio=False)
+    for p, opt in ((out_path, "--output"), (json_path, "--json")):
+        check_output_path(p, site_inputs(site), option=opt)
+    ext = None
+    if extent is not None:
+        try:
+            ext = tuple(float(v) for v in extent.split(":"))
+            assert len(ext) == 4 and ext[0] < ext[1] and ext[2] < ext[3]
+        except (ValueError, AssertionError):
+            raise OptionError(f"{extent!r} is not X0:X1:Y0:Y1 with X0 < X1 and Y0 < Y1",
+                              field="--extent") from None
+    if timing_sd_s is None and band_hz is None:
+        timing_sd_s = 2e-5
+        echo(ctx, "No timing given: assuming 20 us per mic (use --timing-sd or "
+                  "--band/--snr/--duration).")
+    res = plan_site(site, timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
+                    duration_s=duration_s, grid_step_m=grid_step_m, extent_m=ext,
+                    candidates=None if candidates == "none" else candidates, region=region,
+                    dims=dims, source_z_m=source_z_m, objective=objective,
+                    n_propose=n_propose if candidates != "none" else 0)
+    doc = res.to_dict()
+    echo(ctx, _plan_summary(doc))
+    if json_path:
+        write_json(json_path, doc)
+    if out_path:
+        from locate.draw import figures as plot
+        from locate.draw.plan import plan_figure
+        plot.save_figure(plan_figure(res, site), out_path)
+        echo(ctx, f"Planning map written to {out_path}")
+    return doc
+
+
+def _plan_summary(doc):
+    lines = [f"Locatable: {100 * doc.get('locatable_fraction', 0):.0f} % of the map area "
+             f"(95 % semi-major below {fmt_length(doc.get('limit_m'))})"]
+    for r in doc.get("receivers", []) or []:
+        if isinstance(r, dict) and "name" in r:
+            val = r.get("semi_major_m")
+            lines.append(f"  at {r['name']}: expected 95 % semi-major {fmt_length(val)}")
+    for p in doc.get("proposals", []) or []:
+        pos = p["position_m"]
+        lines.append(f"Proposed next mic {p['name']} at ({pos[0]:.1f}, {pos[1]:.1f}) m: "
+                     f"{doc.get('objective', 'worst')} semi-major over the region "
+                     f"{fmt_length(p['metric_before_m'])} -> {fmt_length(p['metric_after_m'])} "
+                     f"({p['factor']:.1f}x better)")
+    return "\n".join(lines)
+
+

@@ -1,0 +1,390 @@
+"""Survey report: one self-contained HTML page (or PDF) from a site and its result files.
+
+:func:`build_report` turns a :class:`locate.io.site.Site` and ``tdoa-result/1`` dicts (kinds
+``fix``, ``track``, ``level``) into HTML rendered from ``templates/report.html.j2`` with Jinja2
+(autoescaping on).  The page needs nothing but itself: figures are PNG ``data:`` URIs, the CSS
+is inline, there are no scripts, fonts or links off the page.  :func:`make_report` is the
+``tdoa report`` command's work: read, check, render, write atomically (PDF through headless
+Chromium, :mod:`locate.report.chromium`).
+
+What the page says is assembled in :mod:`locate.report.context` (numbers as written by
+:mod:`locate.report.format`) and :mod:`locate.report.methods`.
+"""
+
+from __future__ import annotations
+
+import base64
+import datetime
+import io
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from locate import __version__
+from locate.errors import OptionError, ResultFileError, SiteFileError, TdoaError
+from locate.report import context as rc
+from locate.report import format as rf
+from locate.results.documents import check_mic_positions, mic_moves_m
+
+__all__ = ["KINDS", "SECTIONS", "build_report", "make_report", "check_same_site",
+           "recordings_info"]
+
+KINDS = ("fix", "track", "level")
+"""Result kinds a report can show."""
+
+SECTIONS = ("summary", "setup", "maps", "results", "levels", "budget", "methods", "cautions")
+"""``id`` of each section, in page order (``levels`` and ``budget`` only when there is one)."""
+
+TITLES = {"summary": "At a glance", "setup": "Survey set-up", "maps": "Site maps",
+          "results": "Results", "levels": "Sound levels and receiver predictions",
+          "budget": "Uncertainty budget", "methods": "Methods", "cautions": "Cautions and limits"}
+
+SAME_PLACE_M = 0.01  # mic moved by more than this between the result and the site: say so
+
+_TEMPLATES = Path(__file__).resolve().parent / "templates"
+
+
+# ------------------------------------------------------------------------------- checks
+
+def check_same_site(site, result, label):
+    """Refuse a result made from another site file (its mic names differ from the site's).
+
+    Returns
+    -------
+    list of str
+        Notes for the report when the names agree but mics moved (re-surveyed since).
+
+    Raises
+    ------
+    locate.errors.ResultFileError
+        Naming the result file and the field ``mics``.
+    """
+    mics = result.get("mics")
+    if not isinstance(mics, list) or not mics:
+        return [f"{label} does not list its mics: it could not be checked against the site "
+                "file"]
+    names = [str(m.get("name")) if isinstance(m, dict) else str(m) for m in mics]
+    if names != site.mic_names:
+        missing = [n for n in site.mic_names if n not in names]
+        extra = [n for n in names if n not in site.mic_names]
+        if not extra and not missing:
+            detail = "; the same names in another order"
+        elif len(extra) < len(names):
+            detail = "; " + "; ".join(p for p in (
+                f"not in the site: {', '.join(extra)}" if extra else "",
+                f"not in the result: {', '.join(missing)}" if missing else "") if p)
+        else:
+            detail = ""
+        raise ResultFileError(f"its mics ({', '.join(names)}) are not those of the site file "
+                              f"{site.path.name} ({', '.join(site.mic_names)}{detail}): was "
+                              "it made from another site?", file=label, field="mics")
+    notes = []
+    check_mic_positions(site, result, label)
+    moved = mic_moves_m(site, result)
+    if moved is None:
+        return notes
+    if np.nanmax(moved) > SAME_PLACE_M:
+        k = int(np.nanargmax(moved))
+        notes.append(f"{label} was computed with mic positions that differ from the site file "
+                     f"by up to {rf.length(moved[k])} (mic {names[k]}): the site file was "
+                     "edited after the result was made")
+    return notes
+
+
+def _check_images(site):
+    """The site's sketch image and GeoJSON must exist: a report without them would mislead."""
+    sk = site.sketch
+    if sk is None:
+        return
+    for field, path in (("sketch.image", sk.image), ("sketch.geojson", sk.geojson)):
+        if path is not None and not Path(path).is_file():
+            raise SiteFileError(f"the site image {str(path)!r} is missing: restore it, or "
+                                f"remove {field.split('.')[1]} from [sketch], before making a "
+                                "report", file=site.path, field=field)
+
+
+def _check_result(result, label):
+    if not isinstance(result, dict) or result.get("schema") != "tdoa-result/1":
+        raise ResultFileError("not a tdoa-result/1 result", file=label, field="schema")
+    if result.get("kind") not in KINDS:
+        raise ResultFileError(f"kind is {result.get('kind')!r}; a report shows "
+                              + ", ".join(repr(k) for k in KINDS), file=label, field="kind")
+
+
+# ------------------------------------------------------------------------------- figures
+
+def _data_uri(png: bytes) -> str:
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def _map_png(site, result, notes) -> bytes:
+    from locate.draw import figures as plot
+
+    fig = plot.map_figure(site, result, warnings=notes)
+    with tempfile.TemporaryDirectory(prefix="tdoa-report-") as tmp:
+        path = Path(tmp) / "map.png"
+        plot.save_figure(fig, path, dpi=150)
+        return path.read_bytes()
+
+
+def _map_alt(site, result):
+    names = ", ".join(site.mic_names)
+    rec = ", ".join(r.name for r in site.receivers)
+    if result.get("kind") == "track":
+        tr = result.get("track") or {}
+        what = (f"the track of a moving source ({len(tr.get('points') or [])} points) heading "
+                f"{rf.degrees(tr.get('heading_deg'))} at {rf.num(tr.get('speed_mps'), 1, 'm/s')}"
+                ", with 95 % confidence ellipses along it")
+    else:
+        fixes = result.get("fixes") or []
+        where = "; ".join(f"fix {k} at x {rf.num(f['position_m'][0], 1)} m, y "
+                          f"{rf.num(f['position_m'][1], 1)} m" for k, f in enumerate(fixes, 1))
+        what = f"{len(fixes)} located position(s) with 95 % confidence ellipses ({where})"
+    return (f"Site map of {site.title}, local metres with north up: {len(site.mics)} "
+            f"microphones ({names}) and {what}"
+            + (f"; receivers: {rec}" if rec else "") + ".")
+
+
+def _level_png(lev) -> bytes:
+    """Sound power per octave band with the spread between mics, and receiver levels."""
+    from matplotlib.figure import Figure
+
+    from locate.draw import kit as mk
+
+    bands = [b for b in lev["bands_hz"]]
+    x = np.arange(len(bands))
+    lw = np.array([np.nan if v is None else v for v in lev["source_lw_db"]], dtype=float)
+    spread = np.array([np.nan if v is None else v for v in lev.get("mic_spread_db")
+                       or [None] * len(bands)], dtype=float)
+    fig = Figure(figsize=(7.0, 2.7))
+    ax = fig.add_subplot(1, 1, 1)
+    ink = mk.PALETTE.get("ink", "#222222")
+    ax.bar(x, lw, width=0.6, color="#4a78a8", label="source sound power level Lw",
+           yerr=0.5 * np.nan_to_num(spread), error_kw={"ecolor": ink, "capsize": 3, "lw": 0.8})
+    markers = ["s", "D", "^", "v", "o"]
+    for k, r in enumerate(lev.get("receivers") or []):
+        lp = np.array([np.nan if v is None else v for v in r.get("lp_db") or []], dtype=float)
+        if lp.size == len(bands):
+            ax.plot(x, lp, marker=markers[k % len(markers)], color="#b35900", lw=1.2,
+                    label=f"predicted at {r.get('name')} (Lp)")
+    ax.set_xticks(x, [f"{b:g}" for b in bands])
+    ax.set_xlabel("octave band, Hz")
+    unit = "dB re 1 pW / 20 µPa" if lev.get("calibrated", True) else "dB re full scale"
+    ax.set_ylabel(f"level, {unit}")
+    ax.grid(axis="y", color="#cccccc", lw=0.6)
+    ax.set_axisbelow(True)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.28), ncol=2, fontsize=8,
+              frameon=False)
+    for s in ("top", "right"):
+        ax.spines[s].set_visible(False)
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=150, metadata={"Software": "tdoa"}, facecolor="white")
+    return buf.getvalue()
+
+
+def _level_alt(section, lev):
+    lw = [v for v in lev["source_lw_db"] if v is not None]
+    peak = ""
+    if lw:
+        k = int(np.nanargmax([np.nan if v is None else v for v in lev["source_lw_db"]]))
+        peak = (f"; highest in the {lev['bands_hz'][k]:g} Hz band at "
+                f"{rf.db(lev['source_lw_db'][k])} dB")
+    rec = "; ".join(f"{r['name']} {r['lpa']} dB(A)" for r in section["receivers"])
+    return (f"Bar chart of the source sound power level per octave band for fix "
+            f"{section['fix']}, A-weighted total {section['lwa']} dB{peak}; error bars show "
+            "the spread between microphones"
+            + (f"; lines show the predicted levels at the receivers ({rec})" if rec else "")
+            + ".")
+
+
+# ------------------------------------------------------------------------------- the page
+
+def _environment():
+    import jinja2
+
+    env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(_TEMPLATES)), autoescape=True,
+                             trim_blocks=True, lstrip_blocks=True,
+                             undefined=jinja2.StrictUndefined)
+    return env
+
+
+def build_report(site, results, *, title=None, files=None, recordings=None, generated=None):
+    """The survey report as one self-contained HTML page.
+
+    Parameters
+    ----------
+    site : locate.io.site.Site
+    results : list of dict
+        ``tdoa-result/1`` dicts of kind ``fix``, ``track`` or ``level`` made from ``site``.
+    title : str, optional
+        Page title (default: the site's title).
+    files : list of str, optional
+        The result files' names, as shown in the report and named in errors.
+    recordings : dict, optional
+        Audio facts from :func:`recordings_info`; None leaves the recordings table out.
+    generated : str, optional
+        Date shown as "prepared on" (default: today, ISO 8601).
+
+    Returns
+    -------
+    str
+        HTML.
+
+    Raises
+    ------
+    locate.errors.ResultFileError
+        A result of another schema, kind or site (field ``mics``).
+    locate.errors.SiteFileError
+        The site's sketch image or GeoJSON is missing.
+    """
+    if not results:
+        raise OptionError("give at least one result file", field="RESULT")
+    labels = list(files) if files is not None else [f"result {k}" for k in
+                                                    range(1, len(results) + 1)]
+    results = [dict(r, _label=lab) if isinstance(r, dict) else r
+               for r, lab in zip(results, labels, strict=True)]
+    notes = []
+    for r, lab in zip(results, labels, strict=True):
+        _check_result(r, lab)
+        notes += check_same_site(site, r, lab)
+    _check_images(site)
+
+    maps = []
+    for r in results:
+        if r["kind"] in ("fix", "track"):
+            caption = ("The moving source's track over the site, with the microphones"
+                       if r["kind"] == "track" else
+                       "Where the sounds came from: the located positions and their ellipses "
+                       "among the microphones") + (" and receivers" if site.receivers else "")
+            maps.append({"src": _data_uri(_map_png(site, r, notes)), "alt": _map_alt(site, r),
+                         "caption": caption, "label": r["_label"]})
+    fix_sets = [rc.fix_section(r, site) for r in results if r["kind"] == "fix"]
+    tracks = [rc.track_section(r, site) for r in results if r["kind"] == "track"]
+    levels = []
+    for r in results:
+        if r["kind"] != "level":
+            continue
+        for lev, section in zip(rc.level_entries(r), rc.level_sections(r, site), strict=True):
+            if any(v is not None for v in lev.get("source_lw_db") or []):
+                section["chart"] = {"src": _data_uri(_level_png(lev)),
+                                    "alt": _level_alt(section, lev)}
+            else:
+                section["chart"] = None
+            levels.append(section)
+    budgets = [b for r in results if r["kind"] == "fix" for b in rc.budget_sections(r)]
+    shown = [s for s in SECTIONS if (s != "levels" or levels) and (s != "budget" or budgets)]
+    context = {
+        "toc": [{"id": s, "n": str(k), "title": TITLES[s]} for k, s in enumerate(shown, 1)],
+        "title": title or site.title,
+        "site_title": site.title,
+        "site_file": site.path.name,
+        "generated": generated or datetime.date.today().isoformat(),
+        "version": __version__,
+        "inputs": [{"file": r["_label"], "kind": r["kind"],
+                    "made": (r.get("tool") or {}).get("version", "")} for r in results],
+        "summary": rc.summary_lines(results, site),
+        "setup": rc.setup_section(site, results, recordings),
+        "maps": maps,
+        "fix_sets": fix_sets,
+        "tracks": tracks,
+        "levels": levels,
+        "budgets": budgets,
+        "methods": rc.methods_section(site, results),
+        "cautions": rc.cautions_of(results),
+        "notes": list(dict.fromkeys(notes)),
+    }
+    return _environment().get_template("report.html.j2").render(**context)
+
+
+# ------------------------------------------------------------------------------- I/O edge
+
+def recordings_info(site):
+    """Sample rates, lengths and the common span of the site's recordings, for the report.
+
+    Returns
+    -------
+    dict
+        See :func:`locate.report.context.setup_section`; ``error`` set (and no files) when
+        the recordings cannot be opened now (moved or archived).
+    """
+    import soundfile
+
+    from locate.io.audio import open_recordings
+
+    try:
+        rec = open_recordings(site)
+    except TdoaError as exc:
+        return {"error": f"the recordings could not be opened when this report was made "
+                         f"({exc.message})", "files": []}
+    by_file = {}
+    for name, path, _ch in rec.files:
+        by_file.setdefault(path, []).append(name)
+    files = []
+    for path, names in by_file.items():
+        info = soundfile.info(str(path))
+        files.append({"file": Path(path).name, "channels": int(info.channels),
+                      "sample_rate_hz": float(info.samplerate),
+                      "duration_s": float(info.frames) / float(info.samplerate),
+                      "mics": names})
+    return {"error": None, "files": files, "start_s": rec.start_s, "stop_s": rec.stop_s}
+
+
+_SUFFIXES = {".html": "html", ".htm": "html", ".pdf": "pdf"}
+
+
+def _refuse_input(out, inputs):
+    for p in inputs:
+        if p is not None and out.resolve() == Path(p).resolve():
+            raise OptionError("is one of the inputs: choose another output path (inputs are "
+                              "never overwritten)", file=out, field="-o")
+
+
+def make_report(site_path, result_paths, out_path, *, title=None, generated=None) -> Path:
+    """Read a site and its results, check them, and write the report (HTML or PDF).
+
+    Parameters
+    ----------
+    site_path : path
+    result_paths : sequence of path
+        Result JSON files (kinds ``fix``, ``track``, ``level``) made from this site.
+    out_path : path
+        ``.html`` / ``.htm`` or ``.pdf`` (printed by headless Chromium); never an input.
+    title : str, optional
+    generated : str, optional
+        "Prepared on" date (default today).
+
+    Returns
+    -------
+    pathlib.Path
+        The file written (atomically).
+    """
+    from locate.io.site import load_site
+    from locate.report import chromium
+    from locate.results.documents import check_output_path, read_result, write_atomic
+
+    out = Path(out_path)
+    if not result_paths:
+        raise OptionError("give at least one result file", field="RESULT")
+    _refuse_input(out, [site_path, *result_paths])
+    fmt = _SUFFIXES.get(out.suffix.lower())
+    if fmt is None:
+        raise OptionError(f"cannot write a report as {out.suffix or 'a file without extension'!r}"
+                          ": use .html or .pdf", file=out, field="-o")
+    site = load_site(site_path, require_audio=False)
+    inputs = [site.path, site.recording_file, *[Path(p) for p in result_paths],
+              *[m.file for m in site.mics]]
+    if site.sketch is not None:
+        inputs += [site.sketch.image, site.sketch.geojson]
+    _refuse_input(out, inputs)
+    check_output_path(out, inputs, option="-o")
+    if fmt == "pdf":
+        chromium.require_chromium()  # before the work: "not found, write HTML instead"
+    results = [read_result(p, kinds=KINDS) for p in result_paths]
+    for r, p in zip(results, result_paths, strict=True):
+        check_same_site(site, r, str(p))  # the error names the file as given
+    html = build_report(site, results, title=title, files=[Path(p).name for p in result_paths],
+                        recordings=recordings_info(site), generated=generated)
+    data = chromium.print_pdf(html) if fmt == "pdf" else html
+    return write_atomic(out, data)

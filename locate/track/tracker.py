@@ -1,0 +1,503 @@
+"""Moving-source tracks: path, heading, speed, and where the source is when it is heard.
+
+The pipeline (:func:`track_recording`):
+
+1. plain windowed GCC delays (:mod:`locate.track.delays`) -> a starting path fitted with the
+   pair-anchored retarded-time model (:mod:`locate.track.retarded`, :mod:`locate.track.pathfit`);
+2. windows warped along the current path -> residual delays -> the path refitted with the exact
+   reference-anchored model, repeated until it settles;
+3. track points at each window's emission time with their covariance, heading and speed with
+   standard deviations (first-order propagation), the position the source has reached when its
+   sound is heard, closest approaches, and - when the source has a tone - a Doppler speed
+   (:mod:`locate.track.doppler`).
+
+Conventions: times on the recording time base of the reference mic; heading clockwise from
+north (+y) toward east (+x); ``speed_mps`` is the 3-D speed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from locate.errors import NothingFoundError, OptionError
+from locate.physics import air
+from locate.signal.delays import geometric_max_lag_s
+from locate.track import delays as track_delays
+from locate.track import doppler
+from locate.track import start as track_start
+from locate.track.motion import Path, closest_approach, heading_deg
+from locate.track.pathfit import PathFit, fit_path, knot_times
+from locate.track.retarded import predict_delays
+
+__all__ = [
+    "TrackResult", "describe_fit", "track_recording", "track_to_dict", "stationary_message",
+    "naive_fit", "STATIONARY_SPEED_MPS",
+]
+
+STATIONARY_SPEED_MPS = 0.5
+"""Below this fitted speed (or below two standard deviations) the source counts as stationary."""
+
+
+@dataclass
+class TrackResult:
+    """A reconstructed track.
+
+    Attributes
+    ----------
+    fit : PathFit
+    path : Path
+    t_heard_s, t_emit_s : ndarray, shape (W,)
+    position_m : ndarray, shape (W, 3)
+        Where each window's sound was emitted.
+    covariance_m2 : ndarray, shape (W, 3, 3)
+    position_now_m : ndarray, shape (W, 3)
+        Where the source is at ``t_heard_s``.
+    covariance_now_m2 : ndarray, shape (W, 3, 3)
+    lag_m : ndarray, shape (W,)
+        Distance between the heard-from and the is-now positions.
+    lag_bearing_deg : ndarray, shape (W,)
+        Azimuth of the is-now position minus that of the heard-from one, seen from
+        ``bearing_from_m``, wrapped to (-180, 180].
+    lag_angle_deg : ndarray, shape (W,)
+        3-D angle between the two sight lines from ``bearing_from_m``.
+    bearing_from_m : ndarray, shape (3,)
+    velocity_mps : ndarray, shape (3,)
+        Mean velocity over the emission span; ``velocity_covariance`` (3, 3).
+    heading_deg, heading_sd_deg, speed_mps, speed_sd_mps : float
+    segments : list of dict
+        Per segment: t_start_s, t_stop_s, heading_deg, speed_mps (and their sd).
+    closest : list of dict
+        Per point of interest: index, t_s, t_heard_s, distance_m, distance_sd_m,
+        position_m, within_span.
+    stationary : bool
+    doppler : dict or None
+    warnings : list of str
+    """
+
+    fit: PathFit
+    path: Path
+    t_heard_s: np.ndarray
+    t_emit_s: np.ndarray
+    position_m: np.ndarray
+    covariance_m2: np.ndarray
+    position_now_m: np.ndarray
+    covariance_now_m2: np.ndarray
+    lag_m: np.ndarray
+    lag_bearing_deg: np.ndarray
+    lag_angle_deg: np.ndarray
+    bearing_from_m: np.ndarray
+    velocity_mps: np.ndarray
+    velocity_covariance: np.ndarray
+    heading_deg: float
+    heading_sd_deg: float
+    speed_mps: float
+    speed_sd_mps: float
+    segments: list
+    closest: list
+    stationary: bool
+    model: str = "straight"
+    doppler: dict | None = None
+    sound_speed_mps: float = 343.0
+    warnings: list = field(default_factory=list)
+    fit_inputs: dict = field(default_factory=dict)
+
+
+def _heading_speed(v, cov):
+    """Heading, its sd, speed, its sd (first-order propagation) of a velocity (3,), cov (3,3)."""
+    h2 = v[0] ** 2 + v[1] ** 2
+    speed = float(np.linalg.norm(v))
+    jh = np.array([v[1], -v[0], 0.0]) / max(h2, 1e-300)  # d atan2(vx, vy) / dv, rad
+    js = v / max(speed, 1e-300)
+    return (float(heading_deg(v)), float(np.rad2deg(np.sqrt(max(jh @ cov @ jh, 0.0)))), speed,
+            float(np.sqrt(max(js @ cov @ js, 0.0))))
+
+
+def _azimuth_deg(vec):
+    return np.rad2deg(np.arctan2(vec[..., 0], vec[..., 1]))
+
+
+def describe_fit(fit: PathFit, mic_positions_m, sound_speed_mps, wind_mps=None, *,
+                 bearing_from_m=None, points_m=None, model="straight"):
+    """Track points and derived quantities of a path fit.
+
+    Parameters
+    ----------
+    fit : PathFit
+    mic_positions_m : array_like, shape (N, 3)
+    sound_speed_mps : float
+    wind_mps : array_like, shape (3,), optional
+    bearing_from_m : array_like, shape (3,), optional
+        Where the lag bearing is seen from (default: the reference mic).
+    points_m : array_like, shape (M, 3), optional
+        Points for the closest approach (default: the mics).
+
+    Returns
+    -------
+    TrackResult
+    """
+    mics = np.asarray(mic_positions_m, float)
+    par, th, cov = fit.par, fit.theta, fit.covariance
+    path = fit.path
+    sel = fit.used
+    t_h, t_e = fit.t_heard_s, fit.t_emit_s
+    # total derivative of p(t_e(theta)) for the reference-anchored emission time
+    b_e = par.basis(t_e)
+    v_e = path.velocity_mps(t_e)
+    if fit.retarded:
+        g0 = air.travel_time_gradient(path.position_m(t_e), mics[fit.reference_mic],
+                                      sound_speed_mps, wind_mps)
+        de = -np.einsum("wi,win->wn", g0, b_e) / (1.0 + np.einsum("wi,wi->w", g0, v_e))[:, None]
+        q = b_e + v_e[..., None] * de[:, None, :]
+    else:
+        q = b_e
+    pos = path.position_m(t_e)
+    pcov = np.einsum("win,nm,wjm->wij", q, cov, q)
+    b_h = par.basis(t_h)
+    now = path.position_m(t_h)
+    ncov = np.einsum("win,nm,wjm->wij", b_h, cov, b_h)
+    origin = (mics[fit.reference_mic] if bearing_from_m is None
+              else np.asarray(bearing_from_m, float))
+    a, b = pos - origin, now - origin
+    lag_bearing = (_azimuth_deg(b) - _azimuth_deg(a) + 180.0) % 360.0 - 180.0
+    cosang = np.einsum("wi,wi->w", a, b) / np.maximum(
+        np.linalg.norm(a, axis=1) * np.linalg.norm(b, axis=1), 1e-300)
+    lag_angle = np.rad2deg(np.arccos(np.clip(cosang, -1.0, 1.0)))
+
+    t_lo, t_hi = float(t_e[sel].min()), float(t_e[sel].max())
+    if t_hi <= t_lo:
+        t_hi = t_lo + 1e-3
+    a_v = (par.basis(np.array(t_hi)) - par.basis(np.array(t_lo))) / (t_hi - t_lo)  # (3, n)
+    vel = a_v @ th
+    vcov = a_v @ cov @ a_v.T
+    hd, hd_sd, sp, sp_sd = _heading_speed(vel, vcov)
+    segments = []
+    kt = par.knot_times_s
+    for k in range(par.n_knots - 1):
+        a_k = (par.basis(np.array(kt[k + 1])) - par.basis(np.array(kt[k]))) / (kt[k + 1] - kt[k])
+        h_k = _heading_speed(a_k @ th, a_k @ cov @ a_k.T)
+        segments.append({"t_start_s": float(kt[k]), "t_stop_s": float(kt[k + 1]),
+                         "heading_deg": h_k[0], "heading_sd_deg": h_k[1],
+                         "speed_mps": h_k[2], "speed_sd_mps": h_k[3]})
+    pts = mics if points_m is None else np.asarray(points_m, float).reshape(-1, 3)
+    closest = _closest(par, th, cov, pts, sound_speed_mps, wind_mps, (t_lo, t_hi))
+    stationary = bool(sp < STATIONARY_SPEED_MPS or sp < 2.0 * sp_sd)
+    return TrackResult(
+        fit=fit, path=path, t_heard_s=t_h, t_emit_s=t_e, position_m=pos, covariance_m2=pcov,
+        position_now_m=now, covariance_now_m2=ncov, lag_m=np.linalg.norm(now - pos, axis=1),
+        lag_bearing_deg=lag_bearing, lag_angle_deg=lag_angle, bearing_from_m=origin,
+        velocity_mps=vel, velocity_covariance=vcov, heading_deg=hd, heading_sd_deg=hd_sd,
+        speed_mps=sp, speed_sd_mps=sp_sd, segments=segments, closest=closest,
+        stationary=stationary, model=model, sound_speed_mps=float(sound_speed_mps),
+        warnings=list(fit.warnings))
+
+
+def _closest(par, th, cov, pts, c, wind, span):
+    """Closest approach of the path to each point, sd by finite-difference propagation."""
+    def cpa(theta):
+        t, dist, pos = closest_approach(par.path(theta), pts)
+        return t, dist, pos
+
+    t0, d0, p0 = cpa(th)
+    jt = np.zeros((len(pts), par.n_params))
+    jd = np.zeros_like(jt)
+    for k in range(par.n_params):
+        h = np.zeros(par.n_params)
+        h[k] = 1e-3
+        tp, dp, _ = cpa(th + h)
+        tm, dm, _ = cpa(th - h)
+        jt[:, k], jd[:, k] = (tp - tm) / 2e-3, (dp - dm) / 2e-3
+    heard = t0 + air.travel_time_s(p0, pts, c, wind)
+    out = []
+    for m in range(len(pts)):
+        out.append({
+            "index": m, "t_s": float(t0[m]), "t_heard_s": float(heard[m]),
+            "distance_m": float(d0[m]),
+            "t_sd_s": float(np.sqrt(max(jt[m] @ cov @ jt[m], 0.0))),
+            "distance_sd_m": float(np.sqrt(max(jd[m] @ cov @ jd[m], 0.0))),
+            "position_m": p0[m].tolist(),
+            "within_span": bool(span[0] <= t0[m] <= span[1]),
+        })
+    return out
+
+
+def stationary_message(result: TrackResult) -> str:
+    """The user message for a track whose source does not appear to move."""
+    return (f"the source appears stationary (fitted speed {result.speed_mps:.2f} +/- "
+            f"{result.speed_sd_mps:.2f} m/s); locate it with `tdoa fix` instead of `tdoa track`")
+
+
+def naive_fit(result: TrackResult, mic_positions_m, sound_speed_mps, wind_mps=None):
+    """Refit the same delays ignoring the retarded time (source at p(t_heard)) - for comparison.
+
+    Uses the absolute delays of the final pass of ``result`` (its warped residuals plus the
+    reference-anchored prediction of the path they were warped along).
+
+    Returns
+    -------
+    TrackResult
+        Its ``position_m`` are the naive positions, timed at ``t_heard_s``.
+    """
+    fit = result.fit
+    meas = result.fit_inputs
+    mics = np.asarray(mic_positions_m, float)
+    d_abs = meas["absolute_delays_s"]
+    nf = fit_path(fit.t_heard_s, d_abs, meas["covariance_s2"], mics, meas["pairs"],
+                  sound_speed_mps, wind_mps=wind_mps, dims=fit.par.dims,
+                  source_z_m=fit.par.source_z_m, model=result.model, usable=meas["usable"],
+                  retarded=False, initial=fit.path)
+    return describe_fit(nf, mics, sound_speed_mps, wind_mps, model=result.model)
+
+
+def _check_inputs(signals, fs, mics, dims, model, sound_speed_mps):
+    x = np.asarray(signals, float)
+    if x.ndim != 2 or x.shape[0] != len(mics):
+        raise OptionError(f"signals must have shape (n_mics={len(mics)}, n_samples), "
+                          f"got {x.shape!r}", field="signals")
+    if dims not in (2, 3):
+        raise OptionError(f"--dims must be 2 or 3, got {dims!r}", field="--dims")
+    if model not in ("straight", "segments"):
+        raise OptionError(f"model must be 'straight' or 'segments', got {model!r}",
+                          field="--model")
+    need = 4 if dims == 2 else 5
+    if len(mics) < need:
+        raise OptionError(f"a {dims}-D track needs at least {need} mics, got {len(mics)}",
+                          field="mics")
+    if not (np.isfinite(sound_speed_mps) and sound_speed_mps > 0 and fs > 0):
+        raise OptionError(f"sound speed and sample rate must be positive, got "
+                          f"{sound_speed_mps!r} m/s, {fs!r} Hz")
+    if not np.all(np.isfinite(x)) or np.all(np.std(x, axis=1) == 0):
+        raise NothingFoundError("the span holds no signal (silent or constant channels)")
+    return x
+
+
+def overlap_factor(window_s, hop_s):
+    """Variance factor for estimates built from windows overlapping by ``window - hop``."""
+    k = np.arange(1, int(np.ceil(window_s / hop_s)) + 1)
+    return float(1.0 + 2.0 * np.sum(np.clip(1.0 - k * hop_s / window_s, 0.0, None)))
+
+
+def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *, t0_s=0.0,
+                    window_s=None, hop_s=None, band_hz=None, dims=2, source_z_m=0.0,
+                    wind_mps=None, model="straight", segment_s=None, expected_speed_mps=20.0,
+                    reference_mic=0, points_m=None, bearing_from_m=None, tone_hz=None,
+                    passes=4, allow_stationary=False, progress=None):
+    """Reconstruct a moving source's track from synchronised recordings.
+
+    Parameters
+    ----------
+    signals : array_like, shape (N, T)
+        The analysed span of every mic; sample 0 is at ``t0_s`` (recording time).
+    sample_rate_hz : float
+    mic_positions_m : array_like, shape (N, 3)
+    sound_speed_mps : float
+    t0_s : float
+    window_s, hop_s : float, optional
+        Track window and hop (default: :func:`locate.track.delays.default_window_s`).
+    band_hz : (float, float), optional
+        Analysis band (default: found from the data per window).
+    dims : {2, 3}
+        2: the source moves at height ``source_z_m``; 3: free height (aircraft).
+    wind_mps : array_like, shape (3,), optional
+    model : {"straight", "segments"}
+    segment_s : float, optional
+        Segment length of the ``"segments"`` model.
+    expected_speed_mps : float
+        Sets the default window.
+    reference_mic : int
+    points_m : array_like, shape (M, 3), optional
+        Points for the closest approach (default: the mics; add receivers here).
+    bearing_from_m : array_like, shape (3,), optional
+        Where the heard-vs-now bearing lag is seen from (default: the reference mic).
+    tone_hz : float or "auto" or None
+        Track this tone (or the strongest one) for the Doppler speed; None: skip.
+    passes : int
+        Warped refinement passes at most.
+    allow_stationary : bool
+        Return a stationary-looking result instead of raising.
+    progress : callable(done, total), optional
+
+    Returns
+    -------
+    TrackResult
+        ``fit_inputs`` holds the final measured delays (for :func:`naive_fit`).
+
+    Raises
+    ------
+    locate.errors.OptionError
+        Bad window, hop, dims or model.
+    locate.errors.NothingFoundError
+        No coherent sound in the span, or the source appears stationary.
+    """
+    mics = np.asarray(mic_positions_m, float)
+    fs = float(sample_rate_hz)
+    c = float(sound_speed_mps)
+    x = _check_inputs(signals, fs, mics, dims, model, c)
+    w_def, h_def, plain_w = track_delays.default_window_s(mics, c, expected_speed_mps)
+    window_s = w_def if window_s is None else float(window_s)
+    hop_s = (window_s / 2.0 if window_s != w_def else h_def) if hop_s is None else float(hop_s)
+    centres = track_delays.window_centres(x.shape[1], fs, t0_s, window_s, hop_s)
+    span_s = x.shape[1] / fs
+    plain_w = min(max(0.25, window_s), span_s)
+    plain_c = track_delays.window_centres(x.shape[1], fs, t0_s, plain_w, plain_w)
+    pairs = np.stack(np.triu_indices(len(mics), k=1), axis=1)
+    wind_speed = 0.0 if wind_mps is None else float(np.linalg.norm(wind_mps))
+    n_total = len(plain_c) + (passes + 1) * len(centres)
+    done = [0]
+
+    def tick(*_):
+        done[0] += 1
+        if progress is not None:
+            progress(done[0], n_total)
+
+    # pass 1: plain windows -> motion-tolerant SRP fixes -> RANSAC line -> SRP polish
+    lo, hi = (20.0, 0.45 * fs) if band_hz is None else band_hz
+    lobe = 1.0 / max(hi - lo, 1.0)
+    lags, curves = track_delays.gcc_curves(
+        x, fs, t0_s, plain_c, plain_w, pairs,
+        geometric_max_lag_s(mics, pairs, c, wind_speed_mps=wind_speed), band_hz=band_hz,
+        progress=tick)
+    kw = dict(wind_mps=wind_mps, dims=dims, source_z_m=source_z_m, model=model,
+              segment_s=segment_s, reference_mic=reference_mic,
+              turn_sd_mps=0.5 * expected_speed_mps)
+    fix_m, score = track_start.srp_fixes(lags, curves, plain_w, mics, pairs, c, wind_mps,
+                                         dims=dims, source_z_m=source_z_m,
+                                         expected_speed_mps=expected_speed_mps, lobe_s=lobe)
+    good = score > 3.0 * np.sqrt(len(pairs))
+    if good.sum() < 3:
+        raise NothingFoundError("no coherent sound between the microphones in the span; "
+                                "check --from/--to and --band")
+    origin = mics.mean(axis=0)
+    u = fix_m - origin
+    u /= np.maximum(np.linalg.norm(u, axis=1, keepdims=True), 1e-12)
+    a, b, _ = track_start.bearing_line(plain_c[good], u[good], score[good], dims=dims)
+    start, _ = track_start.scale_search(a, b, origin, plain_c, lags, curves, plain_w, mics,
+                                        pairs, c, wind_mps, dims=dims, source_z_m=source_z_m,
+                                        lobe_s=lobe, reference_mic=reference_mic)
+    if start is None:
+        raise NothingFoundError("no subsonic straight path fits the directions heard; check "
+                                "--from/--to and --band")
+    # candidates: the bearing line and the best cells of a coarse path grid, each polished
+    # from a wide lag tolerance down to the main lobe; the highest final SRP wins
+    cands, cum = track_start.grid_start(lags, curves, plain_c, plain_w, mics, pairs, c,
+                                        wind_mps, dims=dims, source_z_m=source_z_m,
+                                        expected_speed_mps=expected_speed_mps, lobe_s=lobe)
+    best_s = -np.inf
+    for cand in [start] + cands[:3]:
+        pol, val = track_start.polish_path(cand, lags, curves, plain_c, plain_w, mics, pairs,
+                                           c, wind_mps, dims=dims, source_z_m=source_z_m,
+                                           lobe_s=lobe, floors_s=(0.02, 0.005, 0.0),
+                                           maxfev=300, cum=cum)
+        if val > best_s:
+            start, best_s = pol, val
+
+    # pass 2..: windows warped along the current path, reference-anchored model
+    span = track_delays.emission_span_s(start, centres, window_s, mics[reference_mic], c,
+                                        wind_mps)
+    knots = knot_times(span[0], span[1], model, len(centres), segment_s)
+    if model == "segments":
+        bent = track_start.bend_path(start, knots, plain_c, u, good, origin, mics, c, wind_mps,
+                                     dims=dims, source_z_m=source_z_m,
+                                     reference_mic=reference_mic)
+        args = (lags, curves, plain_c, plain_w, mics, pairs, c, wind_mps)
+        srp_kw = dict(dims=dims, source_z_m=source_z_m, lobe_s=lobe)
+        if track_start.path_srp(bent, *args, **srp_kw) > track_start.path_srp(start, *args,
+                                                                              **srp_kw):
+            start = bent
+    max_lag = min(0.02, window_s / 4.0)
+    warp = start
+    fit = None
+    meas = None
+    n_ok = 0
+    for k in range(passes + 1):
+        tolerant = k == 0
+        eps, cov_w, ok_w = track_delays.warped_delays(
+            x, fs, t0_s, centres, window_s, warp, mics, pairs, c, wind_mps=wind_mps,
+            band_hz=band_hz, max_lag_s=max_lag, reference_mic=reference_mic,
+            tolerant=tolerant, progress=tick)
+        if ok_w.sum(axis=1).max(initial=0) < dims + 1:
+            raise NothingFoundError(
+                "no coherent sound along the path in the track windows"
+                + ("" if band_hz is not None else ": the whole band was searched; give --band "
+                   "around the source's sound (e.g. its octaves above the background)")
+                + "; a source passing close to the mics may need a shorter --window")
+        new = fit_path(centres, eps, cov_w, mics, pairs, c, usable=ok_w, warp=warp,
+                       initial=warp, robust=tolerant, knots_s=knots, **kw)
+        moved = np.max(np.linalg.norm(new.path.position_m(new.t_emit_s)
+                                      - warp.position_m(new.t_emit_s), axis=1))
+        meas = (eps, cov_w, ok_w, warp)
+        fit, warp = new, new.path
+        # next search: a few times what the new path leaves unexplained, plus two lobes
+        max_lag = float(np.clip(8.0 * fit.residual_rms_s + 2.0 * lobe, 2e-3, max_lag))
+        sd = np.sqrt(np.max(np.linalg.eigvalsh(fit.covariance)))
+        n_ok, n_ok_prev = (0 if tolerant else int(ok_w.sum())), n_ok
+        if k >= 2 and moved < max(0.5 * sd, 0.05) and n_ok <= 1.02 * n_ok_prev:
+            break
+    # Overlapping windows share samples, so their delay errors are correlated (for a
+    # rectangular window the correlation of windows k hops apart is 1 - k hop / window); the
+    # fit treats windows as independent.  Scale the path covariance by the long-run variance
+    # factor 1 + 2 sum_k max(0, 1 - k hop / window) of such a sequence (common practice for
+    # averages of overlapping segments).
+    fit = dataclasses.replace(fit, covariance=fit.covariance * overlap_factor(window_s, hop_s),
+                              covariance_scale=fit.covariance_scale
+                              * overlap_factor(window_s, hop_s))
+    result = describe_fit(fit, mics, c, wind_mps, bearing_from_m=bearing_from_m,
+                          points_m=points_m, model=model)
+    eps, cov_w, ok_w, warp_used = meas
+    pred_w = predict_delays(fit.par, fit.par.theta(warp_used), centres, mics, pairs, c, wind_mps,
+                            reference_mic=reference_mic, jacobian=False)[0]
+    result.fit_inputs = {"pairs": pairs, "absolute_delays_s": pred_w + eps,
+                         "covariance_s2": cov_w, "usable": ok_w, "window_s": window_s,
+                         "hop_s": hop_s, "plain_window_s": plain_w}
+    if result.stationary and not allow_stationary:
+        raise NothingFoundError(stationary_message(result))
+    if tone_hz is not None:
+        result.doppler = doppler.doppler_speed(x, fs, t0_s, centres, window_s, result, mics, c,
+                                               wind_mps=wind_mps, tone_hz=tone_hz)
+    return result
+
+
+def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
+    """The ``"track"`` part of a ``tdoa-result/1`` JSON (schema in DESIGN.md, plus extras).
+
+    Parameters
+    ----------
+    result : TrackResult
+    mic_names : sequence of str
+    point_names : sequence of str, optional
+        Names of the closest-approach points (default: the mic names).
+
+    Returns
+    -------
+    dict
+    """
+    names = list(mic_names if point_names is None else point_names)
+    used = result.fit.used
+    pts = []
+    for w in range(len(result.t_heard_s)):
+        pts.append({
+            "t_emit_s": float(result.t_emit_s[w]), "t_heard_s": float(result.t_heard_s[w]),
+            "position_m": result.position_m[w].tolist(),
+            "covariance_m2": result.covariance_m2[w].tolist(),
+            "position_now_m": result.position_now_m[w].tolist(),
+            "lag_m": float(result.lag_m[w]), "lag_bearing_deg": float(result.lag_bearing_deg[w]),
+            "lag_angle_deg": float(result.lag_angle_deg[w]), "used": bool(used[w]),
+        })
+    closest = [dict(c, name=names[c["index"]] if c["index"] < len(names) else str(c["index"]))
+               for c in result.closest]
+    for c in closest:
+        c.pop("index")
+    return {
+        "points": pts, "heading_deg": result.heading_deg, "heading_sd_deg": result.heading_sd_deg,
+        "speed_mps": result.speed_mps, "speed_sd_mps": result.speed_sd_mps,
+        "velocity_mps": result.velocity_mps.tolist(), "model": result.model,
+        "segments": result.segments, "closest_approach": closest,
+        "bearing_from_m": result.bearing_from_m.tolist(),
+        "knots": {"t_s": result.path.knot_times_s.tolist(),
+                  "position_m": result.path.knot_positions_m.tolist()},
+        "residual_rms_s": result.fit.residual_rms_s, "chi2": result.fit.chi2,
+        "dof": result.fit.dof, "stationary": result.stationary,
+        "doppler": result.doppler, "warnings": list(result.warnings),
+    }
