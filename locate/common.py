@@ -81,8 +81,8 @@ def format_length(v_m, *, sep: str = " ", significant: int = 3) -> str:
     """A length with a unit chosen for its size, ``significant`` figures at most.
 
     ``0.049 mm`` is written ``49 µm``; then ``4.9 mm``, ``27 cm``, ``3.52 m``, ``240 m``,
-    ``12.5 km``.  None or a non-finite value is ``unbounded`` (the position is not determined
-    along some direction).
+    ``12.5 km`` (no trailing zeros).  None or a non-finite value is ``unbounded`` (the
+    position is not determined along some direction).
 
     Parameters
     ----------
@@ -107,6 +107,8 @@ def format_length(v_m, *, sep: str = " ", significant: int = 3) -> str:
     x = v / scale
     d = _digits(round(x, _digits(x, significant)) if x else 0.0, significant)
     text = f"{x:.{d}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")  # "27 cm", "4.9 mm": no trailing zeros
     if unit == "µm" and a == 0:
         text, unit = "0", "m"
     return f"{text}{sep}{unit}"

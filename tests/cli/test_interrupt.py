@@ -31,7 +31,7 @@ RATE_HZ = 4000
 MINUTES = 6.0
 BANG_AT_S = MINUTES * 60.0 - 10.0
 SOURCE_M = np.array([12.0, 25.0, 0.0])
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 # at 12 degC, 70 % RH: Cramer 1993 (331.3 + 0.606 T m/s dry, about +0.6 m/s humid: from memory)
 SPEED_MPS = 339.17
 

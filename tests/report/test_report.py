@@ -354,7 +354,7 @@ def test_uncertainty_budget_shares_equal_the_result_json(survey):
         assert_shown(row[1], 100.0 * share)
     assert "re-survey mic M3" in survey["html"]
     text = " ".join(survey["html"].replace("\u00a0", " ").split())
-    assert ("mic positions 5.0 cm per horizontal axis and 10.0 cm in height; air temperature "
+    assert ("mic positions 5 cm per horizontal axis and 10 cm in height; air temperature "
             "± 2.0 °C (default); wind 0.5 m/s") in text
     gains = page.body_rows("budget-mics-1")
     assert [r[2] for r in gains] == ["0.0 %", "0.0 %", "25.0 %", "0.0 %", "0.0 %"]

@@ -1,0 +1,1 @@
+"""tdoa tests, one folder per package room (see DEVELOPERS.md)."""
