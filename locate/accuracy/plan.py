@@ -66,7 +66,7 @@ def _mics(mic_positions_m, dims):
         raise OptionError(f"mic positions must have shape (N, 3), got {pos.shape!r}",
                           field="mics")
     if dims not in (2, 3):
-        raise OptionError(f"dims must be 2 or 3, got {dims!r}", field="--dims")
+        raise OptionError(f"dims must be 2 or 3, got {dims!r}", field="dims")
     need = dims + 1
     if len(pos) < need:
         raise OptionError(f"a {dims}-D fix needs at least {need} mics, the layout has "
@@ -195,7 +195,7 @@ def expected_ellipse_grid(mic_positions_m, xs_m, ys_m, *, sound_speed_mps, sourc
         raise OptionError("the grid needs at least 2 lines in x and in y", field="grid")
     if xs.size * ys.size > MAX_GRID_POINTS:
         raise OptionError(f"grid of {xs.size} x {ys.size} points is too large (limit "
-                          f"{MAX_GRID_POINTS}): use a coarser grid step", field="--grid-step")
+                          f"{MAX_GRID_POINTS}): use a coarser grid step", field="grid_step_m")
     pos = _mics(mic_positions_m, dims)
     tm = _resolve_timing(len(pos), timing, timing_sd_s, band_hz, snr_db, duration_s)
     if max_semi_major_m is None:
@@ -266,7 +266,7 @@ def candidate_grid(extent_m, *, step_m=None, n_side=25, z_m=1.5, avoid_m=None, m
     x0, x1, y0, y1 = (float(e) for e in extent_m)
     if not (x1 > x0 and y1 > y0):
         raise OptionError(f"extent must be (x0, x1, y0, y1) with x1 > x0 and y1 > y0, got "
-                          f"{tuple(extent_m)!r}", field="--extent")
+                          f"{tuple(extent_m)!r}", field="extent_m")
     step = float(step_m) if step_m else max(x1 - x0, y1 - y0) / (n_side - 1)
     xx, yy = np.meshgrid(np.arange(x0, x1 + 1e-9 * step, step),
                          np.arange(y0, y1 + 1e-9 * step, step))
@@ -342,7 +342,7 @@ def region_metric(mic_positions_m, region_points_m, *, objective="worst", **kw):
 def _check_objective(objective):
     if objective not in ("worst", "mean"):
         raise OptionError(f'objective must be "worst" or "mean", got {objective!r}',
-                          field="--objective")
+                          field="objective")
 
 
 def _region(region_points_m):
@@ -449,7 +449,7 @@ def propose_mics(mic_positions_m, candidates_m, region_points_m, *, k=1, sound_s
     cand, names = _candidates(candidates_m, candidate_names)
     if not 1 <= int(k) <= len(cand):
         raise OptionError(f"can propose 1 to {len(cand)} mics from {len(cand)} candidates, "
-                          f"asked for {k!r}", field="--propose")
+                          f"asked for {k!r}", field="n_propose")
     picks = []
     for _ in range(int(k)):
         best = propose_next_mic(pos, cand, region_points_m, sound_speed_mps=sound_speed_mps,

@@ -203,7 +203,7 @@ def _extent(pos, extras, extent_m, *, pad_frac=0.6, pad_min_m=10.0):
         x0, x1, y0, y1 = (float(v) for v in extent_m)
         if not (x1 > x0 and y1 > y0):
             raise OptionError(f"extent must be x0, x1, y0, y1 with x1 > x0 and y1 > y0, got "
-                              f"{tuple(extent_m)!r}", field="--extent")
+                              f"{tuple(extent_m)!r}", field="extent_m")
         return x0, x1, y0, y1
     xy = np.vstack([pos[:, :2]] + [e[:, :2] for e in extras if e is not None and len(e)])
     lo, hi = xy.min(axis=0), xy.max(axis=0)
@@ -297,7 +297,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
     if isinstance(candidates, str):
         if candidates not in ("site", "grid", "auto"):
             raise OptionError(f'candidates must be "site", "grid" or "auto", got {candidates!r}',
-                              field="--candidates")
+                              field="candidates")
         if candidates == "site" and file_cands is None:
             raise _err(site, "candidates", "no [[candidates]] in the site file: add some, or "
                        "use --candidates grid")
@@ -316,7 +316,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
     step = float(grid_step_m) if grid_step_m else max(x1 - x0, y1 - y0) / _GRID_CELLS
     if not step > 0:
         raise OptionError(f"grid step must be positive metres, got {grid_step_m!r}",
-                          field="--grid-step")
+                          field="grid_step_m")
     xs = np.arange(x0, x1 + 0.5 * step, step)
     ys = np.arange(y0, y1 + 0.5 * step, step)
     kw = dict(sound_speed_mps=c, timing=tm, dims=dims, wind_mps=wind, probability=probability)
@@ -350,7 +350,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
         kind, pts = "given", reg_arr
     elif region not in ("auto", "polygon", "receivers", "extent"):
         raise OptionError(f'region must be "auto", "polygon", "receivers" or "extent", got '
-                          f"{region!r}", field="--region")
+                          f"{region!r}", field="region")
     elif region == "polygon" or (region == "auto" and outline is not None):
         if outline is None:
             raise _err(site, "region", "no [region] outline in the site file: add one, or use "

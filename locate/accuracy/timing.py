@@ -258,31 +258,31 @@ def timing_model(n_mics, *, timing_sd_s=None, band_hz=None, snr_db=None, duratio
     carter = [band_hz, snr_db, duration_s]
     if timing_sd_s is not None:
         if any(v is not None for v in carter):
-            raise OptionError("give either a timing accuracy (--timing-sd) or the sound's band, "
-                              "SNR and duration (--band, --snr, --duration), not both",
-                              field="--timing-sd")
+            raise OptionError("give either a timing accuracy (timing_sd_s) or the sound's band, "
+                              "SNR and duration (band_hz, snr_db, duration_s), not both",
+                              field="timing_sd_s")
         sd = _per_mic(timing_sd_s, n, "timing_sd_s", "--timing-sd")
         if np.any(sd <= 0):
             raise OptionError(f"timing sd must be positive seconds, got {timing_sd_s!r}",
-                              field="--timing-sd")
+                              field="timing_sd_s")
         return TimingModel("arrival_sd", arrival_sd_s=sd)
     if any(v is None for v in carter):
-        missing = [k for k, v in zip(("--band", "--snr", "--duration"), carter, strict=True)
+        missing = [k for k, v in zip(("band_hz", "snr_db", "duration_s"), carter, strict=True)
                    if v is None]
-        raise OptionError("the timing model needs a timing accuracy (--timing-sd), or the "
+        raise OptionError("the timing model needs a timing accuracy (timing_sd_s), or the "
                           f"sound's band, SNR and duration (missing {', '.join(missing)})",
                           field=missing[0])
     try:
         lo, hi = (float(b) for b in band_hz)
     except (TypeError, ValueError):
         raise OptionError(f"band must be two frequencies (lo, hi) in Hz, got {band_hz!r}",
-                          field="--band") from None
+                          field="band_hz") from None
     if not (np.isfinite(lo) and np.isfinite(hi) and 0 <= lo < hi):
         raise OptionError(f"band must satisfy 0 <= lo < hi (Hz), got {band_hz!r}",
-                          field="--band")
+                          field="band_hz")
     if not (np.isfinite(duration_s) and duration_s > 0):
         raise OptionError(f"duration must be positive seconds, got {duration_s!r}",
-                          field="--duration")
+                          field="duration_s")
     snr = _per_mic(snr_db, n, "snr_db", "--snr")
     edges = np.linspace(lo, hi, int(n_freq) + 1)
     f = 0.5 * (edges[:-1] + edges[1:])

@@ -21,6 +21,7 @@ import click
 from locate import __version__
 from locate.cli.batch import batch
 from locate.cli.check import check
+from locate.cli.common import as_options
 from locate.cli.demo import demo
 from locate.cli.events import events
 from locate.cli.fix import fix
@@ -32,6 +33,7 @@ from locate.cli.sync import sync
 from locate.errors import TdoaError
 
 __all__ = ["cli", "main"]
+
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -64,6 +66,7 @@ def main(argv=None):
         exc.show()
         sys.exit(exc.exit_code)
     except TdoaError as exc:
+        as_options(exc)
         if debug:
             traceback.print_exc()
         click.echo(f"tdoa: error: {exc}", err=True)

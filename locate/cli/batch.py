@@ -6,8 +6,8 @@ from pathlib import Path
 
 import click
 
-from locate.cli.common import echo, warn
-from locate.errors import NothingFoundError, OptionError
+from locate.cli.common import as_options, echo, warn
+from locate.errors import NothingFoundError, OptionError, TdoaError
 
 __all__ = ["batch", "run_argv"]
 
@@ -19,6 +19,8 @@ def run_argv(argv):
 
     try:
         cli.main(args=list(argv), prog_name="tdoa", standalone_mode=False)
+    except TdoaError as exc:
+        raise as_options(exc) from None
     except click.ClickException as exc:
         raise OptionError(exc.format_message(), field="option") from None
 

@@ -12,7 +12,7 @@ import click
 import numpy as np
 
 from locate.common import format_length
-from locate.errors import OptionError
+from locate.errors import OptionError, TdoaError
 
 
 def parse_band(value):
@@ -194,3 +194,27 @@ def check_same_site(site, result, result_path):
                               "file?", file=result_path, field="mics")
     from locate.results.documents import check_mic_positions
     check_mic_positions(site, result, result_path)
+
+
+OPTION_OF = {
+    "fix_index": "--fix", "events": "--events", "at": "--at", "start2_s": "--from2",
+    "sound_speed_mps": "--sound-speed", "stop_s": "--to", "scheduler": "--scheduler",
+    "extent_m": "--extent", "candidates": "--candidates", "grid_step_m": "--grid-step",
+    "region": "--region", "dims": "--dims", "objective": "--objective", "n_propose": "--propose",
+    "timing_sd_s": "--timing-sd", "band_hz": "--band", "duration_s": "--duration",
+    "start_s": "--from", "window_s": "--window", "hop_s": "--hop", "solve_wind": "--solve-wind",
+    "model": "--model", "source_z_m": "--source-z", "speed_guess_mps": "--speed-guess",
+    "threshold_db": "--threshold", "segment_s": "--segment", "snr_db": "--snr",
+}
+"""The library names its parameters in errors (``window_s``); the command line says the option
+the user typed (``--window``)."""
+
+_PARAMETER = re.compile(r"\b(" + "|".join(sorted((k for k in OPTION_OF if "_" in k), key=len,
+                                                   reverse=True)) + r")\b")
+
+
+def as_options(exc: TdoaError) -> TdoaError:
+    """Say the command-line option where the library named its parameter (field and text)."""
+    exc.field = OPTION_OF.get(exc.field, exc.field)
+    exc.message = _PARAMETER.sub(lambda m: OPTION_OF[m.group(1)], exc.message)
+    return exc

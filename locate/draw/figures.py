@@ -165,7 +165,7 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
                               field="fixes" if result["kind"] == "fix" else "track.points")
     if fix_index is not None and not 0 <= fix_index < len(entries):
         raise OptionError(f"fix {fix_index + 1} does not exist: the result has "
-                          f"{len(entries)}", field="--fix")
+                          f"{len(entries)}", field="fix_index")
     with rc_context(mk.STYLE):
         return _compose(names, mics, result, entries, sketch, receivers, barriers, air,
                         wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file)

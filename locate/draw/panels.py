@@ -82,7 +82,7 @@ def panels_figure(result, *, fix_index=0, correlations=None, file=None):
     entries = check_result(result, file=file)
     if not 0 <= fix_index < len(entries):
         raise OptionError(f"fix {fix_index + 1} does not exist: the result has {len(entries)}",
-                          field="--fix")
+                          field="fix_index")
     e = entries[fix_index]
     delays = [d for d in e["delays"] if isinstance(d, dict) and "mics" in d]
     if not delays:

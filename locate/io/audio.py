@@ -188,18 +188,18 @@ class Recordings:
         start_s, stop_s = float(start_s), float(stop_s)
         if not (np.isfinite(start_s) and np.isfinite(stop_s)) or start_s >= stop_s:
             raise RecordingError(f"the span {start_s:g}..{stop_s:g} s is empty: --from must be "
-                                 "before --to", file=self._sources[0].path, field="--from")
+                                 "before --to", file=self._sources[0].path, field="start_s")
         tol = 0.5 / self.sample_rate_hz
         end_all, begin_all = float(np.max(self._cover[:, 1])), float(np.min(self._cover[:, 0]))
         if stop_s > end_all + tol:
             raise RecordingError(f"--to {stop_s:.3f} s is past the end of the recordings: they "
                                  f"last {end_all:.3f} s (all mics cover {self.start_s:.3f}.."
                                  f"{self.stop_s:.3f} s)", file=self._sources[0].path,
-                                 field="--to")
+                                 field="stop_s")
         if start_s < begin_all - tol:
             raise RecordingError(f"--from {start_s:.3f} s is before the recordings begin "
                                  f"({begin_all:.3f} s)", file=self._sources[0].path,
-                                 field="--from")
+                                 field="start_s")
         return start_s, stop_s
 
     def read(self, start_s, stop_s, *, out=None, scratch=None):
@@ -280,10 +280,10 @@ class Recordings:
         hop_n = block_n - int(round(float(overlap_s) * fs))
         if block_n < 1:
             raise OptionError(f"block length {block_s!r} s is shorter than one sample",
-                              field="--window")
+                              field="window_s")
         if hop_n < 1 or overlap_s < 0:
             raise OptionError(f"overlap {overlap_s!r} s must be >= 0 and shorter than the block"
-                              f" ({block_s!r} s)", field="--hop")
+                              f" ({block_s!r} s)", field="hop_s")
         start = self.start_s if start_s is None else float(start_s)
         stop = self.stop_s if stop_s is None else float(stop_s)
         self._check_span(start, stop)

@@ -216,7 +216,7 @@ def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
         Any problem; the message names the file and field.
     """
     if dims not in (2, 3):
-        raise OptionError(f"dims must be 2 or 3, got {dims!r}", field="--dims")
+        raise OptionError(f"dims must be 2 or 3, got {dims!r}", field="dims")
     raw = read_toml(path)
     ctx = sf.Context(path)
     warnings: list[str] = []

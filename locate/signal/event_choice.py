@@ -32,7 +32,7 @@ class EventChoice:
         return f"EventChoice({self.kind!r}, {self.values!r})"
 
 
-def parse_event_choice(text, *, option="--events") -> EventChoice | None:
+def parse_event_choice(text, *, option="events") -> EventChoice | None:
     """Parse an ``--events`` value (None stays None).
 
     Raises
@@ -67,7 +67,7 @@ def event_time_s(event) -> float:
     return float(np.nanmin(onset)) if np.any(np.isfinite(onset)) else float(event.t_start_s)
 
 
-def choose_events(events, choice: EventChoice | None, *, option="--events"):
+def choose_events(events, choice: EventChoice | None, *, option="events"):
     """The events that ``choice`` selects, in time order, and notes for the user.
 
     Parameters

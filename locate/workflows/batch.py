@@ -304,12 +304,12 @@ def _run_dask(address, tasks, index, done, runner):
         from distributed import Client, as_completed
     except ImportError:
         raise OptionError("needs Dask distributed: pip install 'tdoa-locate[cluster]'",
-                          field="--scheduler") from None
+                          field="scheduler") from None
     try:
         client = Client(address, timeout=30)
     except OSError as exc:
         raise OptionError(f"cannot reach the scheduler at {address!r} ({exc})",
-                          field="--scheduler") from None
+                          field="scheduler") from None
     with client:
         futures = client.map(run_task, tasks, runner=runner, pure=False)
         where = {f.key: k for f, k in zip(futures, index)}

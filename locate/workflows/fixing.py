@@ -54,7 +54,7 @@ def conditions_for(site, sound_speed_mps=None) -> Conditions:
     c = float(sound_speed_mps) if sound_speed_mps is not None else air.sound_speed_mps()
     if not 250.0 <= c <= 400.0:
         raise OptionError(f"sound speed {c:g} m/s is not plausible for air (250-400 m/s)",
-                          field="--sound-speed")
+                          field="sound_speed_mps")
     return Conditions(c, air.wind_mps(), air.temperature_c, air.relative_humidity,
                       air.wind_speed_mps, air.wind_from_deg)
 
@@ -132,7 +132,7 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         raise OptionError(f"the span {start_s:.4f}..{stop_s:.4f} s holds only "
                           f"{signals.shape[1]} samples: give a span (--from/--to or --window) "
                           f"of at least {MIN_SPAN_SAMPLES} samples that holds the whole sound "
-                          "at every mic", field="--to")
+                          "at every mic", field="stop_s")
     warnings = check_signals(signals, names)
     pairs = all_pairs(len(names))
     max_lag = search_lags_s(site, cond, pairs)

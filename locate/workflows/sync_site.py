@@ -177,7 +177,7 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
         elif r != ref:
             raise OptionError(f'mic "{names[ref]}" did not hear the reference sound in '
                               f"{a:g}..{b:g} s: the reference mic must hear both",
-                              field="--from2")
+                              field="start2_s")
         warnings = list(ev.warnings)
         if dropped:
             warnings.append("pair delays that do not agree with the others were dropped: "

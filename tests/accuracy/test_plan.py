@@ -347,9 +347,9 @@ def test_too_few_mics_is_a_clear_error():
 
 
 def test_timing_model_needs_exactly_one_way_and_sane_values():
-    with pytest.raises(OptionError, match="--timing-sd"):
+    with pytest.raises(OptionError, match="timing_sd_s"):
         timing_model(4)
-    with pytest.raises(OptionError, match="missing --duration"):
+    with pytest.raises(OptionError, match="missing duration_s"):
         timing_model(4, band_hz=(100, 1000), snr_db=10)
     with pytest.raises(OptionError, match="not both"):
         timing_model(4, timing_sd_s=1e-4, band_hz=(100, 1000))
