@@ -21,7 +21,7 @@ import click
 from locate import __version__
 from locate.cli.batch import batch
 from locate.cli.check import check
-from locate.cli.common import as_options
+from locate.cli.common import as_options, os_error_line
 from locate.cli.demo import demo
 from locate.cli.events import events
 from locate.cli.fix import fix
@@ -54,26 +54,65 @@ for _command in (check, fix, events, level, plan, demo, sync, report, track, map
 
 
 def main(argv=None):
-    """Console entry point: turns user-facing errors into one line and an exit code."""
+    """Console entry point: the one boundary between the program and the user's terminal.
+
+    A problem with the input is one line naming the file and the field, exit code 2 (1 when
+    the input is valid but nothing usable was found); the operating system's refusals (read-only
+    folder, full disk, a name too long, a folder where a file should be, a symlink loop), a
+    recording libsndfile cannot decode, too little memory or too deep nesting are one line
+    naming the file and what to do; anything else is "internal error", exit code 1.  Never a
+    traceback, unless ``--debug`` is given.
+    """
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
+
+    def fail(line, code):
+        if debug:
+            traceback.print_exc()
+        click.echo(f"tdoa: error: {line}", err=True)
+        sys.exit(code)
+
     try:
         cli.main(args=args, prog_name="tdoa", standalone_mode=False)
     except click.exceptions.Abort:
         click.echo("tdoa: interrupted; no partial result was written", err=True)
         sys.exit(130)
+    except click.exceptions.UsageError as exc:
+        hint = f" (see tdoa {exc.ctx.info_name} --help)" if exc.ctx and exc.ctx.parent else ""
+        fail(" ".join(exc.format_message().split()) + hint, exc.exit_code)
     except click.exceptions.ClickException as exc:
         exc.show()
         sys.exit(exc.exit_code)
     except TdoaError as exc:
         as_options(exc)
-        if debug:
-            traceback.print_exc()
-        click.echo(f"tdoa: error: {exc}", err=True)
-        sys.exit(exc.exit_code)
+        fail(str(exc), exc.exit_code)
     except KeyboardInterrupt:
         click.echo("tdoa: interrupted; no partial result was written", err=True)
         sys.exit(130)
     except click.exceptions.Exit as exc:
         sys.exit(exc.exit_code)
+    except OSError as exc:
+        line, code = os_error_line(exc)
+        fail(line, code)
+    except MemoryError:
+        fail("not enough memory for this run: analyse a shorter span (--from/--to), fewer "
+             "windows or fewer jobs", 2)
+    except RecursionError:
+        fail("the input is nested too deeply to read (a damaged or hostile file?)", 2)
+    except Exception as exc:  # the last line of defence: one line, never a traceback
+        if _is_libsndfile(exc):
+            fail(f"a recording could not be decoded ({_first_line(exc)}): the file is damaged "
+                 "or not audio; export it again from the recorder", 2)
+        fail(f"internal error: {type(exc).__name__}: {_first_line(exc)} (run with --debug "
+             "for the traceback and report it)", 1)
     sys.exit(0)
+
+
+def _first_line(exc) -> str:
+    lines = str(exc).strip().splitlines()
+    return " ".join(lines[0].split()) if lines else type(exc).__name__
+
+
+def _is_libsndfile(exc) -> bool:
+    module = type(exc).__module__ or ""
+    return module.startswith("soundfile") or type(exc).__name__ == "LibsndfileError"

@@ -11,16 +11,39 @@ from locate.cli.common import (
     echo,
     load,
     progress_bar,
+    transactional,
     warn,
 )
 
 CHECK_SCAN_S = 300.0  # tdoa check reads this much of the recordings for channel problems
+MIN_DURATION_S = 0.1  # shorter than this holds no analysable sound (delays of a 100 m array
+# are up to 0.3 s; a GCC window needs several periods of the lowest band: common practice)
+MIN_RATE_HZ = 8000.0  # below this the band above ~4 kHz is lost and timing is coarse
+# (one sample = 125 us = 4 cm of sound path at 8 kHz; common practice for TDOA recorders)
+
+
+def usability_notes(rec, span_m, sound_speed_mps):
+    """Warnings for recordings that cannot locate anything: too short, sample rate too low."""
+    notes = []
+    longest_delay_s = span_m / sound_speed_mps
+    need_s = max(MIN_DURATION_S, 2.0 * longest_delay_s)
+    if rec.duration_s < need_s:
+        notes.append(f"the recordings share only {rec.duration_s:.4g} s: too short to locate "
+                     f"anything (need at least {need_s:.2g} s: a sound plus the largest delay "
+                     f"of this array, {longest_delay_s * 1e3:.0f} ms, on both sides)")
+    if rec.sample_rate_hz < MIN_RATE_HZ:
+        notes.append(f"sample rate {rec.sample_rate_hz:g} Hz is too low to time sounds (one "
+                     f"sample = {1e3 / rec.sample_rate_hz:.3g} ms = "
+                     f"{sound_speed_mps / rec.sample_rate_hz:.3g} m of sound path; record at "
+                     f"{MIN_RATE_HZ / 1e3:g} kHz or more, 48 kHz is usual)")
+    return notes
 
 
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
 @click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
 @click.pass_context
+@transactional
 def check(ctx, site_path, dims):
     """Validate the site file and recordings; print geometry and warnings."""
     from locate.io.audio import open_recordings
@@ -48,12 +71,21 @@ def check(ctx, site_path, dims):
         for _t0, signals, _ in rec.blocks(60.0, 0.0, rec.start_s, stop_s, reuse=True):
             bar.update(signals.shape[1] / rec.sample_rate_hz)
     found = [w for w in rec.warnings if w not in opened]
+    unusable = usability_notes(rec, float(span), cond.sound_speed_mps)
     scanned = (f"the first {stop_s - rec.start_s:.0f} s" if stop_s < rec.stop_s
                else "all of it")
     echo(ctx, f"Signals   read {scanned}: "
               + (f"{len(found)} channel problem(s), see the warnings" if found else
                  "no dead, silent or clipped channel"))
-    for w in list(site.warnings) + list(rec.warnings):
+    for w in list(site.warnings) + list(rec.warnings) + unusable:
         warn(w)
-    echo(ctx, "Site file and recordings look usable." if not found else
-         "Site file and recordings are readable; mind the channel warnings before a fix.")
+    if unusable:
+        echo(ctx, "Site file and recordings are readable, but these recordings cannot locate "
+                  "a sound (see the warnings).")
+    elif found:
+        echo(ctx, "Site file and recordings are readable; mind the channel warnings before a "
+                  "fix.")
+    elif opened:
+        echo(ctx, "Site file and recordings are readable; mind the warnings before a fix.")
+    else:
+        echo(ctx, "Site file and recordings look usable.")

@@ -5,14 +5,58 @@ Nothing here computes: the commands call :mod:`locate.workflows` and the core.
 
 from __future__ import annotations
 
+import functools
+import math
 import re
 import sys
 
 import click
 import numpy as np
 
-from locate.common import format_length
+from locate.common import OutputSet, format_length
 from locate.errors import OptionError, TdoaError
+
+
+class FiniteFloat(click.types.FloatParamType):
+    """A float option that must be finite: ``nan``, ``inf`` and ``-inf`` are refused."""
+
+    name = "number"
+
+    def convert(self, value, param, ctx):
+        v = super().convert(value, param, ctx)
+        if not math.isfinite(v):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
+        return v
+
+
+FINITE = FiniteFloat()
+"""click type of every float option of the command line."""
+
+
+def transactional(f):
+    """Run a command inside one :class:`locate.common.OutputSet`: every file it writes is
+    renamed into place together when it returns, none when it fails or is interrupted."""
+    @functools.wraps(f)
+    def run(*args, **kwargs):
+        with OutputSet():
+            return f(*args, **kwargs)
+    return run
+
+
+def announce(ctx, text):
+    """Say ``text`` ("written to ...") once the command's outputs are in place."""
+    outputs = OutputSet.current()
+    if outputs is None:
+        echo(ctx, text)
+    else:
+        outputs.after_commit(lambda: echo(ctx, text))
+
+
+def check_outputs(outputs, inputs):
+    """Before any work: each output's folder exists, no output is an input (after symlinks,
+    ``..`` and hard links) and no two outputs are the same file.  ``outputs``: option->path."""
+    from locate.results.documents import check_output_paths
+    return check_output_paths(outputs, inputs)
 
 
 def parse_band(value):
@@ -71,9 +115,9 @@ def load(site_path, dims=2, require_audio=True):
 
 
 def span_options(f):
-    f = click.option("--from", "start_s", type=float, default=None,
+    f = click.option("--from", "start_s", type=FINITE, default=None,
                      help="Start of the span, seconds into the recording.")(f)
-    f = click.option("--to", "stop_s", type=float, default=None,
+    f = click.option("--to", "stop_s", type=FINITE, default=None,
                      help="End of the span, seconds into the recording.")(f)
     f = click.option("--band", default=None, metavar="LO:HI",
                      help="Analysis band in Hz (default: where the signal stands above the "
@@ -84,9 +128,9 @@ def span_options(f):
 def geometry_options(f):
     f = click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True,
                      help="2: horizontal fix at a given source height; 3: full 3-D fix.")(f)
-    f = click.option("--source-z", "source_z_m", type=float, default=0.0, show_default=True,
+    f = click.option("--source-z", "source_z_m", type=FINITE, default=0.0, show_default=True,
                      help="Source height for 2-D fixes, metres (same datum as the mics).")(f)
-    f = click.option("--sound-speed", "sound_speed_mps", type=float, default=None,
+    f = click.option("--sound-speed", "sound_speed_mps", type=FINITE, default=None,
                      help="Override the sound speed from the site's air, m/s.")(f)
     return f
 
@@ -113,7 +157,11 @@ def check_span_args(start_s, stop_s, window_s=None):
 
 
 def site_inputs(site):
+    """Every file a site brings to a run: the site file, recordings, sketch image, GeoJSON."""
     files = [site.path, site.recording_file] + [m.file for m in site.mics]
+    sketch = getattr(site, "sketch", None)
+    if sketch is not None:
+        files += [getattr(sketch, "image", None), getattr(sketch, "geojson", None)]
     return [f for f in files if f is not None]
 
 
@@ -125,15 +173,15 @@ def write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_
 
     if json_path:
         write_json(json_path, result, indent=None if compact else 1)
-        echo(ctx, f"Result written to {json_path}")
+        announce(ctx, f"Result written to {json_path}")
     if csv_path:
         write_atomic(csv_path, fixes_csv(result))
     if geojson_path:
         write_geojson(geojson_path, result, site.origin_wgs84)
-        echo(ctx, f"GeoJSON written to {geojson_path}")
+        announce(ctx, f"GeoJSON written to {geojson_path}")
     if map_path:
         draw_map(site, result, map_path)
-        echo(ctx, f"Map written to {map_path}")
+        announce(ctx, f"Map written to {map_path}")
 
 
 def print_fixes(ctx, site, cond, result):
@@ -211,6 +259,46 @@ the user typed (``--window``)."""
 
 _PARAMETER = re.compile(r"\b(" + "|".join(sorted((k for k in OPTION_OF if "_" in k), key=len,
                                                    reverse=True)) + r")\b")
+
+
+_OS_ADVICE = {
+    "EROFS": "the folder is read-only: write the outputs to another folder",
+    "EACCES": "permission denied: write to a folder you may write to, or fix its permissions",
+    "EPERM": "not permitted: write to a folder you may write to, or fix its permissions",
+    "ENOSPC": "the disk is full: free some space or write the outputs to another disk",
+    "EDQUOT": "your disk quota is used up: free some space or write elsewhere",
+    "EFBIG": "the file would be larger than allowed here (disk full, file size limit): free "
+             "space, raise the limit or write elsewhere",
+    "ENAMETOOLONG": "the file name is too long: choose a shorter name",
+    "EISDIR": "is a folder, not a file: give a file name",
+    "ENOTDIR": "a part of the path is a file, not a folder: check the path",
+    "ENOENT": "no such file or folder: check the path",
+    "ELOOP": "the symbolic links loop (a link points to itself): fix the link",
+    "EEXIST": "already exists",
+    "EMFILE": "too many open files: raise the limit (ulimit -n) or run fewer jobs",
+    "ENFILE": "too many open files on this system: close some programs and run again",
+    "EIO": "input/output error on the disk: copy the files to a healthy disk",
+    "EBUSY": "the file is busy: close the program using it",
+    "ETXTBSY": "the file is busy: close the program using it",
+    "EXDEV": "cannot move a file across disks",
+}
+"""What to do about an operating-system error, by errno name."""
+
+INTERNAL_ERRNO = {"EMFILE", "ENFILE"}  # the machine, not the input: exit code 1
+
+
+def os_error_line(exc: OSError) -> tuple[str, int]:
+    """One line (``FILE: what happened: what to do``) and the exit code for an OS error."""
+    import errno as _errno
+    import os as _os
+    name = _errno.errorcode.get(exc.errno or 0, "")
+    what = exc.strerror or str(exc) or type(exc).__name__
+    advice = _OS_ADVICE.get(name)
+    files = [f for f in (exc.filename, getattr(exc, "filename2", None)) if f]
+    where = " -> ".join(_os.fsdecode(f) for f in files)
+    text = f"{what} ({advice})" if advice and advice != what else what
+    line = f"{where}: {text}" if where else text
+    return " ".join(line.split()), (1 if name in INTERNAL_ERRNO or not advice else 2)
 
 
 def as_options(exc: TdoaError) -> TdoaError:

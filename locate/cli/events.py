@@ -5,7 +5,9 @@ from __future__ import annotations
 import click
 
 from locate.cli.common import (
+    FINITE,
     check_band,
+    check_outputs,
     check_span_args,
     echo,
     load,
@@ -13,6 +15,7 @@ from locate.cli.common import (
     progress_bar,
     site_inputs,
     span_options,
+    transactional,
     warn,
 )
 
@@ -20,21 +23,22 @@ from locate.cli.common import (
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
 @span_options
-@click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
+@click.option("--threshold", "threshold_db", type=FINITE, default=10.0, show_default=True,
               help="dB above the background for a frame to count as active.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
 @click.pass_context
+@transactional
 def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
     """List detected events with time, duration, level and how many mics heard them."""
     from locate.io.audio import open_recordings
-    from locate.results.documents import check_output_path, write_json
+    from locate.results.documents import write_json
     from locate.workflows.fixing import conditions_for, fix_result, require_events, scan_events
 
     band_hz = parse_band(band)
     if start_s is not None or stop_s is not None:
         check_span_args(start_s, stop_s)
     site = load(site_path)
-    check_output_path(json_path, site_inputs(site))
+    check_outputs({"--json": json_path}, site_inputs(site))
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site)

@@ -6,7 +6,10 @@ import click
 import numpy as np
 
 from locate.cli.common import (
+    FINITE,
+    announce,
     check_band,
+    check_outputs,
     check_span_args,
     draw_panels,
     echo,
@@ -19,6 +22,7 @@ from locate.cli.common import (
     same_shape,
     site_inputs,
     span_options,
+    transactional,
     warn,
     write_fix_outputs,
 )
@@ -31,21 +35,22 @@ from locate.errors import NothingFoundError, OptionError
 @span_options
 @geometry_options
 @output_options
-@click.option("--window", "window_s", type=float, default=None,
+@click.option("--window", "window_s", type=FINITE, default=None,
               help="Fix every window of this length (s) across --from/--to (steady source).")
-@click.option("--hop", "hop_s", type=float, default=None,
+@click.option("--hop", "hop_s", type=FINITE, default=None,
               help="With --window --sweep: step between windows (s; default: the window).")
 @click.option("--sweep", is_flag=True,
               help="With --window: the fast path for one steady source over a long span "
                    "(windowed delays, batched locator; no per-window echo check or budget) "
                    "and a summary on screen.")
-@click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
+@click.option("--threshold", "threshold_db", type=FINITE, default=10.0, show_default=True,
               help="Event detection: dB above the background.")
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
               help="Also draw each pair's correlation and residual (diagnostics figure).")
 @click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
 @field_options
 @click.pass_context
+@transactional
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
         geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
@@ -54,7 +59,6 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     from locate.fix.air_solve import fit_entry
     from locate.fix.air_solve import summary_lines as air_summary
     from locate.io.audio import open_recordings
-    from locate.results.documents import check_output_path
     from locate.signal.event_choice import choose_events
     from locate.workflows.fixing import (
         conditions_for,
@@ -71,9 +75,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path)
     site = load(site_path, dims)
     inputs = site_inputs(site)
-    for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
-                   (panels_path, "--panels")):
-        check_output_path(p, inputs, option=opt)
+    check_outputs({"--json": json_path, "--csv": csv_path, "--map": map_path,
+                   "--panels": panels_path, "--geojson": geojson_path}, inputs)
     choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
                                      solve_wind=solve_wind, events_choice=events_choice,
                                      start_s=start_s, dims=dims)
@@ -138,4 +141,5 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path)
     if panels_path:
         draw_panels(result, panels_path)
+        announce(ctx, f"Diagnostics written to {panels_path}")
     return result

@@ -5,11 +5,13 @@ from __future__ import annotations
 import click
 
 from locate.cli.common import (
+    check_outputs,
     check_same_site,
     echo,
     fmt_db,
     load,
     site_inputs,
+    transactional,
     warn,
 )
 from locate.errors import OptionError
@@ -24,15 +26,16 @@ from locate.errors import OptionError
               help="Source on hard ground radiating into a half space (8 dB, not 11 dB).")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
 @click.pass_context
+@transactional
 def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
     """Source sound power per octave band, and the level at the site's named receivers."""
     from locate.io.audio import open_recordings
-    from locate.results.documents import check_output_path, read_result, write_json
+    from locate.results.documents import read_result, write_json
     from locate.workflows.fixing import conditions_for, fix_result
     from locate.workflows.level import level_for_fix
 
     site = load(site_path)
-    check_output_path(json_path, site_inputs(site) + [result_path])
+    check_outputs({"--json": json_path}, site_inputs(site) + [result_path])
     result = read_result(result_path, kinds=("fix",))
     check_same_site(site, result, result_path)
     fixes = result.get("fixes", [])

@@ -6,7 +6,10 @@ import click
 import numpy as np
 
 from locate.cli.common import (
+    FINITE,
+    announce,
     check_band,
+    check_outputs,
     check_span_args,
     draw_map,
     echo,
@@ -15,6 +18,7 @@ from locate.cli.common import (
     parse_band,
     progress_bar,
     site_inputs,
+    transactional,
     warn,
 )
 from locate.errors import OptionError
@@ -24,30 +28,31 @@ __all__ = ["track", "map_command"]
 
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
-@click.option("--from", "start_s", type=float, required=True,
+@click.option("--from", "start_s", type=FINITE, required=True,
               help="Start of the pass, seconds into the recording.")
-@click.option("--to", "stop_s", type=float, required=True, help="End of the pass, seconds.")
-@click.option("--window", "window_s", type=float, default=None,
+@click.option("--to", "stop_s", type=FINITE, required=True, help="End of the pass, seconds.")
+@click.option("--window", "window_s", type=FINITE, default=None,
               help="Analysis window, s (default: from the array size and --speed-guess).")
-@click.option("--hop", "hop_s", type=float, default=None, help="Window hop, s.")
+@click.option("--hop", "hop_s", type=FINITE, default=None, help="Window hop, s.")
 @click.option("--band", default=None, metavar="LO:HI", help="Analysis band, Hz.")
 @geometry_options
 @click.option("--model", type=click.Choice(["straight", "segments"]), default="straight",
               show_default=True, help="Constant velocity, or piecewise straight segments.")
-@click.option("--segment", "segment_s", type=float, default=None,
+@click.option("--segment", "segment_s", type=FINITE, default=None,
               help="Segment length for --model segments, s.")
-@click.option("--speed-guess", "speed_guess_mps", type=float, default=20.0, show_default=True,
+@click.option("--speed-guess", "speed_guess_mps", type=FINITE, default=20.0, show_default=True,
               help="Rough speed, m/s; sets the default window.")
 @click.option("--tone", "tone", default=None, metavar="HZ|auto",
               help="Track this tone (or the strongest, 'auto') for a Doppler speed check.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
 @click.option("--map", "map_path", type=click.Path(dir_okay=False), default=None)
 @click.pass_context
+@transactional
 def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
           sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
     """Reconstruct a moving source's track (emission-time positions, heading, speed)."""
     from locate.io.audio import open_recordings
-    from locate.results.documents import check_output_path, write_json
+    from locate.results.documents import write_json
     from locate.track.tracker import track_recording, track_to_dict
     from locate.workflows.fixing import conditions_for, fix_result
 
@@ -61,8 +66,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
         raise OptionError(f"hop {hop_s:g} s must be positive", field="--hop")
     tone_hz = None if tone is None else ("auto" if tone == "auto" else _float(tone, "--tone"))
     site = load(site_path, dims)
-    for p, opt in ((json_path, "--json"), (map_path, "--map")):
-        check_output_path(p, site_inputs(site), option=opt)
+    check_outputs({"--json": json_path, "--map": map_path}, site_inputs(site))
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
@@ -96,18 +100,21 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
         warn(w)
     if json_path:
         write_json(json_path, result)
-        echo(ctx, f"Result written to {json_path}")
+        announce(ctx, f"Result written to {json_path}")
     if map_path:
         draw_map(site, result, map_path)
-        echo(ctx, f"Map written to {map_path}")
+        announce(ctx, f"Map written to {map_path}")
     return result
 
 
 def _float(text, field):
     try:
-        return float(text)
+        value = float(text)
     except ValueError:
         raise OptionError(f"{text!r} is not a number", field=field) from None
+    if not np.isfinite(value):
+        raise OptionError(f"{text!r} is not a finite number", field=field)
+    return value
 
 
 def _print_track(ctx, site, cond, doc, bearing_from_name):
@@ -142,15 +149,16 @@ def _print_track(ctx, site, cond, doc, bearing_from_name):
               help="Also draw the correlation diagnostics of the fix (needs a result written "
                    "with fix --panels).")
 @click.pass_context
+@transactional
 def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
     """Draw a fix or track result over the site sketch."""
     from locate.cli.common import check_same_site
     from locate.draw import figures as plot
-    from locate.results.documents import check_output_path, read_result
+    from locate.results.documents import read_result
 
     site = load(site_path)
-    for p, opt in ((out_path, "--output"), (panels_path, "--panels")):
-        check_output_path(p, site_inputs(site) + [result_path], option=opt)
+    check_outputs({"--output": out_path, "--panels": panels_path},
+                  site_inputs(site) + [result_path])
     result = read_result(result_path, kinds=("fix", "track"))
     check_same_site(site, result, result_path)
     index = None
@@ -169,7 +177,7 @@ def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
     plot.save_figure(fig, out_path)
     for w in notes:
         warn(w)
-    echo(ctx, f"Map written to {out_path}")
+    announce(ctx, f"Map written to {out_path}")
     if panels_path:
         plot.save_figure(plot.panels_figure(result, fix_index=index or 0), panels_path)
-        echo(ctx, f"Diagnostics written to {panels_path}")
+        announce(ctx, f"Diagnostics written to {panels_path}")

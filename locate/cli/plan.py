@@ -5,11 +5,15 @@ from __future__ import annotations
 import click
 
 from locate.cli.common import (
+    FINITE,
+    announce,
+    check_outputs,
     echo,
     fmt_length,
     load,
     parse_band,
     site_inputs,
+    transactional,
 )
 from locate.errors import OptionError
 
@@ -19,14 +23,14 @@ from locate.errors import OptionError
 @click.option("-o", "--output", "out_path", type=click.Path(dir_okay=False), default=None,
               help="Planning map (PNG, SVG or PDF).")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
-@click.option("--timing-sd", "timing_sd_s", type=float, default=None,
+@click.option("--timing-sd", "timing_sd_s", type=FINITE, default=None,
               help="Expected arrival-time accuracy per mic, seconds (e.g. 2e-5).")
 @click.option("--band", default=None, metavar="LO:HI",
               help="Predict the timing from the source band (with --snr, --duration).")
-@click.option("--snr", "snr_db", type=float, default=None, help="In-band SNR, dB.")
-@click.option("--duration", "duration_s", type=float, default=None,
+@click.option("--snr", "snr_db", type=FINITE, default=None, help="In-band SNR, dB.")
+@click.option("--duration", "duration_s", type=FINITE, default=None,
               help="Length of the analysed sound, s.")
-@click.option("--grid-step", "grid_step_m", type=float, default=None)
+@click.option("--grid-step", "grid_step_m", type=FINITE, default=None)
 @click.option("--extent", default=None, metavar="X0:X1:Y0:Y1", help="Map area, metres.")
 @click.option("--candidates", default="auto", show_default=True,
               type=click.Choice(["auto", "site", "grid", "none"]),
@@ -38,18 +42,18 @@ from locate.errors import OptionError
               type=click.Choice(["worst", "mean"]))
 @click.option("--propose", "n_propose", type=click.IntRange(0, 10), default=1, show_default=True)
 @click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
-@click.option("--source-z", "source_z_m", type=float, default=0.0, show_default=True)
+@click.option("--source-z", "source_z_m", type=FINITE, default=0.0, show_default=True)
 @click.pass_context
+@transactional
 def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,
          grid_step_m, extent, candidates, region, objective, n_propose, dims, source_z_m):
     """Expected 95 % ellipse size over the site for the mic layout; best next mic(s)."""
     from locate.accuracy.plan_site import plan_site
-    from locate.results.documents import check_output_path, write_json
+    from locate.results.documents import write_json
 
     band_hz = parse_band(band)
     site = load(site_path, dims, require_audio=False)
-    for p, opt in ((out_path, "--output"), (json_path, "--json")):
-        check_output_path(p, site_inputs(site), option=opt)
+    check_outputs({"--output": out_path, "--json": json_path}, site_inputs(site))
     ext = None
     if extent is not None:
         try:
@@ -75,7 +79,7 @@ def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duratio
         from locate.draw import figures as plot
         from locate.draw.plan import plan_figure
         plot.save_figure(plan_figure(res, site), out_path)
-        echo(ctx, f"Planning map written to {out_path}")
+        announce(ctx, f"Planning map written to {out_path}")
     return doc
 
 

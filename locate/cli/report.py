@@ -5,7 +5,8 @@ from __future__ import annotations
 import click
 
 from locate.cli.common import (
-    echo,
+    announce,
+    transactional,
 )
 
 
@@ -17,11 +18,12 @@ from locate.cli.common import (
               help="report.html (one self-contained page) or report.pdf (needs Chromium).")
 @click.option("--title", default=None, help="Report title (default: the site's title).")
 @click.pass_context
+@transactional
 def report(ctx, site_path, result_paths, out_path, title):
     """A survey report for a client: set-up, maps, results, levels, methods and cautions,
     from the site file and its fix, track and level results."""
     from locate.report.build import make_report
 
     path = make_report(site_path, list(result_paths), out_path, title=title)
-    echo(ctx, f"Report written to {path}")
+    announce(ctx, f"Report written to {path}")
     return path

@@ -7,12 +7,16 @@ from pathlib import Path
 import click
 
 from locate.cli.common import (
+    FINITE,
+    announce,
     check_band,
+    check_outputs,
     check_span_args,
     echo,
     load,
     parse_band,
     site_inputs,
+    transactional,
     warn,
 )
 from locate.errors import OptionError
@@ -24,16 +28,16 @@ from locate.errors import OptionError
               help="Where the reference sound was made, in the site's frame: x,y[,z] in metres "
                    "for a local site, lat,lon[,alt] in degrees (alt: ellipsoidal height, m) for "
                    "a wgs84 site. The height defaults to the mean mic height.")
-@click.option("--from", "start_s", type=float, required=True,
+@click.option("--from", "start_s", type=FINITE, required=True,
               help="Start of a span holding the reference sound at every mic, seconds "
                    "(current clocks).")
-@click.option("--to", "stop_s", type=float, required=True, help="End of that span, seconds.")
+@click.option("--to", "stop_s", type=FINITE, required=True, help="End of that span, seconds.")
 @click.option("--at2", default=None, metavar="X,Y[,Z]",
               help="A second reference sound (same frame as --at), well apart in time: also "
                    "fits each mic's clock drift.")
-@click.option("--from2", "start2_s", type=float, default=None, help="Span of the second sound.")
-@click.option("--to2", "stop2_s", type=float, default=None, help="End of that span.")
-@click.option("--at-sd", "at_sd_m", type=float, default=0.0, show_default=True,
+@click.option("--from2", "start2_s", type=FINITE, default=None, help="Span of the second sound.")
+@click.option("--to2", "stop2_s", type=FINITE, default=None, help="End of that span.")
+@click.option("--at-sd", "at_sd_m", type=FINITE, default=0.0, show_default=True,
               help="How well the reference points are known, metres per axis.")
 @click.option("--band", default=None, metavar="LO:HI", help="Analysis band in Hz.")
 @click.option("-o", "--output", "out_path", required=True, type=click.Path(dir_okay=False),
@@ -41,13 +45,15 @@ from locate.errors import OptionError
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None,
               help="Also write the calibration (offsets, drifts, uncertainties) as JSON.")
 @click.pass_context
+@transactional
 def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, band, out_path,
          json_path):
     """Per-mic clock offsets (and drifts, given two reference sounds) from a sound made at a
     known point; writes a new site file with offset_s filled in."""
+    from locate.common import OutputSet
     from locate.io.audio import open_recordings
     from locate.io.site import dump_site_toml
-    from locate.results.documents import check_output_path, write_atomic, write_json
+    from locate.results.documents import write_atomic, write_json
     from locate.workflows.fixing import conditions_for
     from locate.workflows.sync_site import (
         calibrate,
@@ -71,9 +77,7 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
     if Path(out_path).resolve() == site.path:
         raise OptionError("is the input site file: give a new file name (the input is never "
                           "overwritten)", file=out_path, field="-o")
-    inputs = site_inputs(site)
-    check_output_path(out_path, inputs, option="-o")
-    check_output_path(json_path, inputs + [Path(out_path)], option="--json")
+    check_outputs({"-o": out_path, "--json": json_path}, site_inputs(site))
     points = [parse_point(at, site, option="--at")]
     spans = [(start_s, stop_s)]
     if at2 is not None:
@@ -84,7 +88,8 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
     cond = conditions_for(site)
     fit, reports = calibrate(site, rec, cond, spans, points, band_hz=band_hz, point_sd_m=at_sd_m)
     write_atomic(out_path, dump_site_toml(synced_site_raw(site, fit, out_path)))
-    load(out_path)  # the new file must read back
+    staged = OutputSet.current().staged(out_path)
+    load(staged or out_path)  # the new file must read back (before it is put in place)
     for line in summary_lines(site, fit):
         echo(ctx, line)
     report = sync_report(site, cond, fit, reports)
@@ -92,5 +97,5 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
         warn(w)
     if json_path:
         write_json(json_path, report)
-    echo(ctx, f"New site file written to {out_path}")
+    announce(ctx, f"New site file written to {out_path}")
     return report

@@ -41,7 +41,7 @@ from locate.draw.parts import (
 from locate.errors import OptionError, ResultFileError
 
 __all__ = ["PALETTE", "SCHEMA", "ellipse_axes", "check_result", "draw_map", "map_figure",
-           "panels_figure", "save_figure"]
+           "panels_figure", "save_figure", "figure_bytes"]
 
 _FORMATS = {".png": "png", ".svg": "svg", ".pdf": "pdf"}
 _GRID_N = 321  # grid points per side for the hyperbola fields (~0.3 % of the view apart)
@@ -475,9 +475,14 @@ def save_figure(fig, path, *, dpi=150):
                           f": use one of {', '.join(_FORMATS)}", file=p, field="-o")
     if not p.parent.is_dir():
         raise OptionError(f"folder {str(p.parent)!r} does not exist", file=p, field="-o")
+    write_atomic(p, figure_bytes(fig, fmt, dpi=dpi))  # rendered in full before any write
+    return p
+
+
+def figure_bytes(fig, fmt="png", *, dpi=150) -> bytes:
+    """``fig`` rendered to memory as ``fmt`` ('png', 'svg' or 'pdf'), without a date."""
     buf = io.BytesIO()
     meta = {"png": {"Software": "tdoa"}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}
     with rc_context(mk.STYLE):
         fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta[fmt], facecolor="white")
-    write_atomic(p, buf.getvalue())
-    return p
+    return buf.getvalue()

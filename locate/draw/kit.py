@@ -28,7 +28,7 @@ from scipy.stats import chi2
 from locate.common import format_length as common_format_length
 from locate.geometry.ellipses import ellipse
 
-__all__ = ["PALETTE", "STYLE", "ellipse_axes", "nice_length", "format_length"]
+__all__ = ["PALETTE", "STYLE", "ellipse_axes", "nice_length", "format_length", "plain"]
 
 # Tol (2021) high-contrast: blue #004488, yellow #DDAA33; muted: wine #882255, teal #44AA99,
 # indigo #332288, olive #999933; the greys are ours, picked for print.  Greyscale lightness
@@ -43,8 +43,17 @@ PALETTE = {
 }
 STYLE = {"font.family": "DejaVu Sans", "font.size": 8.5, "axes.linewidth": 0.6,
          "xtick.labelsize": 7.5, "ytick.labelsize": 7.5, "svg.fonttype": "none",
-         "pdf.fonttype": 42, "image.interpolation": "antialiased"}
+         "pdf.fonttype": 42, "image.interpolation": "antialiased",
+         "text.parse_math": False}  # user text (titles, mic names) is text, never mathtext
 HALO = [patheffects.withStroke(linewidth=2.6, foreground="white")]
+
+
+def plain(text) -> str:
+    """``text`` shown as written by a matplotlib text made outside :data:`STYLE` (where
+    ``text.parse_math`` is on): each ``$`` escaped, so no mathtext is parsed and a backslash
+    stays a backslash (matplotlib reads a string with an even number of unescaped ``$`` as
+    mathtext, and prints ``\\$`` as ``$``)."""
+    return str(text).replace("$", r"\$")
 
 
 def ellipse_axes(covariance_m2, probability=0.95):

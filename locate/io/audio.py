@@ -25,6 +25,8 @@ hour-long files stream in bounded memory through :meth:`Recordings.blocks`.
 
 from __future__ import annotations
 
+import os
+import stat
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
@@ -48,6 +50,53 @@ SINC_HALF_TAPS = 32  # half-width of the windowed-sinc interpolator (samples)
 SINC_KAISER_BETA = 8.6  # Kaiser shape; ~ -80 dB side lobes (Kaiser & Schafer 1980)
 SINC_FARROW_DEGREE = 10  # polynomial degree of the kernel in the fractional position
 _LENGTH_WARN_S = 1.0
+MEMORY_FRACTION = 0.25  # a read may take at most this fraction of the machine's memory
+
+CONTAINERS = {".wav": ("WAV", "WAVEX", "RF64", "W64"), ".wave": ("WAV", "WAVEX"),
+              ".flac": ("FLAC",), ".ogg": ("OGG",), ".oga": ("OGG",), ".opus": ("OGG",),
+              ".aif": ("AIFF",), ".aiff": ("AIFF",), ".aifc": ("AIFF",), ".caf": ("CAF",),
+              ".w64": ("W64",), ".rf64": ("RF64",), ".mp3": ("MP3",)}
+"""What a file extension promises (libsndfile format names)."""
+
+LOSSY = ("OGG", "MP3")  # lossy codecs: their phase and timing are not kept exactly
+
+
+def regular_file(path, field, site_path=None):
+    """Refuse, before it is opened, a path that is missing or not a regular file (a FIFO
+    would wait forever for a writer, a device never ends)."""
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        named = f" (named by {field} in {Path(site_path).name})" if site_path else ""
+        raise RecordingError(f"file not found{named}", file=path, field=field) from None
+    except OSError as exc:
+        raise RecordingError(f"cannot read the file ({exc.strerror})", file=path,
+                             field=field) from None
+    if stat.S_ISDIR(mode):
+        raise RecordingError("is a folder, not a recording: name the audio file", file=path,
+                             field=field)
+    if not stat.S_ISREG(mode):
+        raise RecordingError("is not a regular file (a pipe, device or socket): copy the "
+                             "recording to a file and name that", file=path, field=field)
+
+
+def container_note(path, info) -> str | None:
+    """A warning when the file's content is not what its extension says (OGG in a .wav)."""
+    fmt = str(getattr(info, "format", "") or "").upper()
+    expected = CONTAINERS.get(Path(path).suffix.lower())
+    if not fmt or expected is None or fmt in expected:
+        return None
+    lossy = (" lossy-compressed audio: arrival times may be blurred;"
+             if fmt in LOSSY else "")
+    return (f"{Path(path).name} holds {fmt} audio but is named {Path(path).suffix}:"
+            f"{lossy} check it is the right file and rename it")
+
+
+def _memory_bytes() -> float:
+    try:
+        return float(os.sysconf("SC_PHYS_PAGES")) * float(os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):
+        return float("inf")
 
 
 @dataclass(frozen=True)
@@ -82,12 +131,10 @@ def open_recordings(site) -> Recordings:
             raise RecordingError(f'mic "{mic.name}" has no recording: give [recording] file or '
                                  "a file for this mic", file=site.path, field=field)
         if path not in infos:
-            if not path.is_file():
-                raise RecordingError(f"file not found (named by {field} in {site.path.name})",
-                                     file=path, field=field)
+            regular_file(path, field, site.path)
             try:
                 infos[path] = soundfile.info(str(path))
-            except (RuntimeError, soundfile.SoundFileError) as exc:
+            except (RuntimeError, soundfile.SoundFileError, OSError) as exc:
                 raise RecordingError(f"not a readable audio file ({_describe(exc)}): give a WAV"
                                      " or FLAC file", file=path, field=field) from None
             if infos[path].frames <= 0:
@@ -113,7 +160,8 @@ def open_recordings(site) -> Recordings:
         offsets = offsets + starts
     drift = np.array([m.drift_ppm for m in site.mics], dtype=float)
     rec = Recordings(tuple(sources), float(rates[first]), offsets, drift)
-    notes = (truncation_note(p, inf) for p, inf in infos.items())
+    notes = [container_note(p, inf) for p, inf in infos.items()]
+    notes += [truncation_note(p, inf) for p, inf in infos.items()]
     rec.warnings[:0] = [n for n in notes if n]
     return rec
 
@@ -146,6 +194,8 @@ class Recordings:
         self.drift_ppm = np.asarray(drift_ppm, dtype=float)
         self.warnings: list[str] = []
         self._warned: set = set()
+        self._heard = np.zeros(self.n_mics, dtype=bool)  # a non-zero sample read so far
+        self._silent_text: dict[int, str] = {}
         n = np.array([s.n_frames for s in self._sources], dtype=float)
         self._cover = np.stack([self.offsets_s,
                                 self.offsets_s + n / (self.sample_rate_hz * self._scale())], 1)
@@ -239,7 +289,12 @@ class Recordings:
         pad = np.where(drifting, SINC_HALF_TAPS, 0)
         lo, hi = k0 - pad, k0 + span + pad + 1  # frames needed, [lo, hi) in mic samples
         if out is None or out.shape != (self.n_mics, n_out) or out.dtype != np.float64:
-            out = np.empty((self.n_mics, n_out))
+            self._check_memory(n_out, start_s, stop_s)
+            try:
+                out = np.empty((self.n_mics, n_out))
+            except MemoryError:
+                raise RecordingError(self._memory_text(n_out, start_s, stop_s),
+                                     file=self._sources[0].path, field="stop_s") from None
         by_file: dict[Path, list[int]] = {}
         for i, s in enumerate(self._sources):
             by_file.setdefault(s.path, []).append(i)
@@ -259,9 +314,37 @@ class Recordings:
                     out[i] = _sinc_interpolate(x, pos)
                 else:
                     out[i] = x
-        for key, msg in _signal_notes(out, self.mic_names):
-            self._warn(key, msg)
+        self._note_signals(out)
         return out, residual
+
+    def _note_signals(self, out):
+        """Clipped and dead channels; "silent" only while a mic has given nothing but zeros
+        in everything read so far (a note said too early is taken back)."""
+        heard = np.array([bool(np.any(out[i])) for i in range(self.n_mics)], dtype=bool)
+        for i in np.flatnonzero(heard & ~self._heard):
+            key = (self.mic_names[i], "silent")
+            if key in self._warned:
+                self.warnings[:] = [w for w in self.warnings if w != self._silent_text[i]]
+        self._heard |= heard
+        for key, msg in _signal_notes(out, self.mic_names):
+            if key[1] == "silent":
+                i = self.mic_names.index(key[0])
+                if self._heard[i]:
+                    continue
+                self._silent_text[i] = msg
+            self._warn(key, msg)
+
+    def _memory_text(self, n_out, start_s, stop_s):
+        need = self.n_mics * n_out * 8.0
+        return (f"the span {start_s:.3f}..{stop_s:.3f} s ({n_out} samples x {self.n_mics} "
+                f"mics) needs {need / 1e9:.2f} GB to hold; this machine allows a read of "
+                f"{MEMORY_FRACTION * _memory_bytes() / 1e9:.2f} GB: analyse a shorter span "
+                "(--from/--to)")
+
+    def _check_memory(self, n_out, start_s, stop_s):
+        if self.n_mics * n_out * 8.0 > MEMORY_FRACTION * _memory_bytes():
+            raise RecordingError(self._memory_text(n_out, start_s, stop_s),
+                                 file=self._sources[0].path, field="stop_s")
 
     def blocks(self, block_s, overlap_s=0.0, start_s=None, stop_s=None, *,
                reuse=False):
@@ -327,6 +410,15 @@ def _read_frames(path, lo, hi, n_frames, scratch=None) -> np.ndarray:
     caller converts one channel at a time to float64.  ``scratch`` (a dict) keeps the buffer
     of each file for the next call of the same size.
     """
+    try:
+        return _read_frames_from(path, lo, hi, n_frames, scratch)
+    except (RuntimeError, soundfile.SoundFileError) as exc:  # libsndfile: damaged file
+        raise RecordingError(f"could not decode the audio between frames {lo} and {hi} "
+                             f"({_describe(exc)}): the file is damaged; export or copy it "
+                             "again from the recorder", file=path, field="audio") from None
+
+
+def _read_frames_from(path, lo, hi, n_frames, scratch):
     with soundfile.SoundFile(str(path)) as f:
         shape = (hi - lo, f.channels)
         out = None if scratch is None else scratch.get(path)
@@ -424,7 +516,7 @@ def _signal_notes(signals, mic_names):
                           "scale (clipped): its delays and levels are unreliable; record with "
                           "less gain"))
         if silent[i]:
-            notes.append(((name, "dead"), f'mic "{name}": silent (all samples zero): dead '
+            notes.append(((name, "silent"), f'mic "{name}": silent (all samples zero): dead '
                           "channel or wrong channel number?"))
         elif median > 0 and below_db[i] > DEAD_DB:
             notes.append(((name, "dead"), f'mic "{name}": {below_db[i]:.0f} dB below the median '

@@ -10,7 +10,9 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+import os
 import re
+import stat
 from pathlib import Path, PurePath
 
 import numpy as np
@@ -26,6 +28,7 @@ __all__ = ["read_toml", "dump_toml"]
 
 _BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
 _AT_LINE = re.compile(r"\(at line (\d+), column (\d+)\)")
+MAX_BYTES = 16_000_000  # a site file or manifest is a few kB; more is not one
 _COMMA_NUMBER = re.compile(r"=\s*([+-]?\d+),(\d+)\s*(#.*)?$")  # "x = 6,5": a decimal comma
 
 
@@ -35,11 +38,26 @@ def read_toml(path) -> dict:
     Raises
     ------
     SiteFileError
-        The file is missing, not UTF-8, or not valid TOML; the message gives the line.
+        The file is missing, not a regular file (a pipe or device is refused before it is
+        opened), larger than :data:`MAX_BYTES`, not UTF-8, or not valid TOML; the message
+        gives the line.  A UTF-8 byte-order mark at the start is accepted.
     """
     p = Path(path)
     try:
-        raw = p.read_bytes()
+        info = os.stat(p)
+        if stat.S_ISDIR(info.st_mode):
+            raise IsADirectoryError
+        if not stat.S_ISREG(info.st_mode):
+            raise SiteFileError("is not a regular file (a pipe, device or socket): give the "
+                                ".toml file", file=path)
+        if info.st_size > MAX_BYTES:
+            raise SiteFileError(f"is {info.st_size / 1e6:.0f} MB: a site file is a few kB of "
+                                "TOML text; name the right file", file=path)
+        with open(p, "rb") as fh:
+            raw = fh.read(MAX_BYTES + 1)
+        if len(raw) > MAX_BYTES:
+            raise SiteFileError("is larger than a site file can be: name the right file",
+                                file=path)
     except FileNotFoundError:
         raise SiteFileError("file not found: check the path", file=path) from None
     except IsADirectoryError:
@@ -47,6 +65,8 @@ def read_toml(path) -> dict:
                             file=path) from None
     except OSError as exc:
         raise SiteFileError(f"cannot read the file ({exc.strerror})", file=path) from None
+    if raw.startswith(b"\xef\xbb\xbf"):  # a byte-order mark (some editors write one)
+        raw = raw[3:]
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -55,6 +75,9 @@ def read_toml(path) -> dict:
                             file=path) from None
     try:
         return _toml.loads(text)
+    except RecursionError:
+        raise SiteFileError("the TOML is nested too deeply to read (a damaged file?)",
+                            file=path) from None
     except _toml.TOMLDecodeError as exc:
         msg = str(exc)
         m = _AT_LINE.search(msg)

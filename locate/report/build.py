@@ -16,7 +16,6 @@ from __future__ import annotations
 import base64
 import datetime
 import io
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -122,10 +121,7 @@ def _map_png(site, result, notes) -> bytes:
     from locate.draw import figures as plot
 
     fig = plot.map_figure(site, result, warnings=notes)
-    with tempfile.TemporaryDirectory(prefix="tdoa-report-") as tmp:
-        path = Path(tmp) / "map.png"
-        plot.save_figure(fig, path, dpi=150)
-        return path.read_bytes()
+    return plot.figure_bytes(fig, "png", dpi=150)
 
 
 def _map_alt(site, result):
@@ -167,7 +163,7 @@ def _level_png(lev) -> bytes:
         lp = np.array([np.nan if v is None else v for v in r.get("lp_db") or []], dtype=float)
         if lp.size == len(bands):
             ax.plot(x, lp, marker=markers[k % len(markers)], color="#b35900", lw=1.2,
-                    label=f"predicted at {r.get('name')} (Lp)")
+                    label=mk.plain(f"predicted at {r.get('name')} (Lp)"))
     ax.set_xticks(x, [f"{b:g}" for b in bands])
     ax.set_xlabel("octave band, Hz")
     unit = "dB re 1 pW / 20 µPa" if lev.get("calibrated", True) else "dB re full scale"

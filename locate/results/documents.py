@@ -11,6 +11,7 @@ import csv
 import io
 import json
 import math
+import os
 from pathlib import Path
 
 import numpy as np
@@ -28,6 +29,7 @@ __all__ = [
     "fix_to_dict",
     "fixes_csv",
     "check_output_path",
+    "check_output_paths",
     "jsonable",
 ]
 
@@ -43,25 +45,50 @@ CAUTIONS = (
 )
 
 
+def _same_file(a, b) -> bool:
+    """True when paths ``a`` and ``b`` name one file: equal after resolving symlinks and
+    ``..`` (even when ``a`` does not exist yet), or hard links to one inode."""
+    try:
+        if os.path.realpath(a) == os.path.realpath(b):
+            return True
+        return os.path.exists(a) and os.path.exists(b) and os.path.samefile(a, b)
+    except (OSError, ValueError):
+        return False
+
+
 def check_output_path(path, inputs=(), *, option="--json"):
-    """Refuse an output path whose folder is missing or that would overwrite an input."""
+    """Refuse an output path whose folder is missing, that is a folder, or that would
+    overwrite an input (the same file after symlinks and ``..``, or a hard link to it)."""
     if path is None:
         return None
     p = Path(path)
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
-        raise OptionError(f"the folder {str(parent)!r} does not exist: create it first",
+        what = "is a file, not a folder" if parent.exists() else "does not exist"
+        raise OptionError(f"the folder {str(parent)!r} {what}: create it first",
                           file=str(p), field=option)
+    if p.is_dir():
+        raise OptionError("is a folder: give a file name for the output", file=str(p),
+                          field=option)
     for inp in inputs:
-        if inp is None:
-            continue
-        try:
-            if p.exists() and Path(inp).exists() and p.resolve() == Path(inp).resolve():
-                raise OptionError("this is one of the input files: choose another output path",
-                                  file=str(p), field=option)
-        except OSError:
-            continue
+        if inp is not None and _same_file(p, inp):
+            raise OptionError(f"this is one of the input files ({inp}): choose another output "
+                              "path (inputs are never overwritten)", file=str(p), field=option)
     return p
+
+
+def check_output_paths(outputs, inputs=()):
+    """:func:`check_output_path` for every ``(option, path)`` of ``outputs`` (a dict or pairs),
+    and refuse two outputs of one run that name the same file."""
+    pairs = [(opt, p) for opt, p in (outputs.items() if isinstance(outputs, dict) else outputs)
+             if p is not None]
+    for k, (opt, p) in enumerate(pairs):
+        check_output_path(p, inputs, option=opt)
+        for opt2, p2 in pairs[:k]:
+            if _same_file(p, p2):
+                raise OptionError(f"is also the {opt2} output of this run: give each output its "
+                                  "own file", file=str(p), field=opt)
+    return [Path(p) for _, p in pairs]
 
 
 def jsonable(obj):
