@@ -74,9 +74,9 @@ def main(argv=None):
 
     try:
         cli.main(args=args, prog_name="tdoa", standalone_mode=False)
-    except click.exceptions.Abort:
+    except click.exceptions.Abort as exc:
         click.echo("tdoa: interrupted; no partial result was written", err=True)
-        sys.exit(130)
+        sys.exit(143 if type(exc.__cause__).__name__ == "Terminated" else 130)
     except click.exceptions.UsageError as exc:
         hint = f" (see tdoa {exc.ctx.info_name} --help)" if exc.ctx and exc.ctx.parent else ""
         fail(" ".join(exc.format_message().split()) + hint, exc.exit_code)
@@ -86,9 +86,9 @@ def main(argv=None):
     except TdoaError as exc:
         as_options(exc)
         fail(str(exc), exc.exit_code)
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
         click.echo("tdoa: interrupted; no partial result was written", err=True)
-        sys.exit(130)
+        sys.exit(143 if type(exc).__name__ == "Terminated" else 130)
     except click.exceptions.Exit as exc:
         sys.exit(exc.exit_code)
     except OSError as exc:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import signal
 from pathlib import Path
 
 import click
@@ -38,14 +40,22 @@ def run_argv(argv):
 @click.option("--summary", "summary_path", type=click.Path(dir_okay=False), default=None,
               help="Write the batch summary here (default: batch-summary.json in the output "
                    "folder).")
+@click.option("--output-dir", "output_dir", type=click.Path(file_okay=False), default=None,
+              help="Write the results into this folder (default: the manifest's output_dir, "
+                   "which must lie inside the manifest's folder).")
 @click.pass_context
-def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path):
+def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path, output_dir=None):
     """Run fix / track / events tasks listed in a manifest (see docs/batch.md): one result
     file per task, written atomically; failed tasks are reported and the others finish."""
-    from locate.results.documents import write_json
-    from locate.workflows.batch import load_manifest, run_tasks, summary_document
+    from locate.results.documents import check_output_path, write_json
+    from locate.workflows.batch import SUMMARY_NAME, load_manifest, run_tasks, summary_document
 
-    tasks, out_dir = load_manifest(manifest_path)
+    tasks, out_dir = load_manifest(manifest_path, output_dir=output_dir)
+    inputs = [Path(manifest_path)] + sorted({Path(t.site) for t in tasks})
+    if summary_path:
+        check_output_path(summary_path, inputs, option="--summary")
+    summary_path = Path(summary_path) if summary_path else out_dir / SUMMARY_NAME
+    _check_summary(summary_path, tasks, inputs)
     out_dir.mkdir(parents=True, exist_ok=True)
     where = f"scheduler {scheduler}" if scheduler else f"{jobs or 'all'} local process(es)"
     echo(ctx, f"{len(tasks)} task(s) from {Path(manifest_path).name} on {where}; results in "
@@ -63,14 +73,15 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path):
                       + (f": {rec['error']}" if rec["error"] else ""))
 
     try:
-        summary = run_tasks(tasks, run_argv, jobs=jobs, scheduler=scheduler, resume=resume,
-                            on_done=report)
+        with _sigterm_stops():
+            summary = run_tasks(tasks, run_argv, jobs=jobs, scheduler=scheduler,
+                                resume=resume, on_done=report)
     except KeyboardInterrupt:
         click.echo(f"tdoa: batch interrupted after {sum(finished)} of {len(tasks)} task(s); "
                    "their results are kept: rerun with --resume to do the rest", err=True)
         raise
     doc = summary_document(tasks, summary)
-    write_json(summary_path or out_dir / "batch-summary.json", doc)
+    write_json(summary_path, doc)
     n = doc["counts"]
     echo(ctx, f"{n['ok']} done, {n['nothing']} found nothing, {n['skipped']} skipped "
               f"(finished earlier), {n['failed']} failed")
@@ -78,3 +89,40 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path):
         raise NothingFoundError(f"{n['failed']} of {len(tasks)} task(s) failed (see above); "
                                 "the others finished: fix the inputs and rerun with --resume")
     return doc
+
+
+def _check_summary(summary_path, tasks, inputs):
+    """Before any work (output folder not made yet): the summary is no task's result and no
+    input; task results are no input."""
+    from locate.results.documents import same_file
+
+    for t in tasks:
+        if same_file(summary_path, t.output):
+            raise OptionError(f"is also the result of task {t.name!r}: give the summary "
+                              "another name", file=str(summary_path), field="--summary")
+    for p in [summary_path] + [Path(t.output) for t in tasks]:
+        for inp in inputs:
+            if same_file(p, inp):
+                raise OptionError(f"this is one of the inputs ({inp}): choose another output "
+                                  "path", file=str(p), field="output")
+
+
+@contextlib.contextmanager
+def _sigterm_stops():
+    """SIGTERM (a kill, a scheduler's time limit) stops the batch like Ctrl-C: the pool's
+    workers are killed, the finished results kept (:class:`~locate.workflows.batch.Terminated`).
+    """
+    from locate.workflows.batch import Terminated
+
+    def stop(signum, frame):
+        raise Terminated()
+
+    try:
+        old = signal.signal(signal.SIGTERM, stop)
+    except ValueError:  # not the main thread: leave the signals alone
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, old)

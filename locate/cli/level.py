@@ -30,7 +30,7 @@ from locate.errors import OptionError
 def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
     """Source sound power per octave band, and the level at the site's named receivers."""
     from locate.io.audio import open_recordings
-    from locate.results.documents import read_result, write_json
+    from locate.results.documents import read_result, reading_result, write_json
     from locate.workflows.fixing import conditions_for, fix_result
     from locate.workflows.level import level_for_fix
 
@@ -50,8 +50,9 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
     cond = conditions_for(site, result.get("sound_speed_mps"))
     out = []
     for k, entry in chosen:
-        lev = level_for_fix(rec, site, cond, entry, hemisphere=hemisphere,
-                            result_path=result_path)
+        with reading_result(result_path):
+            lev = level_for_fix(rec, site, cond, entry, hemisphere=hemisphere,
+                                result_path=result_path)
         lev["fix"] = k
         out.append(lev)
         unit = "dB" if lev["calibrated"] else "dBFS-rel"

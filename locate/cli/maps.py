@@ -154,7 +154,7 @@ def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
     """Draw a fix or track result over the site sketch."""
     from locate.cli.common import check_same_site
     from locate.draw import figures as plot
-    from locate.results.documents import read_result
+    from locate.results.documents import read_result, reading_result
 
     site = load(site_path)
     check_outputs({"--output": out_path, "--panels": panels_path},
@@ -173,11 +173,14 @@ def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
         raise OptionError(f"the sketch image {site.sketch.image} does not exist: fix the path "
                           "or remove sketch.image", file=site.path, field="sketch.image")
     notes = []
-    fig = plot.map_figure(site, result, warnings=notes, fix_index=index)
-    plot.save_figure(fig, out_path)
+    with reading_result(result_path):
+        fig = plot.map_figure(site, result, warnings=notes, fix_index=index)
+        plot.save_figure(fig, out_path)
     for w in notes:
         warn(w)
     announce(ctx, f"Map written to {out_path}")
     if panels_path:
-        plot.save_figure(plot.panels_figure(result, fix_index=index or 0), panels_path)
+        with reading_result(result_path):
+            panels = plot.panels_figure(result, fix_index=index or 0)
+        plot.save_figure(panels, panels_path)
         announce(ctx, f"Diagnostics written to {panels_path}")

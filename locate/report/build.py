@@ -358,7 +358,12 @@ def make_report(site_path, result_paths, out_path, *, title=None, generated=None
     """
     from locate.io.site import load_site
     from locate.report import chromium
-    from locate.results.documents import check_output_path, read_result, write_atomic
+    from locate.results.documents import (
+        check_output_paths,
+        read_result,
+        reading_result,
+        write_atomic,
+    )
 
     out = Path(out_path)
     if not result_paths:
@@ -374,13 +379,15 @@ def make_report(site_path, result_paths, out_path, *, title=None, generated=None
     if site.sketch is not None:
         inputs += [site.sketch.image, site.sketch.geojson]
     _refuse_input(out, inputs)
-    check_output_path(out, inputs, option="-o")
+    check_output_paths({"-o": out}, inputs)
     if fmt == "pdf":
         chromium.require_chromium()  # before the work: "not found, write HTML instead"
     results = [read_result(p, kinds=KINDS) for p in result_paths]
     for r, p in zip(results, result_paths, strict=True):
         check_same_site(site, r, str(p))  # the error names the file as given
-    html = build_report(site, results, title=title, files=[Path(p).name for p in result_paths],
-                        recordings=recordings_info(site), generated=generated)
+    with reading_result(", ".join(str(p) for p in result_paths)):
+        html = build_report(site, results, title=title,
+                            files=[Path(p).name for p in result_paths],
+                            recordings=recordings_info(site), generated=generated)
     data = chromium.print_pdf(html) if fmt == "pdf" else html
     return write_atomic(out, data)

@@ -7,17 +7,19 @@ or Ctrl-C never leaves a half-written result, and an input file is never overwri
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import io
 import json
 import math
 import os
+import stat
 from pathlib import Path
 
 import numpy as np
 
 from locate.common import write_atomic
-from locate.errors import OptionError, ResultFileError
+from locate.errors import OptionError, ResultFileError, TdoaError
 from locate.geometry.ellipses import ellipse
 
 __all__ = [
@@ -26,10 +28,13 @@ __all__ = [
     "write_atomic",
     "write_json",
     "read_result",
+    "check_result_fields",
+    "reading_result",
     "fix_to_dict",
     "fixes_csv",
     "check_output_path",
     "check_output_paths",
+    "same_file",
     "jsonable",
 ]
 
@@ -45,7 +50,7 @@ CAUTIONS = (
 )
 
 
-def _same_file(a, b) -> bool:
+def same_file(a, b) -> bool:
     """True when paths ``a`` and ``b`` name one file: equal after resolving symlinks and
     ``..`` (even when ``a`` does not exist yet), or hard links to one inode."""
     try:
@@ -71,7 +76,7 @@ def check_output_path(path, inputs=(), *, option="--json"):
         raise OptionError("is a folder: give a file name for the output", file=str(p),
                           field=option)
     for inp in inputs:
-        if inp is not None and _same_file(p, inp):
+        if inp is not None and same_file(p, inp):
             raise OptionError(f"this is one of the input files ({inp}): choose another output "
                               "path (inputs are never overwritten)", file=str(p), field=option)
     return p
@@ -85,7 +90,7 @@ def check_output_paths(outputs, inputs=()):
     for k, (opt, p) in enumerate(pairs):
         check_output_path(p, inputs, option=opt)
         for opt2, p2 in pairs[:k]:
-            if _same_file(p, p2):
+            if same_file(p, p2):
                 raise OptionError(f"is also the {opt2} output of this run: give each output its "
                                   "own file", file=str(p), field=opt)
     return [Path(p) for _, p in pairs]
@@ -117,14 +122,43 @@ def write_json(path, obj, *, indent=1) -> Path:
     return write_atomic(path, text + "\n")
 
 
-def read_result(path, *, kinds=None) -> dict:
-    """Read a result JSON and check its schema (and kind, if ``kinds`` is given)."""
-    p = Path(path)
+def _read_regular(p: Path) -> bytes:
+    """The bytes of a regular file; a folder, pipe or device is refused before opening."""
     try:
-        obj = json.loads(p.read_text(encoding="utf-8"))
+        info = os.stat(p)
     except FileNotFoundError:
         raise ResultFileError("file not found", file=p) from None
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+    except OSError as exc:
+        raise ResultFileError(f"cannot read the file ({exc.strerror})", file=p) from None
+    if stat.S_ISDIR(info.st_mode):
+        raise ResultFileError("is a folder, not a result file: give the .json file", file=p)
+    if not stat.S_ISREG(info.st_mode):
+        raise ResultFileError("is not a regular file (a pipe, device or socket): give the "
+                              ".json result file", file=p)
+    if info.st_size > MAX_RESULT_BYTES:
+        raise ResultFileError(f"is {info.st_size / 1e9:.1f} GB, larger than a result can be "
+                              f"({MAX_RESULT_BYTES / 1e9:.0f} GB): name the right file", file=p)
+    try:
+        with open(p, "rb") as fh:
+            return fh.read()
+    except OSError as exc:
+        raise ResultFileError(f"cannot read the file ({exc.strerror})", file=p) from None
+
+
+MAX_RESULT_BYTES = 4_000_000_000  # a day-long sweep is a few hundred MB
+
+
+def read_result(path, *, kinds=None) -> dict:
+    """Read a result JSON and check its schema (and kind, if ``kinds`` is given) and the
+    fields the commands use (:func:`check_result_fields`); errors name the file and field."""
+    p = Path(path)
+    raw = _read_regular(p)
+    try:
+        obj = json.loads(raw.decode("utf-8-sig"))
+    except RecursionError:
+        raise ResultFileError("the JSON is nested too deeply to be a result (damaged or not "
+                              "a tdoa result)", file=p) from None
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise ResultFileError(f"not a readable JSON result ({exc.__class__.__name__}: {exc})",
                               file=p) from None
     if not isinstance(obj, dict) or obj.get("schema") != SCHEMA:
@@ -134,7 +168,125 @@ def read_result(path, *, kinds=None) -> dict:
     if kinds is not None and obj.get("kind") not in kinds:
         raise ResultFileError(f"kind is {obj.get('kind')!r}; this command reads "
                               + " or ".join(repr(k) for k in kinds), file=p, field="kind")
+    check_result_fields(obj, p)
     return obj
+
+
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _finite(v, where, p, *, optional=False):
+    if v is None and optional:
+        return
+    if not _is_number(v) or not math.isfinite(v):
+        raise ResultFileError(f"must be a finite number, got {_shown(v)}: the file was edited "
+                              "or damaged; make it again with tdoa", file=p, field=where)
+
+
+def _vector(v, where, p, *, optional=False):
+    if v is None and optional:
+        return
+    if not isinstance(v, list) or len(v) not in (2, 3):
+        raise ResultFileError(f"must be a list [x, y, z] of numbers, got {_shown(v)}", file=p,
+                              field=where)
+    for k, c in enumerate(v):
+        _finite(c, f"{where}[{k}]", p)
+
+
+def _shown(v) -> str:
+    text = json.dumps(v, allow_nan=True)[:40] if not isinstance(v, float) else repr(v)
+    return text
+
+
+def _list_of(v, kind, where, p, *, optional=True):
+    if v is None and optional:
+        return []
+    if not isinstance(v, list) or not all(isinstance(x, kind) for x in v):
+        name = {dict: "objects", str: "texts"}.get(kind, kind.__name__)
+        raise ResultFileError(f"must be a list of {name}, got {_shown(v)}", file=p, field=where)
+    return v
+
+
+def _numbers_or_none(v, where, p):
+    """A number, None (written for infinity), or nested lists of those (a matrix)."""
+    if v is None or _is_number(v):
+        return
+    if isinstance(v, list):
+        for k, x in enumerate(v):
+            _numbers_or_none(x, f"{where}[{k}]", p)
+        return
+    raise ResultFileError(f"must be a number (or null), got {_shown(v)}", file=p, field=where)
+
+
+def _check_entry(f, where, p, time_key):
+    if not isinstance(f, dict):
+        raise ResultFileError(f"must be an object, got {_shown(f)}", file=p, field=where)
+    _vector(f.get("position_m"), f"{where}.position_m", p)
+    if time_key in f or time_key == "t_s":
+        _finite(f.get(time_key), f"{where}.{time_key}", p, optional=time_key != "t_s")
+    for key in ("t_heard_s", "residual_rms_s", "duration_s"):
+        if key in f:
+            _finite(f.get(key), f"{where}.{key}", p, optional=True)
+    for key in ("mirror_position_m", "position_now_m"):
+        _vector(f.get(key), f"{where}.{key}", p, optional=True)
+    for key in ("covariance_m2", "span_s"):
+        _numbers_or_none(f.get(key), f"{where}.{key}", p)
+    for key in ("ellipse95", "ellipse50"):
+        e = f.get(key)
+        if e is not None and not isinstance(e, dict):
+            raise ResultFileError(f"must be an object, got {_shown(e)}", file=p,
+                                  field=f"{where}.{key}")
+        for k2, v in (e or {}).items():
+            _numbers_or_none(v, f"{where}.{key}.{k2}", p)
+    for key in ("rejected_mics", "dead_mics", "used_mics", "warnings"):
+        _list_of(f.get(key), str, f"{where}.{key}", p)
+    _list_of(f.get("delays"), dict, f"{where}.delays", p)
+
+
+def check_result_fields(obj: dict, path) -> None:
+    """Check the fields of a result that the commands read: positions and times are finite
+    numbers, lists are lists; the error names the file and the field (``fixes[2].t_s``)."""
+    p = path
+    for k, f in enumerate(_list_of(obj.get("fixes"), object, "fixes", p)):
+        _check_entry(f, f"fixes[{k}]", p, "t_s")
+    for k, m in enumerate(_list_of(obj.get("mics"), dict, "mics", p)):
+        if not isinstance(m.get("name"), str):
+            raise ResultFileError(f"must be a text, got {_shown(m.get('name'))}", file=p,
+                                  field=f"mics[{k}].name")
+        _vector(m.get("position_m"), f"mics[{k}].position_m", p,
+                optional="position_m" not in m)
+    _finite(obj.get("sound_speed_mps"), "sound_speed_mps", p, optional=True)
+    _list_of(obj.get("warnings"), str, "warnings", p)
+    _list_of(obj.get("levels"), dict, "levels", p)
+    track = obj.get("track")
+    if obj.get("kind") == "track" or track is not None:
+        if not isinstance(track, dict):
+            raise ResultFileError(f"must be an object, got {_shown(track)}", file=p,
+                                  field="track")
+        for k, pt in enumerate(_list_of(track.get("points"), object, "track.points", p)):
+            _check_entry(pt, f"track.points[{k}]", p, "t_emit_s")
+        for key in ("heading_deg", "speed_mps"):
+            if key in track:
+                _finite(track.get(key), f"track.{key}", p, optional=True)
+
+
+@contextlib.contextmanager
+def reading_result(path):
+    """Around the use of a result read back: an error about it names the file, and a field
+    of the wrong shape that the checks let through is one line naming the file."""
+    try:
+        yield
+    except ResultFileError as exc:
+        if exc.file is None:
+            exc.file = str(path)
+        raise
+    except TdoaError:
+        raise
+    except (KeyError, TypeError, IndexError, AttributeError, ValueError) as exc:
+        raise ResultFileError(f"a field is missing or malformed ({type(exc).__name__}: "
+                              f"{str(exc)[:80]}): make the result again with tdoa (or run with "
+                              "--debug if the file is untouched)", file=path) from None
 
 
 OTHER_SITE_FRACTION = 0.1  # a mic this far (fraction of the array's extent, and > 1 m) off
@@ -217,8 +369,21 @@ def _rounded(e):
     return {k: (round(v, 4) if math.isfinite(v) else v) for k, v in e.items()}
 
 
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+"""A text cell starting with one of these is read as a formula by spreadsheet programs."""
+
+
+def text_cell(value) -> str:
+    """A CSV cell for text (a mic name, a warning): one that a spreadsheet would run as a
+    formula gets a leading single quote (OWASP "CSV Injection" guidance).  Numbers written
+    by :func:`fixes_csv` are not passed through here and stay numbers (``-3.000``)."""
+    text = str(value)
+    return "'" + text if text.startswith(FORMULA_STARTS) else text
+
+
 def fixes_csv(result: dict) -> str:
-    """CSV text with one row per fix of a result dict."""
+    """CSV text with one row per fix of a result dict (text cells neutralised:
+    :func:`text_cell`)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["t_s", "x_m", "y_m", "z_m", "semi_major95_m", "semi_minor95_m",
@@ -228,8 +393,8 @@ def fixes_csv(result: dict) -> str:
         x, y, z = f["position_m"]
         w.writerow([f"{f['t_s']:.4f}", f"{x:.3f}", f"{y:.3f}", f"{z:.3f}",
                     _fmt(e["semi_major_m"]), _fmt(e["semi_minor_m"]), _fmt(e["azimuth_deg"]),
-                    " ".join(f["rejected_mics"]), f"{f['residual_rms_s']:.3e}",
-                    f"{f['p_value']:.3g}", " | ".join(f["warnings"])])
+                    text_cell(" ".join(f["rejected_mics"])), f"{f['residual_rms_s']:.3e}",
+                    f"{f['p_value']:.3g}", text_cell(" | ".join(f["warnings"]))])
     return buf.getvalue()
 
 

@@ -19,6 +19,7 @@ import contextlib
 import hashlib
 import io
 import json
+import math
 import os
 import tempfile
 import traceback
@@ -30,12 +31,30 @@ from locate.io.toml import read_toml
 from locate.results.documents import write_json
 
 __all__ = ["Task", "load_manifest", "run_task", "run_tasks", "finished", "summary_document",
-           "COMMANDS"]
+           "COMMANDS", "Terminated", "SUMMARY_NAME", "inside"]
 
 COMMANDS = ("fix", "track", "events")
 """Commands a manifest task may run."""
 
 _TASK_KEYS = {"name", "site", "command", "from", "to", "options", "output"}
+SUMMARY_NAME = "batch-summary.json"
+"""The summary's file name in the output folder; no task may write there."""
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM during a batch: handled like Ctrl-C (workers killed, finished results kept)."""
+
+
+def inside(path: Path, folder: Path) -> bool:
+    """True when ``path`` (resolved: symlinks and ``..``) lies within ``folder`` (resolved)."""
+    try:
+        Path(path).resolve().relative_to(Path(folder).resolve())
+    except ValueError:
+        return False
+    return True
+
+
+_BAD_NAME = set('/\\:*?"<>|\0')
 
 
 @dataclass(frozen=True)
@@ -95,10 +114,23 @@ def _number(value, where, path):
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise SiteFileError(f"must be a number of seconds, got {value!r}", file=path,
                             field=where)
+    if not math.isfinite(value):
+        raise SiteFileError(f"must be a finite number of seconds, got {value!r}", file=path,
+                            field=where)
     return float(value)
 
 
-def load_manifest(path) -> tuple[list[Task], Path]:
+def _task_name(value, where, path) -> str:
+    name = str(value)
+    if (not name.strip() or name in (".", "..") or any(c in _BAD_NAME for c in name)
+            or any(ord(c) < 32 for c in name) or len(name.encode()) > 200):
+        raise SiteFileError(f"task name {name[:60]!r} must be a plain file name (no / \\ : * ? "
+                            "\" < > |, not . or .., at most 200 bytes): it names the result "
+                            "file", file=path, field=where)
+    return name
+
+
+def load_manifest(path, output_dir=None) -> tuple[list[Task], Path]:
     """Read a batch manifest.
 
     Returns
@@ -106,11 +138,20 @@ def load_manifest(path) -> tuple[list[Task], Path]:
     tasks : list of Task
     output_dir : pathlib.Path
 
+    Parameters
+    ----------
+    path : path
+        The manifest.
+    output_dir : path, optional
+        The output folder given on the command line (it overrides ``output_dir``).
+
     Raises
     ------
     locate.errors.SiteFileError
         Unreadable TOML, no ``[[task]]``, unknown command or key, bad span, duplicate name or
-        output; the message names the task and key.
+        output, or an output folder or result file outside the batch's folder (``..``, an
+        absolute path elsewhere, a symlink out): results stay in the manifest's folder or the
+        folder given on the command line; the message names the task and key.
     """
     path = Path(path)
     raw = read_toml(path)
@@ -119,7 +160,16 @@ def load_manifest(path) -> tuple[list[Task], Path]:
     if not isinstance(defaults, dict):
         raise SiteFileError("must be a table of options", file=path, field="defaults")
     defaults = dict(defaults)
-    out_dir = (base / str(defaults.pop("output_dir", f"{path.stem}-results"))).resolve()
+    wanted = defaults.pop("output_dir", f"{path.stem}-results")
+    if output_dir is not None:
+        out_dir = Path(output_dir).resolve()
+    else:
+        out_dir = (base / str(wanted)).resolve()
+        if not inside(out_dir, base):
+            raise SiteFileError(f"output_dir {str(wanted)!r} leads out of the manifest's folder "
+                                f"{str(base)!r}: results stay inside it (give --output-dir on "
+                                "the command line to write elsewhere)", file=path,
+                                field="defaults.output_dir")
     unknown = set(raw) - {"task", "defaults"}
     if unknown:
         raise SiteFileError(f"unknown key(s) {sorted(unknown)}: a manifest holds [defaults] "
@@ -135,7 +185,7 @@ def load_manifest(path) -> tuple[list[Task], Path]:
         if bad:
             raise SiteFileError(f"unknown key(s) {sorted(bad)}; a task has "
                                 f"{sorted(_TASK_KEYS)}", file=path, field=f"{where}.{min(bad)}")
-        name = str(t.get("name", f"task-{k}"))
+        name = _task_name(t.get("name", f"task-{k}"), f"{where}.name", path)
         if name in names:
             raise SiteFileError(f"task name {name!r} is used twice", file=path,
                                 field=f"{where}.name")
@@ -159,7 +209,18 @@ def load_manifest(path) -> tuple[list[Task], Path]:
             raise SiteFileError("must be a table of the command's options", file=path,
                                 field=f"{where}.options")
         options = {**defaults, **opts}
-        output = (out_dir / str(t.get("output", f"{name}.json"))).resolve()
+        given = str(t.get("output", f"{name}.json"))
+        output = (out_dir / given).resolve()
+        if not inside(output, out_dir) or output == out_dir:
+            raise SiteFileError(f"output {given!r} leads out of the output folder "
+                                f"{str(out_dir)!r} ('..', an absolute path or a symlink out): "
+                                "name a file inside it", file=path, field=f"{where}.output")
+        if output.name == SUMMARY_NAME and output.parent == out_dir:
+            raise SiteFileError(f"output {given!r} is the batch summary's name: choose another",
+                                file=path, field=f"{where}.output")
+        if output == path.resolve():
+            raise SiteFileError("output is the manifest itself: choose another name",
+                                file=path, field=f"{where}.output")
         if output in outputs:
             raise SiteFileError(f"output {output.name!r} is used by two tasks", file=path,
                                 field=f"{where}.output")
@@ -196,6 +257,12 @@ def run_task(task: Task, runner) -> dict:
             record.update(status="nothing", error=str(exc))
         except TdoaError as exc:
             record.update(status="failed", error=str(exc))
+        except OSError as exc:  # the operating system refused (disk full, permissions)
+            where = f"{exc.filename}: " if exc.filename else ""
+            record.update(status="failed", error=f"{where}{exc.strerror or exc}")
+        except MemoryError:
+            record.update(status="failed", error="not enough memory for this task: give it a "
+                                                 "shorter span or run fewer jobs")
         except Exception as exc:  # anything unexpected: this task only
             last = traceback.format_exception_only(type(exc), exc)[-1].strip()
             record.update(status="failed", error=f"internal error: {last}")
@@ -280,23 +347,65 @@ def run_tasks(tasks, runner, *, jobs=None, scheduler=None, resume=False,
     return summary
 
 
+def _ignore_sigint():
+    """Worker initialiser: Ctrl-C is the parent's to handle (it stops the pool itself)."""
+    import signal
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _stop_pool(pool):
+    """Kill the pool's workers now (SIGTERM, then SIGKILL) and wait for them: no orphans.
+
+    The pool then marks the unfinished tasks as broken; finished ones keep their results."""
+    workers = list((getattr(pool, "_processes", None) or {}).values())
+    for proc in workers:
+        with contextlib.suppress(Exception):
+            proc.terminate()
+    for proc in workers:
+        with contextlib.suppress(Exception):
+            proc.join(timeout=5)
+            if proc.is_alive():
+                proc.kill()
+                proc.join(timeout=5)
+    with contextlib.suppress(Exception):
+        pool.shutdown(wait=True)
+
+
 def _run_pool(jobs, tasks, index, done, runner):
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
     ctx = multiprocessing.get_context("spawn")  # no inherited threads or open files
-    with ProcessPoolExecutor(max_workers=min(jobs, len(tasks)), mp_context=ctx) as pool:
+    pool = ProcessPoolExecutor(max_workers=min(jobs, len(tasks)), mp_context=ctx,
+                               initializer=_ignore_sigint)
+    futures = {}
+    handled = set()
+
+    def collect(fut):
+        k = futures[fut]
+        handled.add(fut)
+        try:
+            record = fut.result()
+        except Exception as exc:  # the worker died (out of memory, killed)
+            t = tasks[index.index(k)]
+            record = {"name": t.name, "site": t.site, "span": t.span,
+                      "command": t.command, "status": "failed", "result": None,
+                      "error": f"worker lost: {type(exc).__name__}: {exc}"}
+        done(k, record)
+
+    try:
         futures = {pool.submit(run_task, t, runner): k for t, k in zip(tasks, index)}
         for fut in as_completed(futures):
-            k = futures[fut]
-            try:
-                record = fut.result()
-            except Exception as exc:  # the worker died (out of memory, killed)
-                t = tasks[index.index(k)]
-                record = {"name": t.name, "site": t.site, "span": t.span,
-                          "command": t.command, "status": "failed", "result": None,
-                          "error": f"worker lost: {type(exc).__name__}: {exc}"}
-            done(k, record)
+            collect(fut)
+    except BaseException:  # Ctrl-C, SIGTERM (Terminated): stop at once, keep what finished
+        _stop_pool(pool)
+        for fut in list(futures):
+            if fut not in handled and fut.done() and not fut.cancelled() \
+                    and fut.exception() is None:
+                with contextlib.suppress(Exception):
+                    collect(fut)  # finished before the interrupt: its result is written
+        raise
+    pool.shutdown(wait=True)
 
 
 def _run_dask(address, tasks, index, done, runner):
@@ -313,16 +422,25 @@ def _run_dask(address, tasks, index, done, runner):
     with client:
         futures = client.map(run_task, tasks, runner=runner, pure=False)
         where = {f.key: k for f, k in zip(futures, index)}
-        for fut in as_completed(futures):
-            k = where[fut.key]
-            try:
-                record = fut.result()
-            except Exception as exc:  # the worker died
-                t = tasks[index.index(k)]
-                record = {"name": t.name, "site": t.site, "span": t.span,
-                          "command": t.command, "status": "failed", "result": None,
-                          "error": f"worker lost: {type(exc).__name__}: {exc}"}
-            done(k, record)
+        try:
+            _collect_dask(futures, where, tasks, index, done, as_completed)
+        except BaseException:  # Ctrl-C, SIGTERM: cancel what is queued or running
+            with contextlib.suppress(Exception):
+                client.cancel(futures)
+            raise
+
+
+def _collect_dask(futures, where, tasks, index, done, as_completed):
+    for fut in as_completed(futures):
+        k = where[fut.key]
+        try:
+            record = fut.result()
+        except Exception as exc:  # the worker died
+            t = tasks[index.index(k)]
+            record = {"name": t.name, "site": t.site, "span": t.span,
+                      "command": t.command, "status": "failed", "result": None,
+                      "error": f"worker lost: {type(exc).__name__}: {exc}"}
+        done(k, record)
 
 
 def summary_document(tasks, summary) -> dict:
