@@ -52,10 +52,11 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path, output_dir=
 
     tasks, out_dir = load_manifest(manifest_path, output_dir=output_dir)
     inputs = [Path(manifest_path)] + sorted({Path(t.site) for t in tasks})
-    if summary_path:
-        check_output_path(summary_path, inputs, option="--summary")
+    given = summary_path
     summary_path = Path(summary_path) if summary_path else out_dir / SUMMARY_NAME
     _check_summary(summary_path, tasks, inputs)
+    if given and Path(given).resolve().parent != out_dir:
+        check_output_path(given, inputs, option="--summary")
     out_dir.mkdir(parents=True, exist_ok=True)
     where = f"scheduler {scheduler}" if scheduler else f"{jobs or 'all'} local process(es)"
     echo(ctx, f"{len(tasks)} task(s) from {Path(manifest_path).name} on {where}; results in "

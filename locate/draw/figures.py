@@ -22,7 +22,6 @@ import textwrap
 from pathlib import Path
 
 import numpy as np
-from matplotlib import rc_context
 from matplotlib.patches import Polygon, Rectangle
 from matplotlib.transforms import Affine2D
 
@@ -166,7 +165,7 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
     if fix_index is not None and not 0 <= fix_index < len(entries):
         raise OptionError(f"fix {fix_index + 1} does not exist: the result has "
                           f"{len(entries)}", field="fix_index")
-    with rc_context(mk.STYLE):
+    with mk.style():
         return _compose(names, mics, result, entries, sketch, receivers, barriers, air,
                         wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file)
 
@@ -483,6 +482,6 @@ def figure_bytes(fig, fmt="png", *, dpi=150) -> bytes:
     """``fig`` rendered to memory as ``fmt`` ('png', 'svg' or 'pdf'), without a date."""
     buf = io.BytesIO()
     meta = {"png": {"Software": "tdoa"}, "svg": {"Date": None}, "pdf": {"CreationDate": None}}
-    with rc_context(mk.STYLE):
+    with mk.style():
         fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta[fmt], facecolor="white")
     return buf.getvalue()

@@ -16,10 +16,12 @@ The visual language
 
 from __future__ import annotations
 
+import contextlib
 import math
+import warnings
 
 import numpy as np
-from matplotlib import patheffects
+from matplotlib import patheffects, rc_context
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.patches import Ellipse, Polygon, Rectangle
@@ -28,7 +30,8 @@ from scipy.stats import chi2
 from locate.common import format_length as common_format_length
 from locate.geometry.ellipses import ellipse
 
-__all__ = ["PALETTE", "STYLE", "ellipse_axes", "nice_length", "format_length", "plain"]
+__all__ = ["PALETTE", "STYLE", "ellipse_axes", "nice_length", "format_length", "plain",
+           "style"]
 
 # Tol (2021) high-contrast: blue #004488, yellow #DDAA33; muted: wine #882255, teal #44AA99,
 # indigo #332288, olive #999933; the greys are ours, picked for print.  Greyscale lightness
@@ -46,6 +49,15 @@ STYLE = {"font.family": "DejaVu Sans", "font.size": 8.5, "axes.linewidth": 0.6,
          "pdf.fonttype": 42, "image.interpolation": "antialiased",
          "text.parse_math": False}  # user text (titles, mic names) is text, never mathtext
 HALO = [patheffects.withStroke(linewidth=2.6, foreground="white")]
+
+
+@contextlib.contextmanager
+def style():
+    """The house style (:data:`STYLE`) for building or saving a figure; a name in a script
+    the font lacks (CJK in DejaVu Sans) is drawn as boxes without a warning per glyph."""
+    with rc_context(STYLE), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Glyph .* missing from", category=UserWarning)
+        yield
 
 
 def plain(text) -> str:

@@ -10,7 +10,6 @@ import math
 import textwrap
 
 import numpy as np
-from matplotlib import rc_context
 
 from locate.draw import kit as mk
 from locate.draw.kit import PALETTE
@@ -97,7 +96,7 @@ def panels_figure(result, *, fix_index=0, correlations=None, file=None):
         elif "correlation" in d and "lags_s" in d:
             curves.setdefault(key, d)
     pred, res = _predicted_delays(result, e, delays, file)
-    with rc_context(mk.STYLE):
+    with mk.style():
         return _compose(e, fix_index, delays, curves, pred, res)
 
 

@@ -21,7 +21,7 @@ import math
 import textwrap
 
 import numpy as np
-from matplotlib import colormaps, rc_context
+from matplotlib import colormaps
 from matplotlib.colors import BoundaryNorm
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Polygon, Rectangle
@@ -313,7 +313,7 @@ def plan_figure(plan_result, site=None, *, width_in=None):
         gid ``"unlocatable"``, markers ``"mic:<name>"``, ``"proposed:<name>"``,
         ``"receiver:<name>"``.
     """
-    with rc_context(mk.STYLE):
+    with mk.style():
         return _compose(plan_result, site, width_in)
 
 

@@ -128,6 +128,9 @@ def _audio_info(ctx, path, field, require_audio, warnings):
         warnings.append(f"{field}: {msg}")
     elif path.is_dir():
         raise ctx.error(field, f"{path} is a folder: give an audio file (WAV or FLAC)")
+    elif not path.is_file():  # a FIFO would wait for a writer forever, a device never ends
+        raise ctx.error(field, f"{path} is not a regular file (a pipe, device or socket): "
+                        "copy the recording to a file and name that")
     else:
         try:
             info = soundfile.info(str(path))

@@ -378,7 +378,9 @@ def text_cell(value) -> str:
     formula gets a leading single quote (OWASP "CSV Injection" guidance).  Numbers written
     by :func:`fixes_csv` are not passed through here and stay numbers (``-3.000``)."""
     text = str(value)
-    return "'" + text if text.startswith(FORMULA_STARTS) else text
+    text = "'" + text if text.startswith(FORMULA_STARTS) else text
+    return text.replace("\r", " ").replace("\n", " ")  # one line per row (a bare CR would
+    # end the row for a reader: the csv module quotes only the line terminator "\n")
 
 
 def fixes_csv(result: dict) -> str:
