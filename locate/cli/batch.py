@@ -51,7 +51,7 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path, output_dir=
     from locate.workflows.batch import SUMMARY_NAME, load_manifest, run_tasks, summary_document
 
     tasks, out_dir = load_manifest(manifest_path, output_dir=output_dir)
-    inputs = [Path(manifest_path)] + sorted({Path(t.site) for t in tasks})
+    inputs = [Path(manifest_path)] + _site_files(tasks)
     given = summary_path
     summary_path = Path(summary_path) if summary_path else out_dir / SUMMARY_NAME
     _check_summary(summary_path, tasks, inputs)
@@ -90,6 +90,21 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path, output_dir=
         raise NothingFoundError(f"{n['failed']} of {len(tasks)} task(s) failed (see above); "
                                 "the others finished: fix the inputs and rerun with --resume")
     return doc
+
+
+def _site_files(tasks):
+    """The site files of the tasks and the files they name (recordings, sketch): inputs no
+    result may overwrite.  A site that does not load is left to its task to report."""
+    from locate.cli.common import load, site_inputs
+
+    files = []
+    for site_path in dict.fromkeys(t.site for t in tasks):
+        files.append(Path(site_path))
+        try:
+            files += site_inputs(load(site_path, require_audio=False))
+        except TdoaError:
+            continue
+    return list(dict.fromkeys(files))
 
 
 def _check_summary(summary_path, tasks, inputs):

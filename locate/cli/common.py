@@ -9,6 +9,7 @@ import functools
 import math
 import re
 import sys
+from pathlib import Path
 
 import click
 import numpy as np
@@ -52,10 +53,24 @@ def announce(ctx, text):
         outputs.after_commit(lambda: echo(ctx, text))
 
 
+FIGURE_SUFFIXES = (".png", ".svg", ".pdf")
+"""What :func:`locate.draw.figures.save_figure` writes."""
+
+FIGURE_OPTIONS = ("--map", "--panels", "--output")
+"""Options that name a figure (``-o/--output`` of ``map`` and ``plan``)."""
+
+
 def check_outputs(outputs, inputs):
     """Before any work: each output's folder exists, no output is an input (after symlinks,
-    ``..`` and hard links) and no two outputs are the same file.  ``outputs``: option->path."""
+    ``..`` and hard links), no two outputs are the same file, and a figure has a suffix it can
+    be written as.  ``outputs``: option -> path."""
     from locate.results.documents import check_output_paths
+    for opt, path in outputs.items():
+        if path is not None and opt in FIGURE_OPTIONS \
+                and Path(path).suffix.lower() not in FIGURE_SUFFIXES:
+            raise OptionError(f"cannot write a figure as "
+                              f"{Path(path).suffix or 'a file without extension'!r}: use one of "
+                              f"{', '.join(FIGURE_SUFFIXES)}", file=str(path), field=opt)
     return check_output_paths(outputs, inputs)
 
 

@@ -392,7 +392,8 @@ def read_image(path, *, file=None, field="sketch.image"):
 
     p = Path(path)
     if not p.is_file():
-        raise SiteFileError(f"site image {str(p)!r} does not exist", file=file, field=field)
+        what = "is not a regular file (a pipe or device)" if p.exists() else "does not exist"
+        raise SiteFileError(f"site image {str(p)!r} {what}", file=file, field=field)
     try:
         img = mpimg.imread(p)
     except Exception as exc:  # decoders raise many kinds (OSError, ValueError, SyntaxError)
@@ -407,8 +408,14 @@ def read_image(path, *, file=None, field="sketch.image"):
 def read_geojson(path, *, to_local=None, file=None, field="sketch.geojson"):
     """Read a GeoJSON file of site features; see :func:`geojson_features`."""
     p = Path(path)
+    if p.exists() and not p.is_file():  # a FIFO would wait for a writer forever
+        raise SiteFileError(f"GeoJSON file {str(p)!r} is not a regular file (a pipe or device)",
+                            file=file, field=field)
     try:
         obj = json.loads(p.read_text(encoding="utf-8"))
+    except RecursionError:
+        raise SiteFileError(f"GeoJSON file {str(p)!r} is nested too deeply to read", file=file,
+                            field=field) from None
     except FileNotFoundError:
         raise SiteFileError(f"GeoJSON file {str(p)!r} does not exist", file=file,
                             field=field) from None

@@ -186,6 +186,67 @@ def test_a_fault_at_any_output_step_leaves_every_earlier_output_as_it_was(earlie
         assert sorted(p.name for p in folder.iterdir()) == names, step  # no temp file
 
 
+def _each_step_interrupted(monkeypatch, args, outs, folder):
+    """Run ``args`` once per output step with a KeyboardInterrupt raised at that step: every
+    output stays as the complete earlier run left it, no temporary file is left."""
+    import locate.common as common
+
+    code, _, err = run(args)
+    assert code == 0, err
+    before = digest(outs)
+    names = sorted(p.name for p in folder.iterdir())
+    real = common.atomic_target
+    for step in range(1, len(outs) + 1):
+        calls = {"n": 0}
+
+        def failing(path, *a, _step=step, _calls=calls, **kw):
+            _calls["n"] += 1
+            if _calls["n"] == _step:
+                raise KeyboardInterrupt()
+            return real(path, *a, **kw)
+
+        monkeypatch.setattr(common, "atomic_target", failing)
+        code, _, err = run(args)
+        monkeypatch.setattr(common, "atomic_target", real)
+        assert code == 130 and calls["n"] == step, (step, err)
+        assert digest(outs) == before, step
+        assert sorted(p.name for p in folder.iterdir()) == names, step
+
+
+def test_sync_plan_and_map_commit_their_outputs_together(earlier, monkeypatch):
+    site, outs = earlier
+    folder = site.parent
+    new_site, cal = folder / "synced.toml", folder / "cal.json"
+    _each_step_interrupted(monkeypatch, ["sync", site, "--at", "14,22,0.5", "--from", "0.2",
+                                         "--to", "0.7", "-o", new_site, "--json", cal],
+                           [new_site, cal], folder)
+    plan_png, plan_json = folder / "plan.png", folder / "plan.json"
+    _each_step_interrupted(monkeypatch, ["plan", site, "-o", plan_png, "--json", plan_json,
+                                         "--grid-step", "5"], [plan_png, plan_json], folder)
+    m, pan = folder / "m.png", folder / "m-panels.svg"
+    _each_step_interrupted(monkeypatch, ["map", site, outs["json"], "-o", m, "--panels", pan],
+                           [m, pan], folder)
+
+
+def test_a_span_too_long_for_memory_is_refused_with_the_limit_stated(scene, monkeypatch):
+    import locate.io.audio as audio
+
+    monkeypatch.setattr(audio, "_memory_bytes", lambda: 4.0e5)  # a machine of 400 kB
+    line = _one_line_error(*run(["fix", scene, "--from", "0.0", "--to", "1.2"])[::2])
+    assert "GB to hold" in line and "shorter span" in line and "rec.wav" in line, line
+
+
+def test_a_batch_result_never_lands_on_a_recording(scene, tmp_path):
+    site = _copy_scene(scene, tmp_path)
+    before = digest([site, tmp_path / "rec.wav"])
+    manifest = _manifest(tmp_path, f'[[task]]\nname = "a"\nsite = "{site.name}"\n'
+                         'command = "fix"\nfrom = 0.2\nto = 0.7\noutput = "rec.wav"\n',
+                         'output_dir = "."')
+    line = _one_line_error(*run(["batch", manifest, "--jobs", "1"])[::2])
+    assert "rec.wav" in line and "input" in line, line
+    assert digest([site, tmp_path / "rec.wav"]) == before
+
+
 def test_a_full_disk_in_a_child_process_is_one_line_and_keeps_the_earlier_outputs(earlier):
     # RLIMIT_FSIZE: a write past the limit fails with EFBIG (Python ignores SIGXFSZ): the
     # portable stand-in for a full disk (POSIX setrlimit).  The map is far above 8 kB.
