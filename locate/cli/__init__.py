@@ -13,6 +13,8 @@ registers the commands and is the console entry point.  Nothing in :mod:`locate`
 
 from __future__ import annotations
 
+import contextlib
+import os
 import sys
 import traceback
 
@@ -21,7 +23,7 @@ import click
 from locate import __version__
 from locate.cli.batch import batch
 from locate.cli.check import check
-from locate.cli.common import as_options, os_error_line
+from locate.cli.common import as_options, os_error_line, printable
 from locate.cli.demo import demo
 from locate.cli.events import events
 from locate.cli.fix import fix
@@ -69,11 +71,12 @@ def main(argv=None):
     def fail(line, code):
         if debug:
             traceback.print_exc()
-        click.echo(f"tdoa: error: {line}", err=True)
+        click.echo(printable(f"tdoa: error: {line}"), err=True)
         sys.exit(code)
 
     try:
         cli.main(args=args, prog_name="tdoa", standalone_mode=False)
+        sys.stdout.flush()  # a reader that went away shows here, not at interpreter exit
     except click.exceptions.Abort as exc:
         click.echo("tdoa: interrupted; no partial result was written", err=True)
         sys.exit(143 if type(exc.__cause__).__name__ == "Terminated" else 130)
@@ -91,6 +94,9 @@ def main(argv=None):
         sys.exit(143 if type(exc).__name__ == "Terminated" else 130)
     except click.exceptions.Exit as exc:
         sys.exit(exc.exit_code)
+    except BrokenPipeError:  # the reader went away (tdoa check ... | head): stop quietly
+        _quiet_stdout()
+        sys.exit(1)
     except OSError as exc:
         line, code = os_error_line(exc)
         fail(line, code)
@@ -106,6 +112,12 @@ def main(argv=None):
         fail(f"internal error: {type(exc).__name__}: {_first_line(exc)} (run with --debug "
              "for the traceback and report it)", 1)
     sys.exit(0)
+
+
+def _quiet_stdout():
+    """Point stdout at /dev/null so that the interpreter's last flush cannot fail again."""
+    with contextlib.suppress(OSError, ValueError, AttributeError):
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
 
 
 def _first_line(exc) -> str:

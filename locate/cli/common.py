@@ -96,13 +96,36 @@ def check_band(band, sample_rate_hz):
                           f"{sample_rate_hz / 2:g} Hz of the recordings", field="--band")
 
 
+def printable(text) -> str:
+    """``text`` that any terminal encoding can take: a file name that is not valid UTF-8
+    (surrogate escapes) is shown with replacement characters instead of failing to print."""
+    text = str(text)
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        text = text.encode("utf-8", "surrogateescape").decode("utf-8", "replace")
+    return text
+
+
 def echo(ctx, text="", **kw):
     if not ctx.obj.get("quiet"):
-        click.echo(text, **kw)
+        click.echo(printable(text), **kw)
 
 
 def warn(message):
-    click.echo(f"tdoa: warning: {message}", err=True)
+    click.echo(printable(f"tdoa: warning: {message}"), err=True)
+
+
+def check_sketch(site):
+    """Read the site's sketch image and GeoJSON now, before any work, when a map is asked
+    for: a damaged one is refused before the fix, not after it."""
+    if getattr(site, "sketch", None) is None:
+        return
+    from locate.draw.figures import _wgs84_to_local
+    from locate.io.sketch import load_sketch
+
+    to_local = _wgs84_to_local(site) if site.coordinates == "wgs84" else None
+    load_sketch(site.sketch, file=site.path, to_local=to_local)
 
 
 def progress_bar(ctx, length, label):

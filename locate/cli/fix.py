@@ -10,6 +10,7 @@ from locate.cli.common import (
     announce,
     check_band,
     check_outputs,
+    check_sketch,
     check_span_args,
     draw_panels,
     echo,
@@ -77,6 +78,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     inputs = site_inputs(site)
     check_outputs({"--json": json_path, "--csv": csv_path, "--map": map_path,
                    "--panels": panels_path, "--geojson": geojson_path}, inputs)
+    if map_path:
+        check_sketch(site)
     choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
                                      solve_wind=solve_wind, events_choice=events_choice,
                                      start_s=start_s, dims=dims)

@@ -10,6 +10,7 @@ from locate.cli.common import (
     announce,
     check_band,
     check_outputs,
+    check_sketch,
     check_span_args,
     draw_map,
     echo,
@@ -67,6 +68,8 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     tone_hz = None if tone is None else ("auto" if tone == "auto" else _float(tone, "--tone"))
     site = load(site_path, dims)
     check_outputs({"--json": json_path, "--map": map_path}, site_inputs(site))
+    if map_path:
+        check_sketch(site)
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)

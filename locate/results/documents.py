@@ -75,6 +75,9 @@ def check_output_path(path, inputs=(), *, option="--json"):
     if p.is_dir():
         raise OptionError("is a folder: give a file name for the output", file=str(p),
                           field=option)
+    if p.exists() and not p.is_file():  # renaming over a device or pipe would replace it
+        raise OptionError("is a device, pipe or socket, not a file: give a file name for the "
+                          "output", file=str(p), field=option)
     for inp in inputs:
         if inp is not None and same_file(p, inp):
             raise OptionError(f"this is one of the input files ({inp}): choose another output "
@@ -184,6 +187,9 @@ def _finite(v, where, p, *, optional=False):
                               "or damaged; make it again with tdoa", file=p, field=where)
 
 
+MAX_POSITION_M = 1e8  # farther than this from the site's origin is no position on Earth
+
+
 def _vector(v, where, p, *, optional=False):
     if v is None and optional:
         return
@@ -192,6 +198,10 @@ def _vector(v, where, p, *, optional=False):
                               field=where)
     for k, c in enumerate(v):
         _finite(c, f"{where}[{k}]", p)
+        if abs(c) > MAX_POSITION_M:
+            raise ResultFileError(f"{c:g} m is no position on Earth (more than "
+                                  f"{MAX_POSITION_M:g} m from the site's origin): the file was "
+                                  "edited or damaged", file=p, field=f"{where}[{k}]")
 
 
 def _shown(v) -> str:

@@ -25,6 +25,7 @@ Faults injected here:
 from __future__ import annotations
 
 import csv
+import errno
 import io
 import json
 import os
@@ -153,7 +154,15 @@ def earlier(scene, tmp_path):
     return site, outs
 
 
-@pytest.mark.parametrize("fault", [KeyboardInterrupt, OSError])
+# errno values and strerror texts of Linux (errno(3)); the advice words are ours
+OS_FAULTS = [(errno.ENOSPC, "No space left on device", "disk is full"),
+             (errno.EROFS, "Read-only file system", "read-only"),
+             (errno.EACCES, "Permission denied", "permission"),
+             (errno.EFBIG, "File too large", "file size limit")]
+
+
+@pytest.mark.parametrize("fault", [None, *OS_FAULTS], ids=["interrupt", "ENOSPC", "EROFS",
+                                                           "EACCES", "EFBIG"])
 def test_a_fault_at_any_output_step_leaves_every_earlier_output_as_it_was(earlier, monkeypatch,
                                                                           fault):
     import locate.common as common
@@ -169,18 +178,20 @@ def test_a_fault_at_any_output_step_leaves_every_earlier_output_as_it_was(earlie
         def failing(path, *a, _step=step, _calls=calls, **kw):
             _calls["n"] += 1
             if _calls["n"] == _step:
-                raise fault(28, "No space left on device", str(path)) \
-                    if fault is OSError else fault()
+                if fault is None:
+                    raise KeyboardInterrupt()
+                raise OSError(fault[0], fault[1], str(path))
             return real(path, *a, **kw)
 
         monkeypatch.setattr(common, "atomic_target", failing)
         code, out, err = run(_fix_args(site, **outs))
         assert calls["n"] == step, (step, calls)  # the fault came at this output step
-        if fault is KeyboardInterrupt:
+        if fault is None:
             assert code == 130 and "interrupted" in err, err
         else:
             line = _one_line_error(code, err)
-            assert "No space left on device" in line and "disk is full" in line, line
+            assert fault[1] in line and fault[2] in line, line
+            assert any(str(p) in line for p in outs.values()), line  # the file is named
         assert "written to" not in out  # nothing announced that did not happen
         assert digest([site, folder / "rec.wav", *outs.values()]) == before, step
         assert sorted(p.name for p in folder.iterdir()) == names, step  # no temp file
@@ -615,3 +626,46 @@ def test_sigterm_stops_a_batch_kills_its_workers_and_resume_finishes(tmp_path):
     assert code in (0, 1), err  # noise only: events may find nothing (exit 1)
     assert f"{len(kept)} skipped" in stdout
     assert len(list(out.glob("scan-*.json"))) == 6
+
+
+# --------------------------------------------------------------------- more odd paths
+
+def test_an_output_that_is_a_pipe_or_device_is_refused(earlier, tmp_path):
+    site, _ = earlier
+    fifo = tmp_path / "out.json"
+    os.mkfifo(fifo)
+    line = _one_line_error(*run(_fix_args(site, json=fifo))[::2])
+    assert "device, pipe or socket" in line and "--json" in line, line
+    assert not fifo.is_file() and fifo.exists()  # still the FIFO it was
+
+
+def test_a_damaged_sketch_layer_is_refused_before_the_fix(earlier):
+    site, outs = earlier
+    (site.parent / "layer.geojson").write_text('{"type": "FeatureCollection", "features": [')
+    site.write_text(site.read_text() + '\n[sketch]\ngeojson = "layer.geojson"\n')
+    before = digest(outs.values())
+    line = _one_line_error(*run(_fix_args(site, **outs))[::2])
+    assert "layer.geojson" in line, line
+    assert digest(outs.values()) == before
+
+
+def test_a_file_name_that_is_not_utf8_and_a_closed_pipe_give_no_traceback(earlier, tmp_path):
+    site, _ = earlier
+    name = os.fsdecode(b"r\xff\xfe.json")  # bytes no UTF-8 decoder takes (surrogate escapes)
+    env = dict(os.environ, PYTHONPATH=str(REPO), LC_ALL="C.UTF-8", PYTHONIOENCODING="utf-8")
+    proc = subprocess.run([sys.executable, "-m", "locate", *map(str, _fix_args(site)),
+                           "--json", os.fsencode(tmp_path / name)], env=env,
+                          capture_output=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    assert b"Traceback" not in proc.stderr
+    assert (tmp_path / name).is_file()
+    assert b"Result written to" in proc.stdout
+    # the reader of stdout goes away before tdoa writes (tdoa check ... | head -0)
+    proc = subprocess.Popen([sys.executable, "-m", "locate", "check", str(site)], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()
+    with proc.stderr:
+        err = proc.stderr.read()
+    proc.wait(timeout=120)
+    assert b"Traceback" not in err and b"Exception ignored" not in err, err
+    assert b"error" not in err and proc.returncode == 1, err  # stopped quietly
