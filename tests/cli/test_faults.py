@@ -447,18 +447,18 @@ def test_ogg_audio_in_a_wav_file_is_named(scene, tmp_path):
 
 
 def test_a_truncated_flac_is_one_line_naming_the_file(scene, tmp_path):
+    # a copy cut in half: libsndfile reads the header's length, then "flac decoder lost sync"
     x, fs = soundfile.read(scene.parent / "rec.wav", always_2d=True)
     flac = tmp_path / "rec.flac"
     soundfile.write(flac, np.tile(x, (8, 1)) * 0.5, fs, subtype="PCM_16")
     data = flac.read_bytes()
-    flac.write_bytes(data[: len(data) // 2] + bytes(range(256)) * 64)  # cut and garbled
+    flac.write_bytes(data[: len(data) // 2])
     site = tmp_path / "site.toml"
     site.write_text(scene.read_text().replace("rec.wav", "rec.flac"))
-    code, _, err = run(["fix", site, "--from", "0.2", "--to", "9.0", "--source-z", "0.5"])
-    assert "Traceback" not in err
-    if code != 0:  # libsndfile may also read the garbage as audio: then no error at all
-        line = _one_line_error(code, err, want=code)
-        assert code in (1, 2) and ("rec.flac" in line or "span" in line), line
+    for args in (["fix", site, "--from", "0.2", "--to", "9.0", "--source-z", "0.5"],
+                 ["check", site]):
+        line = _one_line_error(*run(args)[::2])
+        assert "rec.flac" in line and "could not decode" in line and "damaged" in line, line
 
 
 def test_a_mic_is_silent_only_if_it_is_zero_over_the_whole_span_read(tmp_path):
