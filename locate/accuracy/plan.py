@@ -34,7 +34,7 @@ from matplotlib.path import Path as _MplPath
 
 from locate.accuracy.timing import TimingModel, timing_model
 from locate.errors import OptionError
-from locate.geometry.ellipses import chi2_scale
+from locate.geometry.ellipses import ellipse_arrays
 from locate.physics.air import travel_time_gradient
 
 __all__ = [
@@ -111,18 +111,12 @@ def _ellipse_batch(info, probability, limit_m):
         ok = np.isfinite(cond) & (cond <= CONDITION_LIMIT) & (hi > 0)
         inv_lam = np.where(ok[..., None], 1.0 / np.where(lam > 0, lam, 1.0), np.nan)
     cov = np.einsum("...ik,...k,...jk->...ij", vec[..., :2, :], inv_lam, vec[..., :2, :])
-    a, b, d = cov[..., 0, 0], cov[..., 0, 1], cov[..., 1, 1]
-    half = np.sqrt(0.25 * (a - d) ** 2 + b**2)
-    big, small = 0.5 * (a + d) + half, np.clip(0.5 * (a + d) - half, 0.0, None)
-    k = chi2_scale(probability, 2)  # chi-square quantile, 2 dof (scipy.stats.chi2)
-    major = np.sqrt(k * big)
-    theta = 0.5 * np.degrees(np.arctan2(2.0 * b, a - d))  # major axis, ccw from +x
-    azimuth = (90.0 - theta) % 180.0
-    locatable = ok & (major <= limit_m)
+    e = ellipse_arrays(cov, probability)
+    major = e["semi_major_m"]
     return {"semi_major_m": np.where(ok, major, np.inf),
-            "semi_minor_m": np.where(ok, np.sqrt(k * small), np.inf),
-            "azimuth_deg": np.where(ok, azimuth, np.nan), "condition": cond,
-            "locatable": locatable, "covariance_m2": cov}
+            "semi_minor_m": np.where(ok, e["semi_minor_m"], np.inf),
+            "azimuth_deg": np.where(ok, e["azimuth_deg"], np.nan), "condition": cond,
+            "locatable": ok & (major <= limit_m), "covariance_m2": cov}
 
 
 def expected_ellipses(points_m, mic_positions_m, *, sound_speed_mps, timing=None,

@@ -24,7 +24,12 @@ from locate.accuracy import plan as pl
 from locate.accuracy.timing import TimingModel, timing_model
 from locate.errors import OptionError, SiteFileError
 
-__all__ = ["PlanResult", "plan_site", "site_candidates", "site_region_outline"]
+__all__ = ["PlanResult", "plan_site", "site_candidates", "site_region_outline",
+           "DEFAULT_TIMING_SD_S"]
+
+DEFAULT_TIMING_SD_S = 2e-5
+"""Arrival-time sd per mic assumed when neither a timing nor a band is given (a clean,
+broadband sound at good SNR; common practice for planning)."""
 
 _CANDIDATE_KEYS = {"local": ("name", "x", "y", "z"), "wgs84": ("name", "lat", "lon", "alt")}
 _GRID_CELLS = 200  # default map resolution: cells along the longer side

@@ -51,18 +51,9 @@ def progress_bar(ctx, length, label):
     show = sys.stderr.isatty() and not ctx.obj.get("quiet")
     if show:
         return click.progressbar(length=max(int(length), 1), label=label, file=sys.stderr)
+    from locate.workflows.locating import no_progress
 
-    class _Quiet:
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return False
-
-        def update(self, n):
-            pass
-
-    return _Quiet()
+    return no_progress(label, length)
 
 
 def load(site_path, dims=2, require_audio=True):
@@ -159,11 +150,6 @@ def print_fixes(ctx, site, cond, result):
             warn(f"#{k}: {w}")
 
 
-def same_shape(message):
-    """A warning with its numbers blanked: the same note about other figures compares equal."""
-    return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
-
-
 
 
 fmt_length = format_length  # the package's one length formatter
@@ -183,17 +169,6 @@ def draw_panels(result, path):
 
 def fmt_db(v):
     return "  --" if v is None else f"{v:.1f}"
-
-
-def check_same_site(site, result, result_path):
-    from locate.errors import ResultFileError
-    names = [m.get("name") for m in result.get("mics", [])]
-    if names and names != site.mic_names:
-        raise ResultFileError(f"its mics ({', '.join(map(str, names))}) are not this site's "
-                              f"({', '.join(site.mic_names)}): was it made from another site "
-                              "file?", file=result_path, field="mics")
-    from locate.results.documents import check_mic_positions
-    check_mic_positions(site, result, result_path)
 
 
 OPTION_OF = {

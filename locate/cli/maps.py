@@ -144,9 +144,8 @@ def _print_track(ctx, site, cond, doc, bearing_from_name):
 @click.pass_context
 def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
     """Draw a fix or track result over the site sketch."""
-    from locate.cli.common import check_same_site
     from locate.draw import figures as plot
-    from locate.results.documents import check_output_path, read_result
+    from locate.results.documents import check_output_path, check_same_site, read_result
 
     site = load(site_path)
     for p, opt in ((out_path, "--output"), (panels_path, "--panels")):

@@ -43,7 +43,7 @@ from locate.errors import OptionError
 def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,
          grid_step_m, extent, candidates, region, objective, n_propose, dims, source_z_m):
     """Expected 95 % ellipse size over the site for the mic layout; best next mic(s)."""
-    from locate.accuracy.plan_site import plan_site
+    from locate.accuracy.plan_site import DEFAULT_TIMING_SD_S, plan_site
     from locate.results.documents import check_output_path, write_json
 
     band_hz = parse_band(band)
@@ -59,9 +59,9 @@ def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duratio
             raise OptionError(f"{extent!r} is not X0:X1:Y0:Y1 with X0 < X1 and Y0 < Y1",
                               field="--extent") from None
     if timing_sd_s is None and band_hz is None:
-        timing_sd_s = 2e-5
-        echo(ctx, "No timing given: assuming 20 us per mic (use --timing-sd or "
-                  "--band/--snr/--duration).")
+        timing_sd_s = DEFAULT_TIMING_SD_S
+        echo(ctx, f"No timing given: assuming {timing_sd_s * 1e6:g} µs per mic (use "
+                  "--timing-sd or --band/--snr/--duration).")
     res = plan_site(site, timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
                     duration_s=duration_s, grid_step_m=grid_step_m, extent_m=ext,
                     candidates=None if candidates == "none" else candidates, region=region,

@@ -39,6 +39,7 @@ from locate.draw.parts import (
     zoom_panel,
 )
 from locate.errors import OptionError, ResultFileError
+from locate.geometry import frames as geo
 
 __all__ = ["PALETTE", "SCHEMA", "ellipse_axes", "check_result", "draw_map", "map_figure",
            "panels_figure", "save_figure"]
@@ -425,16 +426,10 @@ def map_figure(site, result, *, warnings=None, **kwargs):
 
 
 def _wgs84_to_local(site):
-    """``(lon, lat) -> (x, y)`` for GeoJSON on a wgs84 site, via :mod:`locate.geometry.frames` if
-    present."""
-    try:
-        from locate.geometry import frames as geo
-    except ImportError:
+    """``(lon, lat) -> (x, y)`` for GeoJSON on a wgs84 site (:func:`geo.lonlat_to_local`)."""
+    if getattr(site, "origin_wgs84", None) is None:
         return None
-    fn = getattr(geo, "lonlat_to_local", None)
-    if fn is None or getattr(site, "origin_wgs84", None) is None:
-        return None
-    return lambda lon, lat: fn(lon, lat, site.origin_wgs84)
+    return lambda lon, lat: geo.lonlat_to_local(lon, lat, site.origin_wgs84)
 
 
 def panels_figure(result, **kwargs):

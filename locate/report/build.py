@@ -22,10 +22,10 @@ from pathlib import Path
 import numpy as np
 
 from locate import __version__
-from locate.errors import OptionError, ResultFileError, SiteFileError, TdoaError
+from locate.errors import OptionError, SiteFileError, TdoaError
 from locate.report import context as rc
 from locate.report import format as rf
-from locate.results.documents import check_mic_positions, mic_moves_m
+from locate.results.documents import check_same_site, check_schema
 
 __all__ = ["KINDS", "SECTIONS", "build_report", "make_report", "check_same_site",
            "recordings_info"]
@@ -40,57 +40,10 @@ TITLES = {"summary": "At a glance", "setup": "Survey set-up", "maps": "Site maps
           "results": "Results", "levels": "Sound levels and receiver predictions",
           "budget": "Uncertainty budget", "methods": "Methods", "cautions": "Cautions and limits"}
 
-SAME_PLACE_M = 0.01  # mic moved by more than this between the result and the site: say so
-
 _TEMPLATES = Path(__file__).resolve().parent / "templates"
 
 
 # ------------------------------------------------------------------------------- checks
-
-def check_same_site(site, result, label):
-    """Refuse a result made from another site file (its mic names differ from the site's).
-
-    Returns
-    -------
-    list of str
-        Notes for the report when the names agree but mics moved (re-surveyed since).
-
-    Raises
-    ------
-    locate.errors.ResultFileError
-        Naming the result file and the field ``mics``.
-    """
-    mics = result.get("mics")
-    if not isinstance(mics, list) or not mics:
-        return [f"{label} does not list its mics: it could not be checked against the site "
-                "file"]
-    names = [str(m.get("name")) if isinstance(m, dict) else str(m) for m in mics]
-    if names != site.mic_names:
-        missing = [n for n in site.mic_names if n not in names]
-        extra = [n for n in names if n not in site.mic_names]
-        if not extra and not missing:
-            detail = "; the same names in another order"
-        elif len(extra) < len(names):
-            detail = "; " + "; ".join(p for p in (
-                f"not in the site: {', '.join(extra)}" if extra else "",
-                f"not in the result: {', '.join(missing)}" if missing else "") if p)
-        else:
-            detail = ""
-        raise ResultFileError(f"its mics ({', '.join(names)}) are not those of the site file "
-                              f"{site.path.name} ({', '.join(site.mic_names)}{detail}): was "
-                              "it made from another site?", file=label, field="mics")
-    notes = []
-    check_mic_positions(site, result, label)
-    moved = mic_moves_m(site, result)
-    if moved is None:
-        return notes
-    if np.nanmax(moved) > SAME_PLACE_M:
-        k = int(np.nanargmax(moved))
-        notes.append(f"{label} was computed with mic positions that differ from the site file "
-                     f"by up to {rf.length(moved[k])} (mic {names[k]}): the site file was "
-                     "edited after the result was made")
-    return notes
-
 
 def _check_images(site):
     """The site's sketch image and GeoJSON must exist: a report without them would mislead."""
@@ -102,14 +55,6 @@ def _check_images(site):
             raise SiteFileError(f"the site image {str(path)!r} is missing: restore it, or "
                                 f"remove {field.split('.')[1]} from [sketch], before making a "
                                 "report", file=site.path, field=field)
-
-
-def _check_result(result, label):
-    if not isinstance(result, dict) or result.get("schema") != "tdoa-result/1":
-        raise ResultFileError("not a tdoa-result/1 result", file=label, field="schema")
-    if result.get("kind") not in KINDS:
-        raise ResultFileError(f"kind is {result.get('kind')!r}; a report shows "
-                              + ", ".join(repr(k) for k in KINDS), file=label, field="kind")
 
 
 # ------------------------------------------------------------------------------- figures
@@ -247,7 +192,7 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
                for r, lab in zip(results, labels, strict=True)]
     notes = []
     for r, lab in zip(results, labels, strict=True):
-        _check_result(r, lab)
+        check_schema(r, file=lab, kinds=KINDS, reader="a report")
         notes += check_same_site(site, r, lab)
     _check_images(site)
 
