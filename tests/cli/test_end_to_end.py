@@ -78,3 +78,31 @@ source_z = 0.8
     b = np.array([p["position_m"] for p in direct["track"]["points"]])
     assert a.shape == b.shape and np.allclose(a, b, atol=1e-9)
     assert batch_doc["batch_task"]["name"] == "van"
+
+
+@pytest.mark.slow
+def test_tdoa_demo_runs_from_an_installed_wheel_in_an_empty_folder(tmp_path):
+    # a pip user has no checkout: the demo must come with the package (package data)
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    repo = Path(__file__).resolve().parents[2]
+    wheels, target, empty = tmp_path / "wheels", tmp_path / "site", tmp_path / "empty"
+    empty.mkdir()
+    pip = [sys.executable, "-m", "pip", "-q", "--disable-pip-version-check"]
+    subprocess.run(pip + ["wheel", "--no-deps", "-w", str(wheels),
+                          str(repo)], check=True, capture_output=True)
+    wheel = next(wheels.glob("*.whl"))
+    subprocess.run(pip + ["install", "--no-deps", "--target", str(target), str(wheel)],
+                   check=True, capture_output=True)
+    env = {"PYTHONPATH": str(target), "PATH": "/usr/bin:/bin", "HOME": str(tmp_path),
+           "MPLBACKEND": "Agg"}
+    where = subprocess.run([sys.executable, "-c", "import locate; print(locate.__file__)"],
+                           cwd=empty, env=env, capture_output=True, text=True, check=True)
+    assert where.stdout.startswith(str(target))  # the installed copy, not the checkout
+    res = subprocess.run([sys.executable, "-m", "locate", "-q", "demo", "out"], cwd=empty,
+                         env=env, capture_output=True, text=True)
+    assert res.returncode == 0, res.stderr
+    assert (empty / "out" / "yard-fix.json").is_file()
+    assert (empty / "out" / "report.html").is_file()
