@@ -148,6 +148,7 @@ class PlanResult:
     region_before: tuple | None = None  # (unlocatable count, metric m)
     receiver_ellipses: list = field(default_factory=list)
     warnings: list = field(default_factory=list)
+    target_given: bool = False  # the limit is the user's target, not the map's size
 
     @property
     def locatable_fraction(self) -> float:
@@ -172,7 +173,7 @@ class PlanResult:
             "timing": self.timing.to_dict(), "warnings": list(self.warnings),
             "mics": [{"name": n, "position_m": [float(v) for v in p]}
                      for n, p in zip(self.mic_names, self.mic_positions_m, strict=True)],
-            "limit_m": float(g["max_semi_major_m"]),
+            "limit_m": float(g["max_semi_major_m"]), "target_given": self.target_given,
             "locatable_fraction": self.locatable_fraction,
             "grid": {"x_m": [float(v) for v in g["xs_m"]], "y_m": [float(v) for v in g["ys_m"]],
                      "semi_major_m": field_(sig(g["semi_major_m"]), 9),
@@ -338,7 +339,8 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
                                                      site.receivers],
                      grid=grid, timing=tm, dims=dims, source_z_m=float(source_z_m),
                      probability=float(probability), sound_speed_mps=c, extent_m=extent,
-                     objective=objective, receiver_ellipses=rec_e, warnings=list(site.warnings))
+                     objective=objective, receiver_ellipses=rec_e, warnings=list(site.warnings),
+                     target_given=max_semi_major_m is not None)
     frac = 1.0 - res.locatable_fraction
     if frac >= 0.005:
         res.warnings.append(f"{100 * frac:.0f} % of the mapped area cannot be located")
@@ -349,7 +351,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
         x0c, x1c, y0c, y1c = _extent(pos, [rec_pos, outline, reg_arr], None, pad_frac=0.1,
                                      pad_min_m=5.0)
         cand = pl.candidate_grid((x0c, x1c, y0c, y1c), z_m=z_mic, avoid_m=pos)
-        cand_names = [f"G{k + 1}" for k in range(len(cand))]
+        cand_names = [f"({c[0]:.0f}, {c[1]:.0f})" for c in cand]  # named by where it stands
     region = "auto" if region is None else region
     if reg_arr is not None:
         kind, pts = "given", reg_arr
