@@ -42,6 +42,12 @@ TITLES = {"summary": "At a glance", "setup": "Survey set-up", "maps": "Site maps
 
 _TEMPLATES = Path(__file__).resolve().parent / "templates"
 
+REPORT_LABELS = {"client": "Client", "site_address": "Site address",
+                 "job_reference": "Job reference", "author": "Prepared by",
+                 "checked_by": "Checked by", "survey_dates": "Survey dates",
+                 "revision": "Revision"}
+"""Title-block labels of the site file's ``[report]`` fields, in page order."""
+
 
 # ------------------------------------------------------------------------------- checks
 
@@ -225,6 +231,8 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
         "title": title or site.title,
         "site_title": site.title,
         "site_file": site.path.name,
+        "title_block": [{"label": REPORT_LABELS[k], "value": v}
+                        for k, v in getattr(site, "report", {}).items()],
         "generated": generated or datetime.date.today().isoformat(),
         "version": __version__,
         "inputs": [{"file": r["_label"], "kind": r["kind"],
