@@ -140,7 +140,7 @@ def print_fixes(ctx, site, cond, result):
         echo(ctx, f"#{k} heard at {f['t_s']:.3f} s  ->  x {x:.2f} m, y {y:.2f} m, {height}")
         echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} x "
                   f"{fmt_length(e['semi_minor_m'])} "
-                  f"(half-axes), long axis toward {e['azimuth_deg']:.0f} deg; timing residual "
+                  f"(half-axes), long axis {e['azimuth_deg']:.0f}° from north; timing residual "
                   f"{f['residual_rms_s'] * 1e6:.1f} us; mics used {' '.join(f['used_mics'])}"
                   + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
         if f.get("uncertainty_budget"):

@@ -104,7 +104,7 @@ def _mics_out(entries, shown, key):
 
 def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), barriers=(),
              air=None, wind_mps=None, title=None, caption=None, fix_index=None,
-             hyperbolae=None, zoom=None, width_in=8.0, file=None):
+             hyperbolae=None, zoom=None, width_in=8.0, file=None, caption_in_figure=True):
     """Draw a fix or track result on a map of the site.
 
     Parameters
@@ -142,6 +142,9 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
         Figure width, inches.
     file : path, optional
         The result file, named in errors.
+    caption_in_figure : bool
+        Print the caption under the map (a report prints it as the figure's caption
+        instead).  Either way the text is kept as ``fig.tdoa_caption``.
 
     Returns
     -------
@@ -169,14 +172,15 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
                           f"{len(entries)}", field="fix_index")
     with rc_context(mk.STYLE):
         return _compose(names, mics, result, entries, sketch, receivers, barriers, air,
-                        wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file)
+                        wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file,
+                        caption_in_figure)
 
 
 MANY_FIXES = 40  # above this many fixes on one map (a sweep), fixes are drawn as dots
 
 
 def _compose(names, mics, result, entries, sketch, receivers, barriers, air, wind_mps, title,
-             caption, fix_index, hyperbolae, zoom, width_in, file):
+             caption, fix_index, hyperbolae, zoom, width_in, file, caption_in_figure=True):
     kind = result["kind"]
     shown = [fix_index] if fix_index is not None else list(range(len(entries)))
     c = result.get("sound_speed_mps")
@@ -195,7 +199,7 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
              for k in ell_of]
     x0, x1, y0, y1, clipped = mk.fit_view(np.vstack(core), boxes)
     view = (x0, x1, y0, y1)
-    left_in, top_in, bottom_in = 0.6, 0.55, 0.95
+    left_in, top_in, bottom_in = 0.6, 0.55, 0.95 if caption_in_figure else 0.45
     map_w = width_in * 0.68
     map_h = map_w * (y1 - y0) / (x1 - x0)
     fig_h = round(map_h + top_in + bottom_in, 2)  # whole pixels at 100, 150 and 300 dpi
@@ -292,7 +296,7 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
                             dist_pt=5, fontsize=8, fontweight="bold", color=color)
     if len(lines) <= 15:
         for cs, text, at in lines:
-            lab.line_label([p.vertices for p in cs.get_paths()], text, at, fontsize=6.8,
+            lab.line_label([p.vertices for p in cs.get_paths()], text, at, fontsize=7.0,
                            color=PALETTE["hyperbola_text"])
 
     # ---- side column and caption
@@ -316,9 +320,12 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     words = _caption_words(air, result, c, [entries[k] for k in shown], kind) + notes
     if caption:
         words.append(caption)
-    text = "\n".join(textwrap.wrap("; ".join(words) + ".", 140))
-    fig.text(left_in / width_in, 0.42 / fig_h, text[0].upper() + text[1:], ha="left",
-             va="top", fontsize=7.2, color=PALETTE["note"], linespacing=1.3)
+    sentence = "; ".join(words) + "."
+    fig.tdoa_caption = sentence[0].upper() + sentence[1:]
+    if caption_in_figure:
+        text = "\n".join(textwrap.wrap(fig.tdoa_caption, 140))
+        fig.text(left_in / width_in, 0.42 / fig_h, text, ha="left", va="top", fontsize=7.2,
+                 color=PALETTE["note"], linespacing=1.3)
     return fig
 
 

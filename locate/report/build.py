@@ -69,14 +69,28 @@ def _data_uri(png: bytes) -> str:
     return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
 
 
-def _map_png(site, result, notes) -> bytes:
+PRINT_WIDTH_IN = 7.1
+"""Width of the text block on an A4 page (210 mm less 2 x 14 mm margins, report.css), inches:
+report figures are drawn at this width so their fonts print at their nominal size."""
+
+
+def map_figure_for_print(site, result, notes):
+    """The site map as the report prints it: drawn at the page's text width, the caption
+    left for the page (``fig.tdoa_caption``)."""
     from locate.draw import figures as plot
 
-    fig = plot.map_figure(site, result, warnings=notes)
+    return plot.map_figure(site, result, warnings=notes, width_in=PRINT_WIDTH_IN,
+                           caption_in_figure=False)
+
+
+def _map_png(site, result, notes) -> tuple[bytes, str]:
+    from locate.draw import figures as plot
+
+    fig = map_figure_for_print(site, result, notes)
     with tempfile.TemporaryDirectory(prefix="tdoa-report-") as tmp:
         path = Path(tmp) / "map.png"
-        plot.save_figure(fig, path, dpi=150)
-        return path.read_bytes()
+        plot.save_figure(fig, path, dpi=200)
+        return path.read_bytes(), fig.tdoa_caption
 
 
 def _map_alt(site, result):
@@ -157,7 +171,7 @@ def _environment():
 
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(_TEMPLATES)), autoescape=True,
                              trim_blocks=True, lstrip_blocks=True,
-                             undefined=jinja2.StrictUndefined)
+                             undefined=jinja2.StrictUndefined, finalize=rf.client_words)
     return env
 
 
@@ -209,8 +223,9 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
                        if r["kind"] == "track" else
                        "Where the sounds came from: the located positions and their ellipses "
                        "among the microphones") + (" and receivers" if site.receivers else "")
-            maps.append({"src": _data_uri(_map_png(site, r, notes)), "alt": _map_alt(site, r),
-                         "caption": caption, "label": r["_label"]})
+            png, details = _map_png(site, r, notes)
+            maps.append({"src": _data_uri(png), "alt": _map_alt(site, r),
+                         "caption": caption, "details": details, "label": r["_label"]})
     fix_sets = [rc.fix_section(r, site) for r in results if r["kind"] == "fix"]
     tracks = [rc.track_section(r, site) for r in results if r["kind"] == "track"]
     levels = []
