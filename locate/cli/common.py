@@ -5,11 +5,11 @@ Nothing here computes: the commands call :mod:`locate.workflows` and the core.
 
 from __future__ import annotations
 
+import math
 import re
 import sys
 
 import click
-import numpy as np
 
 from locate.common import format_length
 from locate.errors import OptionError, TdoaError
@@ -25,7 +25,7 @@ def parse_band(value):
     except ValueError:
         raise OptionError(f"{value!r} is not LO:HI in Hz (e.g. 100:4000)",
                           field="--band") from None
-    if not (np.isfinite(lo) and np.isfinite(hi)) or lo < 0 or hi <= lo:
+    if not (math.isfinite(lo) and math.isfinite(hi)) or lo < 0 or hi <= lo:
         raise OptionError(f"{value!r}: the low edge must be >= 0 and below the high edge",
                           field="--band")
     return lo, hi

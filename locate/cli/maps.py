@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import click
-import numpy as np
 
 from locate.cli.common import (
     check_band,
@@ -83,7 +82,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
                               cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
                               hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,
                               wind_mps=cond.wind_mps, model=model, segment_s=segment_s,
-                              expected_speed_mps=speed_guess_mps, points_m=np.array(points),
+                              expected_speed_mps=speed_guess_mps, points_m=points,
                               bearing_from_m=bearing_from, tone_hz=tone_hz, progress=progress)
     doc = track_to_dict(res, site.mic_names, point_names=names)
     warnings = list(rec.warnings) + list(res.warnings)
