@@ -177,6 +177,25 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
 
 
 MANY_FIXES = 40  # above this many fixes on one map (a sweep), fixes are drawn as dots
+VISIBLE_ELLIPSE_PT = 17.0  # a 95 % ellipse narrower than this (6 mm in print) hides under its dot
+
+
+def _enlargement(e95, pt_per_m):
+    """A round factor (1, 2, 5 x 10^k) that makes a 95 % ellipse visible beside its dot on a
+    map of several fixes; 1 when it is visible as it is."""
+    if e95 is None:
+        return 1.0
+    across_pt = 2.0 * e95["semi_major_m"] * pt_per_m
+    if across_pt >= VISIBLE_ELLIPSE_PT or not across_pt > 0:
+        return 1.0
+    return max(mk.nice_length(VISIBLE_ELLIPSE_PT / across_pt), 1.0)
+
+
+def _scaled(e, factor):
+    if e is None or factor == 1.0:
+        return e
+    return dict(e, semi_major_m=e["semi_major_m"] * factor,
+                semi_minor_m=e["semi_minor_m"] * factor)
 
 
 def _compose(names, mics, result, entries, sketch, receivers, barriers, air, wind_mps, title,
@@ -252,12 +271,18 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
         notes.append(f"{len(shown)} fixes drawn as dots; the 95 % ellipses and numbers of every "
                      f"{step}th")
     else:
+        grown = {k: _enlargement(entries[k]["e95"], pt_per_m) if len(shown) > 1 else 1.0
+                 for k in shown}
+        if any(g > 1.0 for g in grown.values()):
+            notes.append("ellipses marked ×N are drawn N times enlarged, as they would hide "
+                         "under their dots at map scale (true sizes in the list)")
         for k in shown:
             e = entries[k]
+            grow = grown[k]
             if e["e95"] is not None:
-                mk.draw_ellipse(ax, e["position_m"][:2], e["e95"], 0.95, color,
+                mk.draw_ellipse(ax, e["position_m"][:2], _scaled(e["e95"], grow), 0.95, color,
                                 gid=f"ellipse95:{k + 1}")
-                mk.draw_ellipse(ax, e["position_m"][:2], e["e50"], 0.50, color,
+                mk.draw_ellipse(ax, e["position_m"][:2], _scaled(e["e50"], grow), 0.50, color,
                                 gid=f"ellipse50:{k + 1}")
             ax.plot(*e["position_m"][:2], "o", ms=6.5, color=color, mec="white", mew=1.2,
                     zorder=30, gid=f"estimate:{k + 1}")
@@ -292,7 +317,9 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
             time_ticks(ax, lab, np.asarray(ts, dtype=float), est, pt_per_m)
     if kind == "fix" and len(shown) > 1:
         for k in (ell_of if many else shown):
-            lab.point_label(entries[k]["position_m"][:2], str(k + 1), prefer=(1, 1),
+            g = 1.0 if many else grown[k]
+            lab.point_label(entries[k]["position_m"][:2],
+                            str(k + 1) + (f" (×{g:g})" if g > 1.0 else ""), prefer=(1, 1),
                             dist_pt=5, fontsize=8, fontweight="bold", color=color)
     if len(lines) <= 15:
         for cs, text, at in lines:
@@ -303,7 +330,7 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     side, list_bottom = side_column(fig, ax, result, entries, shown, rejected, dead,
                                      bool(lines), rec)
     first = entries[shown[0]]
-    if kind == "fix" and first["e95"] is not None:
+    if kind == "fix" and first["e95"] is not None and len(shown) == 1:
         tiny = 2 * first["e95"]["semi_major_m"] * pt_per_m < 14.0  # < 5 mm across in print
         if tiny if zoom is None else zoom:
             if zoom_panel(fig, side, list_bottom, first, shown[0], names, mics, c, wind, file):
@@ -323,10 +350,28 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     sentence = "; ".join(words) + "."
     fig.tdoa_caption = sentence[0].upper() + sentence[1:]
     if caption_in_figure:
-        text = "\n".join(textwrap.wrap(fig.tdoa_caption, 140))
-        fig.text(left_in / width_in, 0.42 / fig_h, text, ha="left", va="top", fontsize=7.2,
-                 color=PALETTE["note"], linespacing=1.3)
+        wrapped = textwrap.wrap(fig.tdoa_caption, 140)
+        room_in = 0.06 + len(wrapped) * 7.2 * 1.3 / 72.0  # lines of 7.2 pt, spacing 1.3
+        if room_in > 0.42:
+            _grow_bottom(fig, room_in - 0.42)
+        fig_h = fig.get_figheight()
+        fig.text(left_in / width_in, room_in / fig_h if room_in > 0.42 else 0.42 / fig_h,
+                 "\n".join(wrapped), ha="left", va="top", fontsize=7.2, color=PALETTE["note"],
+                 linespacing=1.3)
     return fig
+
+
+def _grow_bottom(fig, extra_in):
+    """Add ``extra_in`` inches below everything drawn so far (room for a longer caption)."""
+    old_h = fig.get_figheight()
+    new_h = old_h + extra_in
+    fig.set_figheight(new_h)
+    for ax in fig.axes:
+        x0, y0, w, h = ax.get_position().bounds
+        ax.set_position([x0, (y0 * old_h + extra_in) / new_h, w, h * old_h / new_h])
+    for text in fig.texts:
+        x, y = text.get_position()
+        text.set_position((x, (y * old_h + extra_in) / new_h))
 
 
 def _underlay(ax, sketch, barriers):
