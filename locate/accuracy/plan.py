@@ -300,13 +300,15 @@ class Proposal:
 
     def to_dict(self) -> dict:
         return {"name": self.name, "position_m": [float(v) for v in self.position_m],
-                "metric_before_m": _num(self.metric_before_m),
-                "metric_after_m": _num(self.metric_after_m),
+                "metric_before_m": finite_or_none(self.metric_before_m),
+                "metric_after_m": finite_or_none(self.metric_after_m),
                 "unlocatable_before": int(self.unlocatable_before),
-                "unlocatable_after": int(self.unlocatable_after), "factor": _num(self.factor)}
+                "unlocatable_after": int(self.unlocatable_after),
+                "factor": finite_or_none(self.factor)}
 
 
-def _num(v):
+def finite_or_none(v):
+    """A float for JSON, or None where the value is not finite (not locatable)."""
     return float(v) if np.isfinite(v) else None
 
 
@@ -327,13 +329,14 @@ def region_metric(mic_positions_m, region_points_m, *, objective="worst", **kw):
 
     Keyword arguments are those of :func:`expected_ellipses`.
     """
-    _check_objective(objective)
+    check_objective(objective)
     e = expected_ellipses(_region(region_points_m), mic_positions_m, **kw)
     bad, m = _metric(e["semi_major_m"], e["locatable"], objective)
     return int(bad), float(m)
 
 
-def _check_objective(objective):
+def check_objective(objective):
+    """Refuse an objective other than "worst" or "mean" (the parameter is named)."""
     if objective not in ("worst", "mean"):
         raise OptionError(f'objective must be "worst" or "mean", got {objective!r}',
                           field="objective")
@@ -410,7 +413,7 @@ def propose_next_mic(mic_positions_m, candidates_m, region_points_m, *, sound_sp
     list of Proposal
         All candidates, best first.
     """
-    _check_objective(objective)
+    check_objective(objective)
     pos = _mics(mic_positions_m, dims)
     tm = _resolve_timing(len(pos), timing, timing_sd_s, band_hz, snr_db, duration_s)
     cand, names = _candidates(candidates_m, candidate_names)

@@ -179,7 +179,7 @@ class PlanResult:
                      "semi_major_m": field_(sig(g["semi_major_m"]), 9),
                      "semi_minor_m": field_(sig(g["semi_minor_m"]), 9),
                      "azimuth_deg": field_(g["azimuth_deg"], 1)},
-            "receivers": [dict(name=n, **{k: pl._num(v) for k, v in e.items()})
+            "receivers": [dict(name=n, **{k: pl.finite_or_none(v) for k, v in e.items()})
                           for (n, _p), e in zip(self.receivers, self.receiver_ellipses,
                                                 strict=True)],
         }
@@ -189,7 +189,7 @@ class PlanResult:
                              "outline_m": None if self.region_outline_m is None else
                              [[float(v) for v in p] for p in self.region_outline_m],
                              "unlocatable": int(self.region_before[0]),
-                             "metric_m": pl._num(self.region_before[1])}
+                             "metric_m": pl.finite_or_none(self.region_before[1])}
             out["candidates"] = {"kind": self.candidate_kind, "count": int(len(self.candidates_m))}
             out["proposals"] = [p.to_dict() for p in self.proposals]
             out["ranking"] = [p.to_dict() for p in self.ranking]
@@ -289,7 +289,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
         raise SiteFileError(f"a {dims}-D plan needs at least {dims + 1} mics, the site has "
                             f"{len(pos)}: add [[mics]] (planned positions are enough)",
                             file=site.path, field="mics")
-    pl._check_objective(objective)
+    pl.check_objective(objective)
     c = site.air.sound_speed_mps()
     wind = site.air.wind_mps() if site.air.wind_speed_mps else None
     tm = timing_model(len(pos), timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
