@@ -74,7 +74,12 @@ def make_yard(rng):
         'shapes = [ { label = "loading shed", outline = [[30.0, 36.0], [50.0, 36.0], '
         "[50.0, 50.0], [30.0, 50.0]] },",
         '           { label = "office", outline = [[0.0, 10.0], [10.0, 10.0], [10.0, 18.0], '
-        "[0.0, 18.0]] } ]", ""])
+        "[0.0, 18.0]] } ]", "",
+        "[report]            # the report's title block (invented)",
+        'client = "Brackwater Residents\' Association"',
+        'site_address = "Brackwater Lane depot, Brackwater"',
+        'job_reference = "BW-2026-014"', 'author = "A. Surveyor"',
+        'survey_dates = "2026-11-18 to 2026-11-19"', 'revision = "A"', ""])
     (HERE / "yard.toml").write_text(_site_text("Brackwater Lane depot - night bangs",
                                                "yard.flac", YARD_MICS, extra))
     return sim

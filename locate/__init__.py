@@ -1,16 +1,34 @@
 """tdoa - find where a sound came from.
 
-Public API (see docs/ for the methods and their sources):
+The public Python API (docs/api.md); every name is loaded on first use, so ``import locate`` is
+light and pulls in neither the command line (click) nor plotting (matplotlib):
 
-* :mod:`locate.physics.air` - sound speed, time of flight with wind, atmospheric absorption
-* :mod:`locate.io.site` - site files (TOML) and their validation
-* :mod:`locate.io.audio` - reading synchronised recordings
-* :mod:`locate.signal.delays` - time differences of arrival (GCC-PHAT) with their uncertainty
-* :mod:`locate.fix.solver` - stationary-source least-squares locator
-* :mod:`locate.track.tracker` - moving-source track from emission-time positions
-* :mod:`locate.geometry.ellipses` - confidence ellipses, Cramer-Rao bound, GDOP
-* :mod:`locate.physics.levels` - source level and receiver prediction
-* :mod:`locate.synth` - exact simulator for tests and demos
+* :func:`load_site` - read and validate a site file
+* :func:`open_recordings` - the recordings of a site on one time base
+* :func:`estimate_delays` - time differences of arrival (GCC-PHAT) with their uncertainty
+* :func:`locate` - fix a stationary source, as ``tdoa fix``
+* :func:`detect_events` - detected events, as ``tdoa events``
+* :func:`plan` - expected accuracy and the best next mic, as ``tdoa plan``
+* :func:`read_result`, :func:`write_result` - result documents (``tdoa-result/1``)
+* :func:`sound_speed_mps` - speed of sound in air (Cramer 1993)
+* :func:`demo_dir` - the bundled demo recordings
+
+The package's rooms (subpackages) are listed in docs/architecture.md.
 """
 
 __version__ = "0.1.0"
+
+__all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "detect_events",
+           "plan", "read_result", "write_result", "sound_speed_mps", "demo_dir"]
+
+
+def __getattr__(name):
+    if name in __all__:
+        from locate import api
+
+        return getattr(api, name)
+    raise AttributeError(f"module 'locate' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(list(globals()) + __all__)

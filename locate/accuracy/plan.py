@@ -34,7 +34,7 @@ from matplotlib.path import Path as _MplPath
 
 from locate.accuracy.timing import TimingModel, timing_model
 from locate.errors import OptionError
-from locate.geometry.ellipses import chi2_scale
+from locate.geometry.ellipses import ellipse_arrays
 from locate.physics.air import travel_time_gradient
 
 __all__ = [
@@ -111,18 +111,12 @@ def _ellipse_batch(info, probability, limit_m):
         ok = np.isfinite(cond) & (cond <= CONDITION_LIMIT) & (hi > 0)
         inv_lam = np.where(ok[..., None], 1.0 / np.where(lam > 0, lam, 1.0), np.nan)
     cov = np.einsum("...ik,...k,...jk->...ij", vec[..., :2, :], inv_lam, vec[..., :2, :])
-    a, b, d = cov[..., 0, 0], cov[..., 0, 1], cov[..., 1, 1]
-    half = np.sqrt(0.25 * (a - d) ** 2 + b**2)
-    big, small = 0.5 * (a + d) + half, np.clip(0.5 * (a + d) - half, 0.0, None)
-    k = chi2_scale(probability, 2)  # chi-square quantile, 2 dof (scipy.stats.chi2)
-    major = np.sqrt(k * big)
-    theta = 0.5 * np.degrees(np.arctan2(2.0 * b, a - d))  # major axis, ccw from +x
-    azimuth = (90.0 - theta) % 180.0
-    locatable = ok & (major <= limit_m)
+    e = ellipse_arrays(cov, probability)
+    major = e["semi_major_m"]
     return {"semi_major_m": np.where(ok, major, np.inf),
-            "semi_minor_m": np.where(ok, np.sqrt(k * small), np.inf),
-            "azimuth_deg": np.where(ok, azimuth, np.nan), "condition": cond,
-            "locatable": locatable, "covariance_m2": cov}
+            "semi_minor_m": np.where(ok, e["semi_minor_m"], np.inf),
+            "azimuth_deg": np.where(ok, e["azimuth_deg"], np.nan), "condition": cond,
+            "locatable": ok & (major <= limit_m), "covariance_m2": cov}
 
 
 def expected_ellipses(points_m, mic_positions_m, *, sound_speed_mps, timing=None,
@@ -306,13 +300,15 @@ class Proposal:
 
     def to_dict(self) -> dict:
         return {"name": self.name, "position_m": [float(v) for v in self.position_m],
-                "metric_before_m": _num(self.metric_before_m),
-                "metric_after_m": _num(self.metric_after_m),
+                "metric_before_m": finite_or_none(self.metric_before_m),
+                "metric_after_m": finite_or_none(self.metric_after_m),
                 "unlocatable_before": int(self.unlocatable_before),
-                "unlocatable_after": int(self.unlocatable_after), "factor": _num(self.factor)}
+                "unlocatable_after": int(self.unlocatable_after),
+                "factor": finite_or_none(self.factor)}
 
 
-def _num(v):
+def finite_or_none(v):
+    """A float for JSON, or None where the value is not finite (not locatable)."""
     return float(v) if np.isfinite(v) else None
 
 
@@ -333,13 +329,14 @@ def region_metric(mic_positions_m, region_points_m, *, objective="worst", **kw):
 
     Keyword arguments are those of :func:`expected_ellipses`.
     """
-    _check_objective(objective)
+    check_objective(objective)
     e = expected_ellipses(_region(region_points_m), mic_positions_m, **kw)
     bad, m = _metric(e["semi_major_m"], e["locatable"], objective)
     return int(bad), float(m)
 
 
-def _check_objective(objective):
+def check_objective(objective):
+    """Refuse an objective other than "worst" or "mean" (the parameter is named)."""
     if objective not in ("worst", "mean"):
         raise OptionError(f'objective must be "worst" or "mean", got {objective!r}',
                           field="objective")
@@ -416,7 +413,7 @@ def propose_next_mic(mic_positions_m, candidates_m, region_points_m, *, sound_sp
     list of Proposal
         All candidates, best first.
     """
-    _check_objective(objective)
+    check_objective(objective)
     pos = _mics(mic_positions_m, dims)
     tm = _resolve_timing(len(pos), timing, timing_sd_s, band_hz, snr_db, duration_s)
     cand, names = _candidates(candidates_m, candidate_names)

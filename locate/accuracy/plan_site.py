@@ -24,7 +24,12 @@ from locate.accuracy import plan as pl
 from locate.accuracy.timing import TimingModel, timing_model
 from locate.errors import OptionError, SiteFileError
 
-__all__ = ["PlanResult", "plan_site", "site_candidates", "site_region_outline"]
+__all__ = ["PlanResult", "plan_site", "site_candidates", "site_region_outline",
+           "DEFAULT_TIMING_SD_S"]
+
+DEFAULT_TIMING_SD_S = 2e-5
+"""Arrival-time sd per mic assumed when neither a timing nor a band is given (a clean,
+broadband sound at good SNR; common practice for planning)."""
 
 _CANDIDATE_KEYS = {"local": ("name", "x", "y", "z"), "wgs84": ("name", "lat", "lon", "alt")}
 _GRID_CELLS = 200  # default map resolution: cells along the longer side
@@ -143,6 +148,7 @@ class PlanResult:
     region_before: tuple | None = None  # (unlocatable count, metric m)
     receiver_ellipses: list = field(default_factory=list)
     warnings: list = field(default_factory=list)
+    target_given: bool = False  # the limit is the user's target, not the map's size
 
     @property
     def locatable_fraction(self) -> float:
@@ -167,13 +173,13 @@ class PlanResult:
             "timing": self.timing.to_dict(), "warnings": list(self.warnings),
             "mics": [{"name": n, "position_m": [float(v) for v in p]}
                      for n, p in zip(self.mic_names, self.mic_positions_m, strict=True)],
-            "limit_m": float(g["max_semi_major_m"]),
+            "limit_m": float(g["max_semi_major_m"]), "target_given": self.target_given,
             "locatable_fraction": self.locatable_fraction,
             "grid": {"x_m": [float(v) for v in g["xs_m"]], "y_m": [float(v) for v in g["ys_m"]],
                      "semi_major_m": field_(sig(g["semi_major_m"]), 9),
                      "semi_minor_m": field_(sig(g["semi_minor_m"]), 9),
                      "azimuth_deg": field_(g["azimuth_deg"], 1)},
-            "receivers": [dict(name=n, **{k: pl._num(v) for k, v in e.items()})
+            "receivers": [dict(name=n, **{k: pl.finite_or_none(v) for k, v in e.items()})
                           for (n, _p), e in zip(self.receivers, self.receiver_ellipses,
                                                 strict=True)],
         }
@@ -183,7 +189,7 @@ class PlanResult:
                              "outline_m": None if self.region_outline_m is None else
                              [[float(v) for v in p] for p in self.region_outline_m],
                              "unlocatable": int(self.region_before[0]),
-                             "metric_m": pl._num(self.region_before[1])}
+                             "metric_m": pl.finite_or_none(self.region_before[1])}
             out["candidates"] = {"kind": self.candidate_kind, "count": int(len(self.candidates_m))}
             out["proposals"] = [p.to_dict() for p in self.proposals]
             out["ranking"] = [p.to_dict() for p in self.ranking]
@@ -283,7 +289,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
         raise SiteFileError(f"a {dims}-D plan needs at least {dims + 1} mics, the site has "
                             f"{len(pos)}: add [[mics]] (planned positions are enough)",
                             file=site.path, field="mics")
-    pl._check_objective(objective)
+    pl.check_objective(objective)
     c = site.air.sound_speed_mps()
     wind = site.air.wind_mps() if site.air.wind_speed_mps else None
     tm = timing_model(len(pos), timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
@@ -333,7 +339,8 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
                                                      site.receivers],
                      grid=grid, timing=tm, dims=dims, source_z_m=float(source_z_m),
                      probability=float(probability), sound_speed_mps=c, extent_m=extent,
-                     objective=objective, receiver_ellipses=rec_e, warnings=list(site.warnings))
+                     objective=objective, receiver_ellipses=rec_e, warnings=list(site.warnings),
+                     target_given=max_semi_major_m is not None)
     frac = 1.0 - res.locatable_fraction
     if frac >= 0.005:
         res.warnings.append(f"{100 * frac:.0f} % of the mapped area cannot be located")
@@ -344,7 +351,7 @@ def plan_site(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=N
         x0c, x1c, y0c, y1c = _extent(pos, [rec_pos, outline, reg_arr], None, pad_frac=0.1,
                                      pad_min_m=5.0)
         cand = pl.candidate_grid((x0c, x1c, y0c, y1c), z_m=z_mic, avoid_m=pos)
-        cand_names = [f"G{k + 1}" for k in range(len(cand))]
+        cand_names = [f"({c[0]:.0f}, {c[1]:.0f})" for c in cand]  # named by where it stands
     region = "auto" if region is None else region
     if reg_arr is not None:
         kind, pts = "given", reg_arr

@@ -5,7 +5,6 @@ from __future__ import annotations
 from pathlib import Path
 
 import click
-import numpy as np
 
 from locate.cli.common import (
     echo,
@@ -53,6 +52,8 @@ def check(ctx, site_path, dims):
     rec = open_recordings(site)
     cond = conditions_for(site)
     pos = site.positions_m
+    import numpy as np
+
     span = np.max(np.linalg.norm(pos[:, None, :2] - pos[None, :, :2], axis=-1))
     echo(ctx, f"Site      {site.title}  ({site.path.name}, coordinates {site.coordinates})")
     echo(ctx, f"Air       {cond.temperature_c:g} degC, {cond.relative_humidity:g} % RH, "

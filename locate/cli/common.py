@@ -12,7 +12,6 @@ import sys
 from pathlib import Path
 
 import click
-import numpy as np
 
 from locate.common import OutputSet, format_length
 from locate.errors import OptionError, TdoaError
@@ -84,7 +83,7 @@ def parse_band(value):
     except ValueError:
         raise OptionError(f"{value!r} is not LO:HI in Hz (e.g. 100:4000)",
                           field="--band") from None
-    if not (np.isfinite(lo) and np.isfinite(hi)) or lo < 0 or hi <= lo:
+    if not (math.isfinite(lo) and math.isfinite(hi)) or lo < 0 or hi <= lo:
         raise OptionError(f"{value!r}: the low edge must be >= 0 and below the high edge",
                           field="--band")
     return lo, hi
@@ -133,18 +132,9 @@ def progress_bar(ctx, length, label):
     show = sys.stderr.isatty() and not ctx.obj.get("quiet")
     if show:
         return click.progressbar(length=max(int(length), 1), label=label, file=sys.stderr)
+    from locate.workflows.locating import no_progress
 
-    class _Quiet:
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return False
-
-        def update(self, n):
-            pass
-
-    return _Quiet()
+    return no_progress(label, length)
 
 
 def load(site_path, dims=2, require_audio=True):
@@ -235,7 +225,7 @@ def print_fixes(ctx, site, cond, result):
         echo(ctx, f"#{k} heard at {f['t_s']:.3f} s  ->  x {x:.2f} m, y {y:.2f} m, {height}")
         echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} x "
                   f"{fmt_length(e['semi_minor_m'])} "
-                  f"(half-axes), long axis toward {e['azimuth_deg']:.0f} deg; timing residual "
+                  f"(half-axes), long axis {e['azimuth_deg']:.0f}° from north; timing residual "
                   f"{f['residual_rms_s'] * 1e6:.1f} us; mics used {' '.join(f['used_mics'])}"
                   + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
         if f.get("uncertainty_budget"):
@@ -243,11 +233,6 @@ def print_fixes(ctx, site, cond, result):
             echo(ctx, "   " + budget_summary(f["uncertainty_budget"]))
         for w in f["warnings"]:
             warn(f"#{k}: {w}")
-
-
-def same_shape(message):
-    """A warning with its numbers blanked: the same note about other figures compares equal."""
-    return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
 
 
 
@@ -269,17 +254,6 @@ def draw_panels(result, path):
 
 def fmt_db(v):
     return "  --" if v is None else f"{v:.1f}"
-
-
-def check_same_site(site, result, result_path):
-    from locate.errors import ResultFileError
-    names = [m.get("name") for m in result.get("mics", [])]
-    if names and names != site.mic_names:
-        raise ResultFileError(f"its mics ({', '.join(map(str, names))}) are not this site's "
-                              f"({', '.join(site.mic_names)}): was it made from another site "
-                              "file?", file=result_path, field="mics")
-    from locate.results.documents import check_mic_positions
-    check_mic_positions(site, result, result_path)
 
 
 OPTION_OF = {

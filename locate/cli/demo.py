@@ -16,18 +16,9 @@ from locate.cli.maps import track
 from locate.cli.plan import plan
 from locate.cli.report import report
 from locate.errors import OptionError
+from locate.workflows.demo_data import demo_dir as find_demo_dir
 
 __all__ = ["demo", "find_demo_dir", "run_demo"]
-
-
-def find_demo_dir() -> Path:
-    """The ``demo_recordings`` folder: beside the package source, or in the working folder."""
-    for base in (Path(__file__).resolve().parents[2], Path.cwd()):
-        d = base / "demo_recordings"
-        if (d / "yard.toml").is_file():
-            return d
-    raise OptionError("demo_recordings/ not found: run tdoa demo from the project checkout",
-                      field="demo_recordings")
 
 
 def _yard(ctx, demo_dir, out_dir):

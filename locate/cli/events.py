@@ -32,7 +32,7 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
     """List detected events with time, duration, level and how many mics heard them."""
     from locate.io.audio import open_recordings
     from locate.results.documents import write_json
-    from locate.workflows.fixing import conditions_for, fix_result, require_events, scan_events
+    from locate.workflows.locating import list_events
 
     band_hz = parse_band(band)
     if start_s is not None or stop_s is not None:
@@ -41,14 +41,11 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
     check_outputs({"--json": json_path}, site_inputs(site))
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
-    cond = conditions_for(site)
-    a = rec.start_s if start_s is None else start_s
-    b = rec.stop_s if stop_s is None else stop_s
-    with progress_bar(ctx, b - a, "Scanning for events") as bar:
-        found = scan_events(rec, site.positions_m, cond, band_hz=band_hz, start_s=a, stop_s=b,
-                            threshold_db=threshold_db, progress=bar.update)
-    require_events(found, a, b)
-    rows = [ev.to_dict(site.mic_names) for ev in found]
+    result = list_events(site, rec, start_s=start_s, stop_s=stop_s, band_hz=band_hz,
+                         threshold_db=threshold_db,
+                         progress=lambda label, total: progress_bar(ctx, total, label))
+    rows = result["events"]
+    a, b = result["span_s"]
     echo(ctx, f"{len(rows)} event(s) in {a:.2f}..{b:.2f} s")
     echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'above bg':>9} {'mics':>5}  first mic")
     for k, r in enumerate(rows, 1):
@@ -57,7 +54,5 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
     for w in rec.warnings:
         warn(w)
     if json_path:
-        result = fix_result(site, cond, [], kind="events", extra={"events": rows},
-                            warnings=rec.warnings)
         write_json(json_path, result)
     return rows

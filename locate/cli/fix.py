@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import click
-import numpy as np
 
 from locate.cli.common import (
     FINITE,
@@ -20,7 +19,6 @@ from locate.cli.common import (
     parse_band,
     print_fixes,
     progress_bar,
-    same_shape,
     site_inputs,
     span_options,
     transactional,
@@ -57,18 +55,10 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
-    from locate.fix.air_solve import fit_entry
     from locate.fix.air_solve import summary_lines as air_summary
     from locate.io.audio import open_recordings
-    from locate.signal.event_choice import choose_events
-    from locate.workflows.fixing import (
-        conditions_for,
-        fix_result,
-        fix_span,
-        plan_spans,
-        require_events,
-        scan_events,
-    )
+    from locate.workflows.fixing import conditions_for
+    from locate.workflows.locating import locate_recordings
 
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
@@ -86,56 +76,26 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
-    warnings = list(site.warnings) + list(rec.warnings)
-    if start_s is None:
-        with progress_bar(ctx, rec.duration_s, "Scanning for events") as bar:
-            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz,
-                                 threshold_db=threshold_db, progress=bar.update)
-        require_events(events, rec.start_s, rec.stop_s)
-        events, notes = choose_events(events, choice)
-        warnings.extend(notes)
-        spans = plan_spans(events, rec, site.positions_m, cond)
-        times = [float(np.nanmin(ev.onset_s)) for ev in events]
-    elif window_s is not None:
+    if sweep:
         if window_s > stop_s - start_s:
             raise OptionError(f"window {window_s:g} s is longer than the span "
                               f"{stop_s - start_s:g} s", field="--window")
-        edges = np.arange(start_s, stop_s - window_s + 1e-9, window_s)
-        spans = [(float(a), float(a + window_s)) for a in edges]
-        times = [a for a, _ in spans]
-    else:
-        spans, times = [(start_s, stop_s)], [start_s]
-    entries, fixes = [], []
-    if sweep:
+        warnings = list(site.warnings) + list(rec.warnings)
         return run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
                          source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
                          map_path)
-    with progress_bar(ctx, len(spans), "Locating") as bar:
-        for (a, b), t in zip(spans, times):
-            try:
-                entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
-                                            source_z_m=source_z_m, reject=not no_reject,
-                                            keep_curves=panels_path is not None, t_s=t)
-                if solve_air:
-                    fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
-                              solve_wind=solve_wind)
-            except NothingFoundError as exc:
-                warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
-                bar.update(1)
-                continue
-            entries.append(entry)
-            fixes.append(fx)
-            bar.update(1)
-    # the reads' channel notes, unless a fix already said the same (its own figures)
-    said = ({same_shape(w) for e in entries for w in e["warnings"]}
-            | {same_shape(w) for w in warnings})
-    warnings.extend(w for w in rec.warnings if same_shape(w) not in said)
-    if not entries:
-        for w in warnings:
+    try:
+        result = locate_recordings(
+            site, rec, start_s=start_s, stop_s=stop_s, window_s=window_s, band_hz=band_hz,
+            dims=dims, source_z_m=source_z_m, sound_speed_mps=sound_speed_mps,
+            threshold_db=threshold_db, reject=not no_reject,
+            keep_curves=panels_path is not None, solve_air=solve_air, solve_wind=solve_wind,
+            events_choice=choice,
+            progress=lambda label, total: progress_bar(ctx, total, label))
+    except NothingFoundError as exc:
+        for w in getattr(exc, "warnings", ()):
             warn(w)
-        raise NothingFoundError("no span gave a usable fix (see the warnings above)")
-    result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
-                        source_z_m=source_z_m)
+        raise
     print_fixes(ctx, site, cond, result)
     for line in air_summary(result):
         echo(ctx, line)

@@ -6,7 +6,6 @@ import click
 
 from locate.cli.common import (
     check_outputs,
-    check_same_site,
     echo,
     fmt_db,
     load,
@@ -30,7 +29,12 @@ from locate.errors import OptionError
 def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
     """Source sound power per octave band, and the level at the site's named receivers."""
     from locate.io.audio import open_recordings
-    from locate.results.documents import read_result, reading_result, write_json
+    from locate.results.documents import (
+        check_same_site,
+        read_result,
+        reading_result,
+        write_json,
+    )
     from locate.workflows.fixing import conditions_for, fix_result
     from locate.workflows.level import level_for_fix
 

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+import math
+
 import click
-import numpy as np
 
 from locate.cli.common import (
     FINITE,
@@ -90,7 +91,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
                               cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
                               hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,
                               wind_mps=cond.wind_mps, model=model, segment_s=segment_s,
-                              expected_speed_mps=speed_guess_mps, points_m=np.array(points),
+                              expected_speed_mps=speed_guess_mps, points_m=points,
                               bearing_from_m=bearing_from, tone_hz=tone_hz, progress=progress)
     doc = track_to_dict(res, site.mic_names, point_names=names)
     warnings = list(rec.warnings) + list(res.warnings)
@@ -115,7 +116,7 @@ def _float(text, field):
         value = float(text)
     except ValueError:
         raise OptionError(f"{text!r} is not a number", field=field) from None
-    if not np.isfinite(value):
+    if not math.isfinite(value):
         raise OptionError(f"{text!r} is not a finite number", field=field)
     return value
 
@@ -155,9 +156,8 @@ def _print_track(ctx, site, cond, doc, bearing_from_name):
 @transactional
 def map_command(ctx, site_path, result_path, out_path, fix_no, panels_path):
     """Draw a fix or track result over the site sketch."""
-    from locate.cli.common import check_same_site
     from locate.draw import figures as plot
-    from locate.results.documents import read_result, reading_result
+    from locate.results.documents import check_same_site, read_result, reading_result
 
     site = load(site_path)
     check_outputs({"--output": out_path, "--panels": panels_path},

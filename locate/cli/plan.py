@@ -30,7 +30,11 @@ from locate.errors import OptionError
 @click.option("--snr", "snr_db", type=FINITE, default=None, help="In-band SNR, dB.")
 @click.option("--duration", "duration_s", type=FINITE, default=None,
               help="Length of the analysed sound, s.")
-@click.option("--grid-step", "grid_step_m", type=FINITE, default=None)
+@click.option("--target", "target_m", type=FINITE, default=None,
+              help="The accuracy you need: largest acceptable 95 % semi-major, metres "
+                   "(default: the map's longer side, i.e. any fix at all).")
+@click.option("--grid-step", "grid_step_m", type=FINITE, default=None,
+              help="Spacing of the map's grid, metres (default: 1/200 of its longer side).")
 @click.option("--extent", default=None, metavar="X0:X1:Y0:Y1", help="Map area, metres.")
 @click.option("--candidates", default="auto", show_default=True,
               type=click.Choice(["auto", "site", "grid", "none"]),
@@ -46,9 +50,10 @@ from locate.errors import OptionError
 @click.pass_context
 @transactional
 def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,
-         grid_step_m, extent, candidates, region, objective, n_propose, dims, source_z_m):
+         grid_step_m, extent, candidates, region, objective, n_propose, dims, source_z_m,
+         target_m=None):
     """Expected 95 % ellipse size over the site for the mic layout; best next mic(s)."""
-    from locate.accuracy.plan_site import plan_site
+    from locate.accuracy.plan_site import DEFAULT_TIMING_SD_S, plan_site
     from locate.results.documents import write_json
 
     band_hz = parse_band(band)
@@ -63,14 +68,15 @@ def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duratio
             raise OptionError(f"{extent!r} is not X0:X1:Y0:Y1 with X0 < X1 and Y0 < Y1",
                               field="--extent") from None
     if timing_sd_s is None and band_hz is None:
-        timing_sd_s = 2e-5
-        echo(ctx, "No timing given: assuming 20 us per mic (use --timing-sd or "
-                  "--band/--snr/--duration).")
+        timing_sd_s = DEFAULT_TIMING_SD_S
+        echo(ctx, f"No timing given: assuming {timing_sd_s * 1e6:g} µs per mic (use "
+                  "--timing-sd or --band/--snr/--duration).")
     res = plan_site(site, timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
                     duration_s=duration_s, grid_step_m=grid_step_m, extent_m=ext,
                     candidates=None if candidates == "none" else candidates, region=region,
                     dims=dims, source_z_m=source_z_m, objective=objective,
-                    n_propose=n_propose if candidates != "none" else 0)
+                    n_propose=n_propose if candidates != "none" else 0,
+                    max_semi_major_m=target_m)
     doc = res.to_dict()
     echo(ctx, _plan_summary(doc))
     if json_path:
@@ -84,18 +90,29 @@ def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duratio
 
 
 def _plan_summary(doc):
-    lines = [f"Locatable: {100 * doc.get('locatable_fraction', 0):.0f} % of the map area "
-             f"(95 % semi-major below {fmt_length(doc.get('limit_m'))})"]
+    limit = doc.get("limit_m")
+    if doc.get("target_given"):
+        head = (f"Locatable to within {fmt_length(limit)} (95 % semi-major): "
+                f"{100 * doc.get('locatable_fraction', 0):.0f} % of the map area")
+    else:
+        head = (f"Locatable at all: {100 * doc.get('locatable_fraction', 0):.0f} % of the map "
+                "area (give --target for the accuracy you need)")
+    lines = [head]
     for r in doc.get("receivers", []) or []:
         if isinstance(r, dict) and "name" in r:
             val = r.get("semi_major_m")
             lines.append(f"  at {r['name']}: expected 95 % semi-major {fmt_length(val)}")
+    def size(v):
+        if v is None and doc.get("target_given"):
+            return f"above the {fmt_length(limit)} target"
+        return fmt_length(v)
+
     for p in doc.get("proposals", []) or []:
         pos = p["position_m"]
-        lines.append(f"Proposed next mic {p['name']} at ({pos[0]:.1f}, {pos[1]:.1f}) m: "
-                     f"{doc.get('objective', 'worst')} semi-major over the region "
-                     f"{fmt_length(p['metric_before_m'])} -> {fmt_length(p['metric_after_m'])} "
-                     f"({p['factor']:.1f}x better)")
+        where = f"at ({pos[0]:.1f}, {pos[1]:.1f}) m"
+        label = "" if p["name"].startswith("(") else f"{p['name']} "
+        lines.append(f"Proposed next mic {label}{where}: {doc.get('objective', 'worst')} "
+                     f"semi-major over the region {size(p['metric_before_m'])} -> "
+                     f"{size(p['metric_after_m'])}"
+                     + (f" ({p['factor']:.1f}x better)" if p.get("factor") else ""))
     return "\n".join(lines)
-
-

@@ -38,6 +38,7 @@ from locate.draw.parts import (
     zoom_panel,
 )
 from locate.errors import OptionError, ResultFileError
+from locate.geometry import frames as geo
 
 __all__ = ["PALETTE", "SCHEMA", "ellipse_axes", "check_result", "draw_map", "map_figure",
            "panels_figure", "save_figure", "figure_bytes"]
@@ -102,7 +103,7 @@ def _mics_out(entries, shown, key):
 
 def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), barriers=(),
              air=None, wind_mps=None, title=None, caption=None, fix_index=None,
-             hyperbolae=None, zoom=None, width_in=8.0, file=None):
+             hyperbolae=None, zoom=None, width_in=8.0, file=None, caption_in_figure=True):
     """Draw a fix or track result on a map of the site.
 
     Parameters
@@ -140,6 +141,9 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
         Figure width, inches.
     file : path, optional
         The result file, named in errors.
+    caption_in_figure : bool
+        Print the caption under the map (a report prints it as the figure's caption
+        instead).  Either way the text is kept as ``fig.tdoa_caption``.
 
     Returns
     -------
@@ -167,14 +171,34 @@ def draw_map(mic_positions_m, mic_names, result, *, sketch=None, receivers=(), b
                           f"{len(entries)}", field="fix_index")
     with mk.style():
         return _compose(names, mics, result, entries, sketch, receivers, barriers, air,
-                        wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file)
+                        wind_mps, title, caption, fix_index, hyperbolae, zoom, width_in, file,
+                        caption_in_figure)
 
 
 MANY_FIXES = 40  # above this many fixes on one map (a sweep), fixes are drawn as dots
+VISIBLE_ELLIPSE_PT = 17.0  # a 95 % ellipse narrower than this (6 mm in print) hides under its dot
+
+
+def _enlargement(e95, pt_per_m):
+    """A round factor (1, 2, 5 x 10^k) that makes a 95 % ellipse visible beside its dot on a
+    map of several fixes; 1 when it is visible as it is."""
+    if e95 is None:
+        return 1.0
+    across_pt = 2.0 * e95["semi_major_m"] * pt_per_m
+    if across_pt >= VISIBLE_ELLIPSE_PT or not across_pt > 0:
+        return 1.0
+    return max(mk.nice_length(VISIBLE_ELLIPSE_PT / across_pt), 1.0)
+
+
+def _scaled(e, factor):
+    if e is None or factor == 1.0:
+        return e
+    return dict(e, semi_major_m=e["semi_major_m"] * factor,
+                semi_minor_m=e["semi_minor_m"] * factor)
 
 
 def _compose(names, mics, result, entries, sketch, receivers, barriers, air, wind_mps, title,
-             caption, fix_index, hyperbolae, zoom, width_in, file):
+             caption, fix_index, hyperbolae, zoom, width_in, file, caption_in_figure=True):
     kind = result["kind"]
     shown = [fix_index] if fix_index is not None else list(range(len(entries)))
     c = result.get("sound_speed_mps")
@@ -193,7 +217,7 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
              for k in ell_of]
     x0, x1, y0, y1, clipped = mk.fit_view(np.vstack(core), boxes)
     view = (x0, x1, y0, y1)
-    left_in, top_in, bottom_in = 0.6, 0.55, 0.95
+    left_in, top_in, bottom_in = 0.6, 0.55, 0.95 if caption_in_figure else 0.45
     map_w = width_in * 0.68
     map_h = map_w * (y1 - y0) / (x1 - x0)
     fig_h = round(map_h + top_in + bottom_in, 2)  # whole pixels at 100, 150 and 300 dpi
@@ -246,12 +270,18 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
         notes.append(f"{len(shown)} fixes drawn as dots; the 95 % ellipses and numbers of every "
                      f"{step}th")
     else:
+        grown = {k: _enlargement(entries[k]["e95"], pt_per_m) if len(shown) > 1 else 1.0
+                 for k in shown}
+        if any(g > 1.0 for g in grown.values()):
+            notes.append("ellipses marked ×N are drawn N times enlarged, as they would hide "
+                         "under their dots at map scale (true sizes in the list)")
         for k in shown:
             e = entries[k]
+            grow = grown[k]
             if e["e95"] is not None:
-                mk.draw_ellipse(ax, e["position_m"][:2], e["e95"], 0.95, color,
+                mk.draw_ellipse(ax, e["position_m"][:2], _scaled(e["e95"], grow), 0.95, color,
                                 gid=f"ellipse95:{k + 1}")
-                mk.draw_ellipse(ax, e["position_m"][:2], e["e50"], 0.50, color,
+                mk.draw_ellipse(ax, e["position_m"][:2], _scaled(e["e50"], grow), 0.50, color,
                                 gid=f"ellipse50:{k + 1}")
             ax.plot(*e["position_m"][:2], "o", ms=6.5, color=color, mec="white", mew=1.2,
                     zorder=30, gid=f"estimate:{k + 1}")
@@ -286,18 +316,20 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
             time_ticks(ax, lab, np.asarray(ts, dtype=float), est, pt_per_m)
     if kind == "fix" and len(shown) > 1:
         for k in (ell_of if many else shown):
-            lab.point_label(entries[k]["position_m"][:2], str(k + 1), prefer=(1, 1),
+            g = 1.0 if many else grown[k]
+            lab.point_label(entries[k]["position_m"][:2],
+                            str(k + 1) + (f" (×{g:g})" if g > 1.0 else ""), prefer=(1, 1),
                             dist_pt=5, fontsize=8, fontweight="bold", color=color)
     if len(lines) <= 15:
         for cs, text, at in lines:
-            lab.line_label([p.vertices for p in cs.get_paths()], text, at, fontsize=6.8,
+            lab.line_label([p.vertices for p in cs.get_paths()], text, at, fontsize=7.0,
                            color=PALETTE["hyperbola_text"])
 
     # ---- side column and caption
     side, list_bottom = side_column(fig, ax, result, entries, shown, rejected, dead,
                                      bool(lines), rec)
     first = entries[shown[0]]
-    if kind == "fix" and first["e95"] is not None:
+    if kind == "fix" and first["e95"] is not None and len(shown) == 1:
         tiny = 2 * first["e95"]["semi_major_m"] * pt_per_m < 14.0  # < 5 mm across in print
         if tiny if zoom is None else zoom:
             if zoom_panel(fig, side, list_bottom, first, shown[0], names, mics, c, wind, file):
@@ -314,10 +346,31 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
     words = _caption_words(air, result, c, [entries[k] for k in shown], kind) + notes
     if caption:
         words.append(caption)
-    text = "\n".join(textwrap.wrap("; ".join(words) + ".", 140))
-    fig.text(left_in / width_in, 0.42 / fig_h, text[0].upper() + text[1:], ha="left",
-             va="top", fontsize=7.2, color=PALETTE["note"], linespacing=1.3)
+    sentence = "; ".join(words) + "."
+    fig.tdoa_caption = sentence[0].upper() + sentence[1:]
+    if caption_in_figure:
+        wrapped = textwrap.wrap(fig.tdoa_caption, 140)
+        room_in = 0.06 + len(wrapped) * 7.2 * 1.3 / 72.0  # lines of 7.2 pt, spacing 1.3
+        if room_in > 0.42:
+            _grow_bottom(fig, room_in - 0.42)
+        fig_h = fig.get_figheight()
+        fig.text(left_in / width_in, room_in / fig_h if room_in > 0.42 else 0.42 / fig_h,
+                 "\n".join(wrapped), ha="left", va="top", fontsize=7.2, color=PALETTE["note"],
+                 linespacing=1.3)
     return fig
+
+
+def _grow_bottom(fig, extra_in):
+    """Add ``extra_in`` inches below everything drawn so far (room for a longer caption)."""
+    old_h = fig.get_figheight()
+    new_h = old_h + extra_in
+    fig.set_figheight(new_h)
+    for ax in fig.axes:
+        x0, y0, w, h = ax.get_position().bounds
+        ax.set_position([x0, (y0 * old_h + extra_in) / new_h, w, h * old_h / new_h])
+    for text in fig.texts:
+        x, y = text.get_position()
+        text.set_position((x, (y * old_h + extra_in) / new_h))
 
 
 def _underlay(ax, sketch, barriers):
@@ -424,16 +477,10 @@ def map_figure(site, result, *, warnings=None, **kwargs):
 
 
 def _wgs84_to_local(site):
-    """``(lon, lat) -> (x, y)`` for GeoJSON on a wgs84 site, via :mod:`locate.geometry.frames` if
-    present."""
-    try:
-        from locate.geometry import frames as geo
-    except ImportError:
+    """``(lon, lat) -> (x, y)`` for GeoJSON on a wgs84 site (:func:`geo.lonlat_to_local`)."""
+    if getattr(site, "origin_wgs84", None) is None:
         return None
-    fn = getattr(geo, "lonlat_to_local", None)
-    if fn is None or getattr(site, "origin_wgs84", None) is None:
-        return None
-    return lambda lon, lat: fn(lon, lat, site.origin_wgs84)
+    return lambda lon, lat: geo.lonlat_to_local(lon, lat, site.origin_wgs84)
 
 
 def panels_figure(result, **kwargs):

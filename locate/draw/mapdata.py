@@ -13,11 +13,11 @@ from locate.draw import kit as mk
 from locate.draw.kit import ellipse_axes
 from locate.errors import ResultFileError
 from locate.physics.air import travel_time_s, wind_vector_mps
+from locate.results.documents import SCHEMA, check_schema
 
 __all__ = ["SCHEMA", "check_result", "pair_used", "used_pairs", "delay_misfit_field", "mics_of",
            "wind_of"]
 
-SCHEMA = "tdoa-result/1"
 
 
 def vec3(v, where, file):
@@ -53,13 +53,8 @@ def check_result(result, *, file=None, kinds=("fix", "track")):
     """
     if not isinstance(result, dict):
         raise ResultFileError("a result must be a JSON object", file=file)
-    if result.get("schema") != SCHEMA:
-        raise ResultFileError(f"expected schema {SCHEMA!r}, got {result.get('schema')!r}: "
-                              "not a tdoa result file", file=file, field="schema")
+    check_schema(result, file=file, kinds=kinds, reader="a map")
     kind = result.get("kind")
-    if kind not in kinds:
-        raise ResultFileError(f"cannot draw a result of kind {kind!r}; expected one of "
-                              f"{list(kinds)!r}", file=file, field="kind")
     if kind == "track":
         raw, key, tkey = (result.get("track") or {}).get("points"), "track.points", "t_emit_s"
     else:

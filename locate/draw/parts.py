@@ -167,7 +167,7 @@ def listing(result, entries, shown):
             a, b = e["e95"]["semi_major_m"], e["e95"]["semi_minor_m"]
             lines.append("  95 % ellipse half-axes")
             lines.append(f"  {mk.format_length(a)} × {mk.format_length(b)}")
-            lines.append(f"  long axis toward {e['e95']['azimuth_deg']:.0f}°")
+            lines.append(f"  long axis {e['e95']['azimuth_deg']:.0f}° from north")
     if len(shown) > 3:
         lines.append(f"… and {len(shown) - 3} more (see the JSON)")
     return "\n".join(lines)

@@ -35,8 +35,46 @@ def chi2_scale(probability: float, dof: int = 2) -> float:
     return float(stats.chi2.ppf(probability, dof))
 
 
+def ellipse_arrays(covariance_m2, probability=0.95):
+    """Confidence ellipses of many horizontal positions at once (the one ellipse function).
+
+    Parameters
+    ----------
+    covariance_m2 : array_like, shape (..., 2, 2) or (..., 3, 3)
+        Position covariances; only the horizontal (x, y) block is used.
+    probability : float
+        Coverage probability (chi-square with 2 degrees of freedom, :func:`chi2_scale`).
+
+    Returns
+    -------
+    dict of numpy.ndarray, shape (...)
+        ``semi_major_m``, ``semi_minor_m`` and ``azimuth_deg`` (of the major axis, clockwise
+        from north, in [0, 180)); a non-finite covariance gives infinite axes and azimuth 0.
+
+    Notes
+    -----
+    Closed-form eigen-decomposition of the symmetric 2 x 2 block [[a, b], [b, d]]: the
+    eigenvalues are (a + d) / 2 +- sqrt(((a - d) / 2)^2 + b^2), the major axis at
+    0.5 atan2(2b, a - d) counter-clockwise from +x (common practice).
+    """
+    c = np.asarray(covariance_m2, dtype=float)[..., :2, :2]
+    a, d = c[..., 0, 0], c[..., 1, 1]
+    b = 0.5 * (c[..., 0, 1] + c[..., 1, 0])
+    ok = np.isfinite(a) & np.isfinite(b) & np.isfinite(d)
+    a, b, d = (np.where(ok, v, 0.0) for v in (a, b, d))
+    half = np.sqrt(0.25 * (a - d) ** 2 + b**2)
+    big = np.clip(0.5 * (a + d) + half, 0.0, None)
+    small = np.clip(0.5 * (a + d) - half, 0.0, None)
+    k = chi2_scale(probability, 2)
+    theta = 0.5 * np.degrees(np.arctan2(2.0 * b, a - d))  # major axis, ccw from +x
+    azimuth = np.where(half > 0, (90.0 - theta) % 180.0, 0.0)
+    return {"semi_major_m": np.where(ok, np.sqrt(k * big), np.inf),
+            "semi_minor_m": np.where(ok, np.sqrt(k * small), np.inf),
+            "azimuth_deg": np.where(ok, azimuth, 0.0)}
+
+
 def ellipse(covariance_m2, probability=0.95):
-    """Confidence ellipse of the horizontal position.
+    """Confidence ellipse of one horizontal position (:func:`ellipse_arrays` for one).
 
     Parameters
     ----------
@@ -51,20 +89,7 @@ def ellipse(covariance_m2, probability=0.95):
         ``semi_major_m``, ``semi_minor_m`` and ``azimuth_deg`` (of the major axis, clockwise
         from north, in [0, 180)).
     """
-    c = np.asarray(covariance_m2, dtype=float)[:2, :2]
-    c = 0.5 * (c + c.T)
-    if not np.all(np.isfinite(c)):
-        return {"semi_major_m": float("inf"), "semi_minor_m": float("inf"), "azimuth_deg": 0.0}
-    vals, vecs = np.linalg.eigh(c)
-    vals = np.clip(vals, 0.0, None)
-    k = chi2_scale(probability, 2)
-    major = vecs[:, 1]
-    azimuth = np.degrees(np.arctan2(major[0], major[1])) % 180.0
-    return {
-        "semi_major_m": float(np.sqrt(k * vals[1])),
-        "semi_minor_m": float(np.sqrt(k * vals[0])),
-        "azimuth_deg": float(azimuth),
-    }
+    return {k: float(v) for k, v in ellipse_arrays(covariance_m2, probability).items()}
 
 
 def ellipse_points(center_m, covariance_m2, probability=0.95, n=73):

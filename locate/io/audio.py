@@ -237,17 +237,17 @@ class Recordings:
     def _check_span(self, start_s, stop_s):
         start_s, stop_s = float(start_s), float(stop_s)
         if not (np.isfinite(start_s) and np.isfinite(stop_s)) or start_s >= stop_s:
-            raise RecordingError(f"the span {start_s:g}..{stop_s:g} s is empty: --from must be "
-                                 "before --to", file=self._sources[0].path, field="start_s")
+            raise RecordingError(f"the span {start_s:g}..{stop_s:g} s is empty: start_s must be "
+                                 "before stop_s", file=self._sources[0].path, field="start_s")
         tol = 0.5 / self.sample_rate_hz
         end_all, begin_all = float(np.max(self._cover[:, 1])), float(np.min(self._cover[:, 0]))
         if stop_s > end_all + tol:
-            raise RecordingError(f"--to {stop_s:.3f} s is past the end of the recordings: they "
+            raise RecordingError(f"stop_s {stop_s:.3f} s is past the end of the recordings: they "
                                  f"last {end_all:.3f} s (all mics cover {self.start_s:.3f}.."
                                  f"{self.stop_s:.3f} s)", file=self._sources[0].path,
                                  field="stop_s")
         if start_s < begin_all - tol:
-            raise RecordingError(f"--from {start_s:.3f} s is before the recordings begin "
+            raise RecordingError(f"start_s {start_s:.3f} s is before the recordings begin "
                                  f"({begin_all:.3f} s)", file=self._sources[0].path,
                                  field="start_s")
         return start_s, stop_s

@@ -144,6 +144,7 @@ class Site:
     origin_wgs84: tuple[float, float, float] | None = None
     warnings: tuple[str, ...] = ()
     raw: dict = field(default_factory=dict)
+    report: dict = field(default_factory=dict)  # [report] title-block fields (client, ...)
 
     @property
     def positions_m(self) -> np.ndarray:
@@ -256,7 +257,7 @@ def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
     return Site(path=ctx.path.resolve(), title=title, coordinates=coords, air=air,
                 recording_file=recording_file, mics=mics, receivers=receivers,
                 barriers=barriers, sketch=sketch, origin_wgs84=origin,
-                warnings=tuple(warnings), raw=raw)
+                warnings=tuple(warnings), raw=raw, report=st.parse_report(ctx, raw))
 
 
 def _wgs84_to_local(origin):

@@ -24,7 +24,10 @@ from locate.io.site_fields import (
 )
 
 TOP_KEYS = ("title", "coordinates", "air", "recording", "mics", "receivers", "barriers",
-            "sketch", "survey", "candidates", "region")
+            "sketch", "survey", "candidates", "region", "report")
+REPORT_KEYS = ("client", "site_address", "job_reference", "author", "checked_by",
+               "survey_dates", "revision")
+"""The ``[report]`` table: what a consultant's report carries on its title block."""
 AIR_KEYS = ("temperature_c", "relative_humidity", "pressure_kpa", "wind_speed_mps",
             "wind_from_deg", "temperature_sd_c", "wind_sd_mps", "sound_speed_mps")
 SURVEY_KEYS = ("position_sd_m", "height_sd_m", "clock_sd_s")
@@ -102,6 +105,18 @@ def parse_survey(ctx, raw) -> dict:
     s = get_table(ctx, raw, "survey") or {}
     check_keys(ctx, s, SURVEY_KEYS, "survey")
     return {k: get_nonneg(ctx, s, k, f"survey.{k}") for k in SURVEY_KEYS}
+
+
+def parse_report(ctx, raw) -> dict:
+    """The ``[report]`` table: title-block fields, each a string (absent keys left out)."""
+    r = get_table(ctx, raw, "report") or {}
+    check_keys(ctx, r, REPORT_KEYS, "report")
+    out = {}
+    for k in REPORT_KEYS:
+        v = get_str(ctx, r, k, f"report.{k}")
+        if v is not None and v.strip():
+            out[k] = " ".join(v.split())
+    return out
 
 
 def parse_recording(ctx, raw) -> Path | None:

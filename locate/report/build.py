@@ -21,10 +21,10 @@ from pathlib import Path
 import numpy as np
 
 from locate import __version__
-from locate.errors import OptionError, ResultFileError, SiteFileError, TdoaError
+from locate.errors import OptionError, SiteFileError, TdoaError
 from locate.report import context as rc
 from locate.report import format as rf
-from locate.results.documents import check_mic_positions, mic_moves_m
+from locate.results.documents import check_same_site, check_schema
 
 __all__ = ["KINDS", "SECTIONS", "build_report", "make_report", "check_same_site",
            "recordings_info"]
@@ -39,57 +39,16 @@ TITLES = {"summary": "At a glance", "setup": "Survey set-up", "maps": "Site maps
           "results": "Results", "levels": "Sound levels and receiver predictions",
           "budget": "Uncertainty budget", "methods": "Methods", "cautions": "Cautions and limits"}
 
-SAME_PLACE_M = 0.01  # mic moved by more than this between the result and the site: say so
-
 _TEMPLATES = Path(__file__).resolve().parent / "templates"
+
+REPORT_LABELS = {"client": "Client", "site_address": "Site address",
+                 "job_reference": "Job reference", "author": "Prepared by",
+                 "checked_by": "Checked by", "survey_dates": "Survey dates",
+                 "revision": "Revision"}
+"""Title-block labels of the site file's ``[report]`` fields, in page order."""
 
 
 # ------------------------------------------------------------------------------- checks
-
-def check_same_site(site, result, label):
-    """Refuse a result made from another site file (its mic names differ from the site's).
-
-    Returns
-    -------
-    list of str
-        Notes for the report when the names agree but mics moved (re-surveyed since).
-
-    Raises
-    ------
-    locate.errors.ResultFileError
-        Naming the result file and the field ``mics``.
-    """
-    mics = result.get("mics")
-    if not isinstance(mics, list) or not mics:
-        return [f"{label} does not list its mics: it could not be checked against the site "
-                "file"]
-    names = [str(m.get("name")) if isinstance(m, dict) else str(m) for m in mics]
-    if names != site.mic_names:
-        missing = [n for n in site.mic_names if n not in names]
-        extra = [n for n in names if n not in site.mic_names]
-        if not extra and not missing:
-            detail = "; the same names in another order"
-        elif len(extra) < len(names):
-            detail = "; " + "; ".join(p for p in (
-                f"not in the site: {', '.join(extra)}" if extra else "",
-                f"not in the result: {', '.join(missing)}" if missing else "") if p)
-        else:
-            detail = ""
-        raise ResultFileError(f"its mics ({', '.join(names)}) are not those of the site file "
-                              f"{site.path.name} ({', '.join(site.mic_names)}{detail}): was "
-                              "it made from another site?", file=label, field="mics")
-    notes = []
-    check_mic_positions(site, result, label)
-    moved = mic_moves_m(site, result)
-    if moved is None:
-        return notes
-    if np.nanmax(moved) > SAME_PLACE_M:
-        k = int(np.nanargmax(moved))
-        notes.append(f"{label} was computed with mic positions that differ from the site file "
-                     f"by up to {rf.length(moved[k])} (mic {names[k]}): the site file was "
-                     "edited after the result was made")
-    return notes
-
 
 def _check_images(site):
     """The site's sketch image and GeoJSON must exist: a report without them would mislead."""
@@ -103,25 +62,31 @@ def _check_images(site):
                                 "report", file=site.path, field=field)
 
 
-def _check_result(result, label):
-    if not isinstance(result, dict) or result.get("schema") != "tdoa-result/1":
-        raise ResultFileError("not a tdoa-result/1 result", file=label, field="schema")
-    if result.get("kind") not in KINDS:
-        raise ResultFileError(f"kind is {result.get('kind')!r}; a report shows "
-                              + ", ".join(repr(k) for k in KINDS), file=label, field="kind")
-
-
 # ------------------------------------------------------------------------------- figures
 
 def _data_uri(png: bytes) -> str:
     return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
 
 
-def _map_png(site, result, notes) -> bytes:
+PRINT_WIDTH_IN = 7.1
+"""Width of the text block on an A4 page (210 mm less 2 x 14 mm margins, report.css), inches:
+report figures are drawn at this width so their fonts print at their nominal size."""
+
+
+def map_figure_for_print(site, result, notes):
+    """The site map as the report prints it: drawn at the page's text width, the caption
+    left for the page (``fig.tdoa_caption``)."""
     from locate.draw import figures as plot
 
-    fig = plot.map_figure(site, result, warnings=notes)
-    return plot.figure_bytes(fig, "png", dpi=150)
+    return plot.map_figure(site, result, warnings=notes, width_in=PRINT_WIDTH_IN,
+                           caption_in_figure=False)
+
+
+def _map_png(site, result, notes) -> tuple[bytes, str]:
+    from locate.draw import figures as plot
+
+    fig = map_figure_for_print(site, result, notes)
+    return plot.figure_bytes(fig, "png", dpi=200), fig.tdoa_caption
 
 
 def _map_alt(site, result):
@@ -202,7 +167,7 @@ def _environment():
 
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(_TEMPLATES)), autoescape=True,
                              trim_blocks=True, lstrip_blocks=True,
-                             undefined=jinja2.StrictUndefined)
+                             undefined=jinja2.StrictUndefined, finalize=rf.client_words)
     return env
 
 
@@ -243,7 +208,7 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
                for r, lab in zip(results, labels, strict=True)]
     notes = []
     for r, lab in zip(results, labels, strict=True):
-        _check_result(r, lab)
+        check_schema(r, file=lab, kinds=KINDS, reader="a report")
         notes += check_same_site(site, r, lab)
     _check_images(site)
 
@@ -254,8 +219,9 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
                        if r["kind"] == "track" else
                        "Where the sounds came from: the located positions and their ellipses "
                        "among the microphones") + (" and receivers" if site.receivers else "")
-            maps.append({"src": _data_uri(_map_png(site, r, notes)), "alt": _map_alt(site, r),
-                         "caption": caption, "label": r["_label"]})
+            png, details = _map_png(site, r, notes)
+            maps.append({"src": _data_uri(png), "alt": _map_alt(site, r),
+                         "caption": caption, "details": details, "label": r["_label"]})
     fix_sets = [rc.fix_section(r, site) for r in results if r["kind"] == "fix"]
     tracks = [rc.track_section(r, site) for r in results if r["kind"] == "track"]
     levels = []
@@ -276,6 +242,8 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
         "title": title or site.title,
         "site_title": site.title,
         "site_file": site.path.name,
+        "title_block": [{"label": REPORT_LABELS[k], "value": v}
+                        for k, v in getattr(site, "report", {}).items()],
         "generated": generated or datetime.date.today().isoformat(),
         "version": __version__,
         "inputs": [{"file": r["_label"], "kind": r["kind"],

@@ -10,10 +10,12 @@ finer than the caller's resolution.
 from __future__ import annotations
 
 import math
+import re
 
 from locate.common import format_length
 
-__all__ = ["MINUS", "NBSP", "DASH", "finite", "num", "length", "seconds", "micro_seconds",
+__all__ = ["MINUS", "NBSP", "DASH", "client_words", "finite", "num", "length", "seconds",
+           "micro_seconds",
            "degrees", "pm", "db", "percent", "latitude", "longitude", "decimals_for_position"]
 
 MINUS = "\u2212"
@@ -137,3 +139,40 @@ def decimals_for_position(semi_major_m, lo: int = 1, hi: int = 3) -> int:
     step = float(semi_major_m) / 3.0
     d = int(math.ceil(-math.log10(step)))
     return int(min(max(d, lo), hi))
+
+
+# What the tool's own notes say in its terms, and what a client reads instead.  The core speaks
+# in option and field names (they tell a user of the tool what to type); a report is read by
+# people who never type them.
+_CLIENT_WORDS = (
+    (r"\s*\(?\bsee tdoa plan\)?", " (see the planning map)"),
+    (r"\bwith --band around it\b|\ba --band around it\b", "an analysis band around it"),
+    (r"\ba better --band\b", "a better-chosen analysis band"),
+    (r"--band\b", "the analysis band"),
+    (r"--source-z\b", "the source height"),
+    (r"--sound-speed\b", "the sound speed"),
+    (r"--solve-air\b", "solving for the sound speed"),
+    (r"--window\b", "the analysis window"),
+    (r"--from/--to\b|--from\b|--to\b", "the analysed time span"),
+    (r"--[a-z][a-z0-9-]+", "a setting of the analysis"),
+    (r"\btemperature_sd_c\b", "the air temperature's uncertainty"),
+    (r"\bwind_sd_mps\b", "the wind's uncertainty"),
+    (r"\bposition_sd_m\b", "the mic positions' uncertainty"),
+    (r"\bheight_sd_m\b", "the mic heights' uncertainty"),
+    (r"\bclock_sd_s\b", "the clocks' uncertainty"),
+    (r"\btdoa (?:fix|track|level|sync|check|plan|events)\b", "the analysis"),
+)
+_CLIENT_RE = [(re.compile(a), b) for a, b in _CLIENT_WORDS]
+
+
+def client_words(text):
+    """``text`` with command-line options and internal field names said in plain words.
+
+    Applied to every value the report prints, so a note written for a user of the tool reads
+    as it should to a client.  Non-strings pass unchanged.
+    """
+    if not isinstance(text, str) or hasattr(text, "__html__"):
+        return text  # numbers, and markup already made of finalized values (macros)
+    for rx, words in _CLIENT_RE:
+        text = rx.sub(words, text)
+    return text

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from locate.common import write_atomic
+from locate.common import format_length, write_atomic
 from locate.errors import OptionError, ResultFileError, TdoaError
 from locate.geometry.ellipses import ellipse
 
@@ -164,14 +164,23 @@ def read_result(path, *, kinds=None) -> dict:
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise ResultFileError(f"not a readable JSON result ({exc.__class__.__name__}: {exc})",
                               file=p) from None
+    check_schema(obj, file=p, kinds=kinds)
+    check_result_fields(obj, p)
+    return obj
+
+
+def check_schema(obj, *, file=None, kinds=None, reader="this command"):
+    """The one check that ``obj`` is a ``tdoa-result/1`` document of one of ``kinds``.
+
+    Returns ``obj``; raises :class:`ResultFileError` naming ``file`` and the field otherwise.
+    """
     if not isinstance(obj, dict) or obj.get("schema") != SCHEMA:
         got = obj.get("schema") if isinstance(obj, dict) else type(obj).__name__
         raise ResultFileError(f"schema is {got!r}, expected {SCHEMA!r}: pass a result written "
-                              "by tdoa fix, track or level", file=p, field="schema")
+                              "by tdoa fix, track or level", file=file, field="schema")
     if kinds is not None and obj.get("kind") not in kinds:
-        raise ResultFileError(f"kind is {obj.get('kind')!r}; this command reads "
-                              + " or ".join(repr(k) for k in kinds), file=p, field="kind")
-    check_result_fields(obj, p)
+        raise ResultFileError(f"kind is {obj.get('kind')!r}; {reader} reads "
+                              + " or ".join(repr(k) for k in kinds), file=file, field="kind")
     return obj
 
 
@@ -412,3 +421,51 @@ def fixes_csv(result: dict) -> str:
 
 def _fmt(v):
     return "" if v is None or not math.isfinite(v) else f"{v:.3f}"
+
+
+SAME_PLACE_M = 0.01  # a mic moved by more than this since the result: say so
+
+
+def check_same_site(site, result, label):
+    """Refuse a result made from another site file (its mic names differ from the site's).
+
+    Returns
+    -------
+    list of str
+        Notes for the report when the names agree but mics moved (re-surveyed since).
+
+    Raises
+    ------
+    locate.errors.ResultFileError
+        Naming the result file and the field ``mics``.
+    """
+    mics = result.get("mics")
+    if not isinstance(mics, list) or not mics:
+        return [f"{label} does not list its mics: it could not be checked against the site "
+                "file"]
+    names = [str(m.get("name")) if isinstance(m, dict) else str(m) for m in mics]
+    if names != site.mic_names:
+        missing = [n for n in site.mic_names if n not in names]
+        extra = [n for n in names if n not in site.mic_names]
+        if not extra and not missing:
+            detail = "; the same names in another order"
+        elif len(extra) < len(names):
+            detail = "; " + "; ".join(p for p in (
+                f"not in the site: {', '.join(extra)}" if extra else "",
+                f"not in the result: {', '.join(missing)}" if missing else "") if p)
+        else:
+            detail = ""
+        raise ResultFileError(f"its mics ({', '.join(names)}) are not those of the site file "
+                              f"{site.path.name} ({', '.join(site.mic_names)}{detail}): was "
+                              "it made from another site?", file=label, field="mics")
+    notes = []
+    check_mic_positions(site, result, label)
+    moved = mic_moves_m(site, result)
+    if moved is None:
+        return notes
+    if np.nanmax(moved) > SAME_PLACE_M:
+        k = int(np.nanargmax(moved))
+        notes.append(f"{label} was computed with mic positions that differ from the site file "
+                     f"by up to {format_length(moved[k])} (mic {names[k]}): the site file was "
+                     "edited after the result was made")
+    return notes

@@ -321,10 +321,11 @@ def test_nan_samples_in_the_span_are_refused(tmp_path):
 def test_bad_spans(tmp_path):
     _multichannel(tmp_path)
     rec = open_recordings(load_site(_site(tmp_path, [{"channel": c} for c in (1, 2, 3, 4)])))
-    _rec_error(lambda: rec.read(1.0, 3.0), "--to", "past the end", "last 2.000 s")
-    _rec_error(lambda: rec.read(1.0, 1.0), "--from", "--from must be before --to")
-    _rec_error(lambda: rec.read(1.5, 1.0), "--from", "--from must be before --to")
-    _rec_error(lambda: rec.read(-1.0, 1.0), "--from", "before the recordings begin")
+    # the library names its parameters; the CLI says --from/--to (tests/cli)
+    _rec_error(lambda: rec.read(1.0, 3.0), "stop_s", "past the end", "last 2.000 s")
+    _rec_error(lambda: rec.read(1.0, 1.0), "start_s", "start_s must be before stop_s")
+    _rec_error(lambda: rec.read(1.5, 1.0), "start_s", "start_s must be before stop_s")
+    _rec_error(lambda: rec.read(-1.0, 1.0), "start_s", "before the recordings begin")
 
 
 # ------------------------------------------------------------------------------------ writer

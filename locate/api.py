@@ -1,0 +1,141 @@
+"""The public Python API: what the ``tdoa`` commands do, as functions (see docs/api.md).
+
+Every function here calls the same workflow code as the command line, so a result from Python
+equals the command's JSON for the same inputs (same ellipses, budget and warnings).  Site
+arguments take a path or a :class:`~locate.io.site.Site` from :func:`load_site`.
+
+Examples
+--------
+>>> import locate
+>>> site = locate.load_site(locate.demo_dir() / "yard.toml")
+>>> [m.name for m in site.mics][:3]
+['NW-gate', 'NE-shed', 'E-fence']
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from locate.errors import OptionError
+from locate.io.audio import open_recordings
+from locate.io.site import Site
+from locate.io.site import load_site as _load_site
+from locate.physics.air import sound_speed_mps
+from locate.signal.delays import estimate_delays
+from locate.workflows.locating import list_events, locate_recordings
+
+__all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "detect_events",
+           "plan", "write_result", "read_result", "sound_speed_mps", "demo_dir"]
+
+
+def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
+    """Read and validate a site file (TOML, docs/site-file.md).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    dims : {2, 3}
+        The fixes planned: 3-D needs mics at several heights.
+    require_audio : bool
+        False to load a layout without recordings (planning).
+    """
+    return _load_site(path, dims=dims, require_audio=require_audio)
+
+
+def _site(site, dims=2, require_audio=True) -> Site:
+    return site if isinstance(site, Site) else _load_site(site, dims=dims,
+                                                          require_audio=require_audio)
+
+
+def _band(band_hz):
+    if band_hz is None:
+        return None
+    lo, hi = (float(b) for b in band_hz)
+    return lo, hi
+
+
+def locate(site, *, start_s=None, stop_s=None, window_s=None, band_hz=None, dims=2,
+           source_z_m=0.0, sound_speed_mps=None, threshold_db=10.0, reject=True,
+           solve_air=False, solve_wind=False) -> dict:
+    """Locate a stationary source, as ``tdoa fix`` does.
+
+    Without a span every detected event is fixed; with ``start_s``/``stop_s`` one fix of the
+    span; with ``window_s`` too, one fix per window.
+
+    Returns
+    -------
+    dict
+        The ``tdoa-result/1`` document ``tdoa fix --json`` writes (``fixes`` with
+        ``position_m``, ``covariance_m2``, ``ellipse95``, ``uncertainty_budget``, ``warnings``).
+
+    Examples
+    --------
+    >>> import locate
+    >>> result = locate.locate(locate.demo_dir() / "yard.toml", source_z_m=1.0)
+    >>> len(result["fixes"]) >= 1 and result["kind"]
+    'fix'
+    """
+    if (start_s is None) != (stop_s is None):
+        raise OptionError("give both start_s and stop_s, or neither", field="start_s")
+    s = _site(site, dims)
+    return locate_recordings(s, open_recordings(s), start_s=start_s, stop_s=stop_s,
+                             window_s=window_s, band_hz=_band(band_hz), dims=dims,
+                             source_z_m=source_z_m, sound_speed_mps=sound_speed_mps,
+                             threshold_db=threshold_db, reject=reject, solve_air=solve_air,
+                             solve_wind=solve_wind)
+
+
+def detect_events(site, *, start_s=None, stop_s=None, band_hz=None, threshold_db=10.0) -> dict:
+    """The detected events of a span, as ``tdoa events --json`` writes them.
+
+    Examples
+    --------
+    >>> import locate
+    >>> doc = locate.detect_events(locate.demo_dir() / "yard.toml")
+    >>> doc["kind"], len(doc["events"]) >= 1
+    ('events', True)
+    """
+    s = _site(site)
+    return list_events(s, open_recordings(s), start_s=start_s, stop_s=stop_s,
+                       band_hz=_band(band_hz), threshold_db=threshold_db)
+
+
+def plan(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=None, dims=2,
+         source_z_m=0.0, n_propose=1, objective="worst", grid_step_m=None,
+         extent_m=None) -> dict:
+    """Expected 95 % ellipse size over the site and the best next mic(s), as ``tdoa plan``.
+
+    With neither ``timing_sd_s`` nor ``band_hz`` the timing is the same default as the
+    command's (:data:`locate.accuracy.plan_site.DEFAULT_TIMING_SD_S`).
+    """
+    from locate.accuracy.plan_site import DEFAULT_TIMING_SD_S, plan_site
+
+    s = _site(site, dims, require_audio=False)
+    if timing_sd_s is None and band_hz is None:
+        timing_sd_s = DEFAULT_TIMING_SD_S
+    res = plan_site(s, timing_sd_s=timing_sd_s, band_hz=_band(band_hz), snr_db=snr_db,
+                    duration_s=duration_s, grid_step_m=grid_step_m, extent_m=extent_m,
+                    candidates="auto" if n_propose else None, region="auto", dims=dims,
+                    source_z_m=source_z_m, objective=objective, n_propose=n_propose)
+    return res.to_dict()
+
+
+def write_result(path, result: dict) -> Path:
+    """Write a result document as JSON, atomically (never half a file)."""
+    from locate.results.documents import write_json
+
+    return write_json(path, result)
+
+
+def read_result(path, *, kinds=None) -> dict:
+    """Read and check a result JSON file (schema ``tdoa-result/1``)."""
+    from locate.results.documents import read_result as _read
+
+    return _read(path, kinds=kinds)
+
+
+def demo_dir() -> Path:
+    """The folder of the bundled demo recordings (invented scenes)."""
+    from locate.workflows.demo_data import demo_dir as _demo_dir
+
+    return _demo_dir()

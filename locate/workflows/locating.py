@@ -1,0 +1,169 @@
+"""What ``tdoa fix`` does, callable from Python: a site's recordings in, a result dict out.
+
+:func:`locate_recordings` fixes every detected event, one span, or each window of a span,
+with the same checks, uncertainty budget and warnings as the command line (which calls it and
+only prints and writes).  The fast many-window path is :mod:`locate.workflows.sweep`.
+"""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+
+from locate.errors import NothingFoundError, OptionError
+from locate.fix.air_solve import fit_entry
+from locate.signal.event_choice import choose_events
+from locate.workflows.fixing import (
+    conditions_for,
+    fix_result,
+    fix_span,
+    plan_spans,
+    require_events,
+    scan_events,
+)
+
+__all__ = ["locate_recordings", "list_events", "same_shape", "no_progress"]
+
+
+def same_shape(message: str) -> str:
+    """A warning with its numbers blanked: the same note about other figures compares equal."""
+    return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
+
+
+class _Quiet:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+    def update(self, n):
+        pass
+
+
+def no_progress(label, total):
+    """The default progress: nothing shown (``progress(label, total)`` -> context manager with
+    ``update(n)``)."""
+    return _Quiet()
+
+
+def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=None,
+                      band_hz=None, dims=2, source_z_m=0.0, sound_speed_mps=None,
+                      threshold_db=10.0, reject=True, keep_curves=False, solve_air=False,
+                      solve_wind=False, events_choice=None, progress=no_progress) -> dict:
+    """Fix a stationary source in a site's recordings.
+
+    Parameters
+    ----------
+    site : locate.io.site.Site
+    recordings : locate.io.audio.Recordings
+        From :func:`locate.io.audio.open_recordings`.
+    start_s, stop_s : float, optional
+        A span, seconds into the recording; without it every detected event is fixed.
+    window_s : float, optional
+        With a span: fix each consecutive window of this length.
+    band_hz : (float, float), optional
+        Analysis band; default: where the signal stands above the noise.
+    dims : {2, 3}
+        2: horizontal fix at height ``source_z_m``; 3: full 3-D fix.
+    sound_speed_mps : float, optional
+        Override the sound speed from the site's air.
+    threshold_db : float
+        Event detection threshold above the background.
+    reject : bool
+        Run the integrity test (may exclude a mic).
+    keep_curves : bool
+        Keep each pair's correlation curve (for the diagnostics figure).
+    solve_air, solve_wind : bool
+        Solve the sound speed (and a uniform wind) with the position.
+    events_choice : locate.signal.event_choice.EventChoice, optional
+        Which detected events to fix.
+    progress : callable
+        ``progress(label, total)`` -> context manager with ``update(n)``.
+
+    Returns
+    -------
+    dict
+        A ``tdoa-result/1`` document of kind ``fix``.
+
+    Raises
+    ------
+    locate.errors.NothingFoundError
+        No event, or no span gave a usable fix; its ``warnings`` attribute lists why.
+    """
+    rec = recordings
+    cond = conditions_for(site, sound_speed_mps)
+    warnings = list(site.warnings) + list(rec.warnings)
+    if start_s is None:
+        with progress("Scanning for events", rec.duration_s) as bar:
+            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz,
+                                 threshold_db=threshold_db, progress=bar.update)
+        require_events(events, rec.start_s, rec.stop_s)
+        events, notes = choose_events(events, events_choice)
+        warnings.extend(notes)
+        spans = plan_spans(events, rec, site.positions_m, cond)
+        times = [float(np.nanmin(ev.onset_s)) for ev in events]
+    elif window_s is not None:
+        if window_s > stop_s - start_s:
+            raise OptionError(f"window {window_s:g} s is longer than the span "
+                              f"{stop_s - start_s:g} s", field="window_s")
+        edges = np.arange(start_s, stop_s - window_s + 1e-9, window_s)
+        spans = [(float(a), float(a + window_s)) for a in edges]
+        times = [a for a, _ in spans]
+    else:
+        spans, times = [(start_s, stop_s)], [start_s]
+    entries = []
+    with progress("Locating", len(spans)) as bar:
+        for (a, b), t in zip(spans, times):
+            try:
+                entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
+                                            source_z_m=source_z_m, reject=reject,
+                                            keep_curves=keep_curves, t_s=t)
+                if solve_air:
+                    fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
+                              solve_wind=solve_wind)
+            except NothingFoundError as exc:
+                warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
+                bar.update(1)
+                continue
+            entries.append(entry)
+            bar.update(1)
+    # the reads' channel notes, unless a fix already said the same (its own figures)
+    said = ({same_shape(w) for e in entries for w in e["warnings"]}
+            | {same_shape(w) for w in warnings})
+    warnings.extend(w for w in rec.warnings if same_shape(w) not in said)
+    if not entries:
+        err = NothingFoundError("no span gave a usable fix (see the warnings above)")
+        err.warnings = warnings
+        raise err
+    return fix_result(site, cond, entries, warnings=warnings, dims=dims, source_z_m=source_z_m)
+
+
+def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,
+                threshold_db=10.0, progress=no_progress) -> dict:
+    """What ``tdoa events`` does: the detected events of a span as a result dict.
+
+    Returns
+    -------
+    dict
+        A ``tdoa-result/1`` document of kind ``events``; ``events`` holds one dict per event
+        (``t_s``, ``duration_s``, ``level_db``, ``n_mics``, ``first_mic``, ...) and
+        ``span_s`` the span scanned.
+
+    Raises
+    ------
+    locate.errors.NothingFoundError
+        No event in the span.
+    """
+    rec = recordings
+    cond = conditions_for(site)
+    a = rec.start_s if start_s is None else start_s
+    b = rec.stop_s if stop_s is None else stop_s
+    with progress("Scanning for events", b - a) as bar:
+        found = scan_events(rec, site.positions_m, cond, band_hz=band_hz, start_s=a, stop_s=b,
+                            threshold_db=threshold_db, progress=bar.update)
+    require_events(found, a, b)
+    rows = [ev.to_dict(site.mic_names) for ev in found]
+    return fix_result(site, cond, [], kind="events", extra={"events": rows, "span_s": [a, b]},
+                      warnings=rec.warnings)
