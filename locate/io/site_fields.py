@@ -9,6 +9,7 @@ from __future__ import annotations
 import datetime as _dt
 import difflib
 import math
+import os
 import re
 from pathlib import Path
 
@@ -34,7 +35,11 @@ class Context:
         return SiteFileError(message, file=self.path, field=field or None)
 
     def resolve(self, text) -> Path:
-        return (self.folder / Path(text).expanduser()).resolve()
+        path = self.folder / Path(text).expanduser()
+        try:
+            return path.resolve()
+        except (RuntimeError, OSError):  # a symlink loop: the loader names it where it is used
+            return Path(os.path.abspath(path))
 
 
 def _join(where, key):

@@ -138,6 +138,9 @@ def _audio_info(ctx, path, field, require_audio, warnings):
     info = None
     if not path.exists():
         msg = f"file not found: {path} (paths are relative to the site file's folder)"
+        if path.is_symlink():
+            msg = (f"{path} is a symbolic link that leads nowhere (a loop or a missing "
+                   "target): fix the link or name the audio file")
         if require_audio:
             raise ctx.error(field, msg)
         warnings.append(f"{field}: {msg}")

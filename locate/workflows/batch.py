@@ -48,7 +48,7 @@ class Terminated(KeyboardInterrupt):
 def inside(path: Path, folder: Path) -> bool:
     """True when ``path`` (resolved: symlinks and ``..``) lies within ``folder`` (resolved)."""
     try:
-        Path(path).resolve().relative_to(Path(folder).resolve())
+        Path(os.path.realpath(path)).relative_to(os.path.realpath(folder))
     except ValueError:
         return False
     return True

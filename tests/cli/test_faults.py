@@ -669,3 +669,12 @@ def test_a_file_name_that_is_not_utf8_and_a_closed_pipe_give_no_traceback(earlie
     proc.wait(timeout=120)
     assert b"Traceback" not in err and b"Exception ignored" not in err, err
     assert b"error" not in err and proc.returncode == 1, err  # stopped quietly
+
+
+def test_a_recording_that_is_a_symlink_loop_is_one_line_naming_it(scene, tmp_path):
+    # pathlib raises RuntimeError("Symlink loop") on resolve(): it must not become internal
+    site = tmp_path / "site.toml"
+    site.write_text(scene.read_text())
+    (tmp_path / "rec.wav").symlink_to(tmp_path / "rec.wav")
+    line = _one_line_error(*run(["check", site])[::2])
+    assert "rec.wav" in line and "symbolic link" in line and "recording.file" in line, line
