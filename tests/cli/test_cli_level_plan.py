@@ -81,14 +81,22 @@ def test_steady_source_without_background_leaves_out_bands_outside_its_band(tmp_
     code, _, err = run(["fix", site, "--from", 2.0, "--to", 4.0, "--source-z", src[2],
                         "--json", fix_json])
     assert code == 0, err
-    code, _, err = run(["level", site, fix_json, "--json", lev_json])
+    code, out, err = run(["level", site, fix_json, "--json", lev_json])
     assert code == 0, err
-    assert "outside the band the source was located in" in err
+    assert "cross-spectra" in err
     doc = json.loads(lev_json.read_text())
     got = {b: v for b, v in zip(doc["bands_hz"], doc["source_lw_db"])}
-    assert got[63] is None and got[4000] is None and got[8000] is None
+    up = dict(zip(doc["bands_hz"], doc["source_lw_upper_db"]))
+    flag = dict(zip(doc["bands_hz"], doc["source_lw_is_upper_bound"]))
+    # the bands holding only noise are not levels: upper bounds that hold, never levels
+    for b in (63, 4000, 8000):
+        assert got[b] is None and flag[b] is True, (b, got[b])
+        assert up[b] >= lw_true[list(BANDS).index(b)], (b, up[b])
     for b in (500, 1000):
-        assert abs(got[b] - lw_true[list(BANDS).index(b)]) <= 1.0, (b, got[b])
+        assert flag[b] is False and abs(got[b] - lw_true[list(BANDS).index(b)]) <= 1.0, b
+    # the A-weighted total sums the level bands only, and says which
+    assert doc["source_lwa_bands_hz"] == [b for b in BANDS.tolist() if not flag[b]]
+    assert "left out" in doc["source_lwa_note"] and "<" in out
 
 
 def test_level_without_calibration_is_labelled_dbfs(level_scene, tmp_path):
