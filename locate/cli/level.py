@@ -54,7 +54,7 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, ground, json_path):
         lev = level_for_track(rec, site, cond, result, hemisphere=hemisphere,
                               result_path=result_path, ground=ground)
         out.append(lev)
-        _echo_level(ctx, lev, "the pass-by")
+        _echo_level(ctx, lev, "pass-by")
     else:
         fixes = result.get("fixes", [])
         if fix_no is not None:
@@ -95,9 +95,10 @@ def _bound(v, up):
 def _echo_level(ctx, lev, head):
     unit = "dB" if lev["calibrated"] else "dBFS-rel"
     ups = lev.get("source_lw_upper_db") or [None] * len(lev["bands_hz"])
-    echo(ctx, f"{head}: sound power LwA {fmt_db(lev['source_lwa_db'])} {unit} "
-              f"(+-{lev['lw_position_sd_db']:.1f} dB from the position), averaged over "
-              f"the {lev['active_duration_s']:.3g} s it sounds")
+    sd = lev.get("lw_position_sd_db")
+    sd_text = f" (+-{sd:.1f} dB from the position)" if sd is not None else ""
+    echo(ctx, f"{head}: sound power LwA {fmt_db(lev['source_lwa_db'])} {unit}{sd_text}, "
+              f"averaged over the {lev['active_duration_s']:.3g} s it sounds")
     echo(ctx, f"   {lev.get('source_lwa_note', '')}")
     echo(ctx, "   band Hz   " + " ".join(f"{b:>6}" for b in lev["bands_hz"]))
     echo(ctx, "   Lw        " + " ".join(f"{_bound(v, u):>6}"

@@ -65,6 +65,7 @@ __all__ = [
     "level_result",
     # coherent source power, ISO 9613-2, event measures
     "pair_cross_powers",
+    "band_mean_squares",
     "coherent_source_power",
     "ground_attenuation_db",
     "iso9613_barrier_db",
@@ -94,7 +95,8 @@ _FULL_SCALE_SINE_MS_ = 0.5  # mean square of a 0 dBFS sine (AES17 convention)
 
 
 def air_attenuation_db(distance_m, bands_hz, temperature_c, relative_humidity,
-                       pressure_kpa=REFERENCE_PRESSURE_KPA, *, absorption="mid-band"):
+                       pressure_kpa=REFERENCE_PRESSURE_KPA, *, absorption="mid-band",
+                       band_shape=None):
     """Atmospheric absorption over a path, per band, dB, shape ``(..., B)``.
 
     Parameters
@@ -110,9 +112,28 @@ def air_attenuation_db(distance_m, bands_hz, temperature_c, relative_humidity,
         band loss of a spectrum flat per hertz across the band's exact edges,
         -10 lg(mean over the band of 10^(-alpha(f) d / 10)); it matters at long range in dry air
         at 4-8 kHz, where the mid-band value overstates the loss of a band by several dB.
+    band_shape : array_like (B, S), optional
+        The sound's power in S equal log-frequency parts of each band (e.g. the measured
+        one-third octaves): the band loss is then -10 lg(sum_s w_s 10^(-alpha(f_s) d / 10) /
+        sum_s w_s), alpha at each part's mid frequency; bands without a positive shape fall
+        back to ``absorption``.
     """
     r = np.asarray(distance_m, dtype=float)[..., None]
     fm = exact_mid_band_hz(bands_hz)
+    if band_shape is not None:
+        base = air_attenuation_db(distance_m, bands_hz, temperature_c, relative_humidity,
+                                  pressure_kpa, absorption=absorption)
+        w = np.nan_to_num(np.clip(np.asarray(band_shape, dtype=float), 0.0, None))
+        parts = w.shape[-1]
+        octave = np.all(np.round(10.0 * np.log10(fm / 1000.0)) % 3 == 0)
+        ratio = 10.0 ** (0.3 if octave else 0.1)  # band width, IEC 61260-1
+        f_parts = fm[:, None] * ratio ** ((np.arange(parts) + 0.5) / parts - 0.5)[None, :]
+        alpha = absorption_db_per_m(f_parts, temperature_c, relative_humidity, pressure_kpa)
+        total = np.sum(w, axis=-1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            mix = -10.0 * np.log10(np.sum(w * 10.0 ** (-alpha * r[..., None] / 10.0), axis=-1)
+                                   / total)
+        return np.where(total > 0, mix, base)
     if absorption == "mid-band":
         return absorption_db_per_m(fm, temperature_c, relative_humidity, pressure_kpa) * r
     if absorption != "band-average":
@@ -346,7 +367,7 @@ def _barrier_parts(barrier, index):
 def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, relative_humidity,
                        pressure_kpa=REFERENCE_PRESSURE_KPA, *, barriers=(), sound_speed_mps=None,
                        hemisphere=False, absorption="mid-band", cap_db=20.0, receiver_name=None,
-                       ground=None, barrier_method="maekawa"):
+                       ground=None, barrier_method="maekawa", band_shape=None):
     """Predicted band levels at a receiver from the source sound power.
 
     Parameters
@@ -367,6 +388,8 @@ def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, rel
         For the wavelength; default :func:`locate.physics.air.sound_speed_mps` of the air state.
     hemisphere, absorption
         As in :func:`source_power_level_db`.
+    band_shape : array_like (B, S), optional
+        The source's power in parts of each band, see :func:`air_attenuation_db`.
     cap_db : float or None
         Barrier cap, see :func:`barrier_attenuation_db`.
     receiver_name : str, optional
@@ -427,7 +450,7 @@ def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, rel
         screen = barrier_db
     div = float(_divergence_db(distance, hemisphere))
     air_db = air_attenuation_db(distance, bands_hz, temperature_c, relative_humidity,
-                                pressure_kpa, absorption=absorption)
+                                pressure_kpa, absorption=absorption, band_shape=band_shape)
     lp = lw - div - air_db - ground_db - screen
     return {"distance_m": distance, "lp_db": lp, "lpa_db": float(lwa_db(lp, bands_hz)),
             "barrier_db": barrier_db, "ground_db": ground_db, "air_db": air_db,
@@ -520,6 +543,34 @@ COHERENT_MARGIN_DB = 10.0  # a band counts as a level when its coherent part sta
 # the 10 dB at which background corrections become negligible)
 _UPPER_SIGMAS = 3.0  # an upper bound is the estimate plus three of its standard errors
 MIN_DOF = 50  # a level needs >= 50 degrees of freedom: sampling scatter <= 0.6 dB (1 sd)
+
+
+def band_mean_squares(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
+                      full_scale_db_spl=None, undo_air=None):
+    """Band mean squares ``(M, B)`` of each mic, as ``auto_ms`` of :func:`pair_cross_powers`
+    (the same scaling and the same per-bin removal of the absorption, ``undo_air``)."""
+    x = np.asarray(signals, dtype=float)
+    fs = float(sample_rate_hz)
+    m, n = x.shape
+    cal = np.zeros(m) if full_scale_db_spl is None else np.broadcast_to(
+        np.asarray(full_scale_db_spl, dtype=float), (m,))
+    spec = np.fft.rfft(x * (10.0 ** (cal / 20.0) / np.sqrt(_FULL_SCALE_SINE_MS_))[:, None],
+                       axis=-1)
+    freqs = np.fft.rfftfreq(n, 1.0 / fs)
+    if undo_air is not None:
+        d, t_c, rh, p_kpa = undo_air
+        alpha = absorption_db_per_m(np.maximum(freqs, 1.0), t_c, rh, p_kpa)
+        spec = spec * 10.0 ** (alpha[None, :] * np.asarray(d, float)[:, None] / 20.0)
+    weight = np.full(freqs.shape, 2.0)
+    weight[0] = 0.0
+    if n % 2 == 0:
+        weight[-1] = 1.0
+    lo, hi = octave_band_edges_hz(bands_hz)
+    usable = (hi <= fs / 2.0) & (lo >= 4 * fs / n)
+    power = np.abs(spec) ** 2 * (weight / n**2)
+    out = np.stack([np.sum(power[:, (freqs >= a) & (freqs < b)], axis=-1)
+                    for a, b in zip(lo, hi, strict=True)], axis=-1)
+    return np.where(usable, out, np.nan)
 
 
 def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
@@ -653,9 +704,10 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         of the pair mean (and above three times one pair's noise floor) and holds enough
         degrees of freedom (:data:`MIN_DOF`: sampling scatter 1 / sqrt(dof) <= 0.6 dB); else
         an upper bound.
-    pair_attenuation_db : array_like (P, B), optional
-        The pairs' own loss, -10 lg(mean over time of g_i g_j) for a moving source (g the
-        pressure gain 10^(-A/20) of each path at each instant); default (A_i + A_j) / 2.
+    pair_attenuation_db : array_like (P, B) or (P, B, S), optional
+        The pairs' own loss (per band, or per part of each band), -10 lg(mean over time of
+        g_i g_j) for a moving source (g the pressure gain 10^(-A/20) of each path at each
+        instant); default (A_i + A_j) / 2.
 
     Returns
     -------
@@ -663,7 +715,9 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         ``lw_db`` (B,) level or NaN; ``upper_db`` (B,) upper bound where not a level, else NaN;
         ``is_upper`` (B,) bool; ``floor_db`` (B,) the noise floor of the estimate (one standard
         error, as a sound power); ``mic_lw_db`` (M, B) each mic's estimate from its pairs;
-        ``spread_db`` (B,) max - min of those over the mics.
+        ``spread_db`` (B,) max - min of those over the mics; ``part_power`` (B, S) the power
+        found in each part of each band (half its bound where not found): the spectrum's shape
+        inside the band, for :func:`air_attenuation_db`.
 
     Notes
     -----
@@ -683,7 +737,8 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         gain = 10.0 ** ((att[pairs[:, 0]] + att[pairs[:, 1]]) / 20.0)  # (P, B)
     else:
         gain = 10.0 ** (np.asarray(pair_attenuation_db, dtype=float) / 10.0)
-    gain = gain[..., None]
+    if gain.ndim == 2:
+        gain = gain[..., None]  # the same for every part of the band
     w = c * gain
     n_p = np.sum(np.isfinite(w), axis=0)  # (B, S)
     clear = 10.0 ** (margin_db / 10.0)
@@ -718,7 +773,9 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
     spread = np.where(np.any(finite, axis=0),
                       np.max(np.where(finite, mic_lw, -np.inf), axis=0)
                       - np.min(np.where(finite, mic_lw, np.inf), axis=0), np.nan)
-    return {"lw_db": lw, "upper_db": up, "is_upper": ~ok & usable, "floor_db": floor,
+    shape = np.where(sub_ok, mean_w, np.where(np.isfinite(sub_up), 0.5 * sub_up, 0.0))
+    return {"part_power": shape, "lw_db": lw, "upper_db": up, "is_upper": ~ok & usable,
+            "floor_db": floor,
             "mic_lw_db": mic_lw, "spread_db": spread}
 
 

@@ -132,15 +132,16 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
         levels.air_attenuation_db(dist, bands, cond.temperature_c, cond.relative_humidity,
                                   site.air.pressure_kpa)
     undo = (dist, cond.temperature_c, cond.relative_humidity, site.air.pressure_kpa)
-    est = _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, lp_bg,
+    est = _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg,
                         to_active)
     lw, spread, upper = est["lw_db"], est["spread_db"], est["upper_db"]
     lp = est["mic_lp_db"]
     if est["disagree"]:
         notes.append("band(s) " + ", ".join(f"{b:g} Hz" for b in est["disagree"]) + ": the "
-                     "part common to the mics is more than 2 dB below the background-corrected "
-                     "level (sound that does not arrive alike at the mics: turbulence, "
-                     "reflections or other sources); the background-corrected level is given")
+                     "part common to the mics differs by more than 2 dB from the level less "
+                     "the background (sound that does not arrive alike at the mics: "
+                     "turbulence, reflections or other sources; or a background that "
+                     "changes); the background-corrected level is given")
     # position uncertainty -> distance uncertainty -> level uncertainty (per mic, worst)
     unit = (mics - source[None, :]) / dist[:, None]
     dist_sd = np.sqrt(np.clip(np.einsum("mi,ij,mj->m", unit, cov, unit), 0.0, None))
@@ -155,7 +156,7 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
                                          sound_speed_mps=cond.sound_speed_mps,
                                          hemisphere=hemisphere, receiver_name=r.name,
                                          ground=ground, barrier_method="iso9613-2",
-                                         absorption=ABSORPTION)
+                                         absorption=ABSORPTION, band_shape=est["shape"])
         pred.update(levels.receiver_event_measures(pred["lp_db"], bands, active_s, shape))
         receivers.append((r.name, pred))
     for _name, pred in receivers:  # the bound of the bands that are not levels, carried along
@@ -223,14 +224,15 @@ def _forward(upper, lw, pred):
     return np.asarray(upper, dtype=float) - loss
 
 
-def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, lp_bg,
-                  to_active):
-    """Per band: the source's part from a background span where it clears it, else from the
-    cross-spectra (absorption taken off each frequency bin, ``undo``; ``div`` the divergence
-    alone); an upper bound where neither makes it a level."""
+def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg, to_active):
+    """Per band, the source's part: from the cross-spectra between mics (absorption taken off
+    each frequency bin, ``undo``; ``div`` the divergence alone) and, when a background span
+    ``bg`` was found, from the mics' own spectra less the background's.  Where both are levels
+    and agree within 2 dB the cross-spectral one is given, where they disagree the
+    background-corrected one (sound that decorrelates between mics still counts) with a note;
+    an upper bound where neither is a level."""
     m = aligned.shape[0]
     nb = len(bands)
-    method = [None] * nb
     if m >= 2:
         cross = levels.pair_cross_powers(aligned, fs, bands_hz=bands, full_scale_db_spl=fs_db,
                                          shifts_s=frac_s, undo_air=undo)
@@ -238,32 +240,36 @@ def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, lp
         lw_coh, upper = coh["lw_db"] + to_active, coh["upper_db"] + to_active
         spread_coh, floor = coh["spread_db"], coh["floor_db"] + to_active
         mic_coh = coh["mic_lw_db"] - att + to_active
+        shape = coh["part_power"]
     else:  # one mic: its whole band level is all that can be said (an upper bound)
         lw_coh = np.full(nb, np.nan)
         upper = levels.combine_mics(lp_auto + att + to_active)[0]
         spread_coh, floor = np.full(nb, np.nan), np.full(nb, np.nan)
         mic_coh = np.full(att.shape, np.nan)
-    lw = lw_coh.copy()
-    spread = spread_coh.copy()
-    mic_lp = mic_coh.copy()
+        shape = None
+    lw, spread, mic_lp = lw_coh.copy(), spread_coh.copy(), mic_coh.copy()
+    method = ["coherent" if np.isfinite(v) else None for v in lw_coh]
     disagree = []
-    if lp_bg is not None:
-        corrected = levels.background_corrected_db(lp_auto, lp_bg)
-        lw_bg, spread_bg = levels.combine_mics(corrected + att + to_active)
-        use_bg = np.isfinite(lw_bg)
-        for b in np.flatnonzero(use_bg & np.isfinite(lw_coh) & (lw_coh < lw_bg - 2.0)):
-            disagree.append(bands[b])
+    if bg is not None:
+        with np.errstate(divide="ignore"):
+            own = 10.0 * np.log10(levels.band_mean_squares(
+                aligned, fs, bands_hz=bands, full_scale_db_spl=fs_db, undo_air=undo))
+            quiet = 10.0 * np.log10(levels.band_mean_squares(
+                bg, fs, bands_hz=bands, full_scale_db_spl=fs_db, undo_air=undo))
+        corrected = levels.background_corrected_db(own, quiet)
+        lw_bg, spread_bg = levels.combine_mics(corrected + div + to_active)
+        has_bg = np.isfinite(lw_bg)
+        differ = has_bg & np.isfinite(lw_coh) & (np.abs(lw_coh - lw_bg) > 2.0)
+        disagree = [bands[b] for b in np.flatnonzero(differ)]
+        use_bg = has_bg & (~np.isfinite(lw_coh) | differ)
         lw = np.where(use_bg, lw_bg, lw)
         spread = np.where(use_bg, spread_bg, spread)
-        mic_lp = np.where(use_bg[None, :], corrected + to_active, mic_lp)
+        mic_lp = np.where(use_bg[None, :], corrected + div - att + to_active, mic_lp)
         for b in np.flatnonzero(use_bg):
             method[b] = "background"
-    for b in range(nb):
-        if method[b] is None and np.isfinite(lw[b]):
-            method[b] = "coherent"
     upper = np.where(np.isfinite(lw), np.nan, upper)
     return {"lw_db": lw, "upper_db": upper, "spread_db": spread, "mic_lp_db": mic_lp,
-            "method": method, "floor_db": floor, "disagree": disagree}
+            "method": method, "floor_db": floor, "disagree": disagree, "shape": shape}
 
 
 TAPER_FRACTION = 0.04  # Tukey window: 2 % of the span tapered at each end
@@ -347,12 +353,17 @@ def _dense(te, pos, step_s):
     return grid, np.stack([np.interp(grid, te, pos[:, k]) for k in range(3)], axis=-1)
 
 
-def _attenuation(dist, bands, cond, site, hemisphere):
-    """Free-field loss A = Lw - Lp per band for distances ``dist`` (...,): shape (..., B)."""
-    return levels.source_power_level_db(np.zeros(np.shape(dist) + (len(bands),)), dist, bands,
-                                        cond.temperature_c, cond.relative_humidity,
-                                        site.air.pressure_kpa, hemisphere=hemisphere,
-                                        absorption=ABSORPTION)
+def _attenuation(dist, bands, cond, site, hemisphere, shape=None):
+    """Free-field loss A = Lw - Lp per band for distances ``dist`` (...,): shape (..., B);
+    ``shape`` (B, S) the source's power in parts of each band (absorption weighted by it)."""
+    div = levels.source_power_level_db(np.zeros(np.shape(dist) + (len(bands),)), dist, bands,
+                                       cond.temperature_c, cond.relative_humidity,
+                                       site.air.pressure_kpa, hemisphere=hemisphere)
+    div = div - levels.air_attenuation_db(dist, bands, cond.temperature_c,
+                                          cond.relative_humidity, site.air.pressure_kpa)
+    return div + levels.air_attenuation_db(dist, bands, cond.temperature_c,
+                                           cond.relative_humidity, site.air.pressure_kpa,
+                                           absorption=ABSORPTION, band_shape=shape)
 
 
 def _on_emission_time(x, fs, t0_s, t_heard_s):
@@ -403,13 +414,23 @@ def level_for_track(recordings, site, cond, result, *, hemisphere=False, result_
     coarse = np.arange(0, grid.size, max(int(_STEP_S * fs), 1))
     att_t = _attenuation(dist[:, coarse], bands, cond, site, hemisphere)  # (M, G', B)
     g = 10.0 ** (-att_t / 20.0)
+    # the same per one-third of each octave (absorption at its own mid frequency), for the
+    # cross-spectral parts: the absorption changes several-fold across an octave at 4-8 kHz
+    thirds = (np.asarray(levels.exact_mid_band_hz(bands))[:, None]
+              * 10.0 ** (0.1 * np.arange(-1, 2))[None, :]).ravel()
+    att3 = levels.source_power_level_db(
+        np.zeros(dist[:, coarse].shape + (thirds.size,)), dist[:, coarse], thirds,
+        cond.temperature_c, cond.relative_humidity, site.air.pressure_kpa,
+        hemisphere=hemisphere).reshape(dist.shape[0], coarse.size, len(bands), 3)
+    g3 = 10.0 ** (-att3 / 20.0)
     cross = levels.pair_cross_powers(y, fs, bands_hz=bands, full_scale_db_spl=fs_db,
                                      search_s=2e-4)
     pairs = cross["pairs"]
-    pair_att = -10.0 * np.log10(np.mean(g[pairs[:, 0]] * g[pairs[:, 1]], axis=1))  # (P, B)
+    pair_att = -10.0 * np.log10(np.mean(g3[pairs[:, 0]] * g3[pairs[:, 1]], axis=1))  # (P,B,3)
     mic_att = -10.0 * np.log10(np.mean(g**2, axis=1))  # (M, B)
     coh = levels.coherent_source_power(cross, mic_att, pair_attenuation_db=pair_att)
     lw, upper, spread = coh["lw_db"], coh["upper_db"], coh["spread_db"]
+    shape = coh["part_power"]
     notes = ["the source's sound power is taken as constant over the tracked pass, from the "
              "part of each band common to the mics (cross-spectra along the path)"]
     # measured at the mics: the heard span of the tracked pass
@@ -425,7 +446,7 @@ def level_for_track(recordings, site, cond, result, *, hemisphere=False, result_
         meas = levels.event_measures(y_ref[k, i0:i1], fs, t0_s=h0[k],
                                      background_ref=None if bg_ref is None else bg_ref[k])
         pred = _pass_history(lw, dense_t, dense_p, m.position_m, bands, cond, site,
-                             hemisphere, None, [])
+                             hemisphere, None, [], shape=shape)
         row = {"name": m.name, "closest_m": round(float(dist[k].min()), 3)}
         row.update({key: _round(v) for key, v in meas.items()})
         row["lafmax_predicted_db"] = _round(pred["lafmax_db"])
@@ -437,11 +458,11 @@ def level_for_track(recordings, site, cond, result, *, hemisphere=False, result_
     receivers = []
     for r in site.receivers:
         pred = _pass_history(lw, dense_t, dense_p, r.position_m, bands, cond, site, hemisphere,
-                             ground, site.barriers, name=r.name)
+                             ground, site.barriers, name=r.name, shape=shape)
         if np.any(np.isfinite(upper)):
             up = _pass_history(np.where(np.isfinite(upper), upper, np.nan), dense_t, dense_p,
                                r.position_m, bands, cond, site, hemisphere, ground,
-                               site.barriers, name=r.name)
+                               site.barriers, name=r.name, shape=shape)
             pred["lp_upper_db"] = up["lp_db"]
         receivers.append((r.name, pred))
     cautions = list(levels.CAUTIONS)
@@ -490,17 +511,26 @@ def _pass_background(recordings, lo, hi, length_s=1.0):
 
 
 def _pass_history(lw, t_emit, path, point, bands, cond, site, hemisphere, ground, barriers,
-                  name=None):
+                  name=None, shape=None):
     """Band and A-weighted level history at ``point`` for a source of power ``lw`` along the
     path: LAFmax (time of it, source position then), LAE, band Leq over the pass."""
     point = np.asarray(point, dtype=float)
-    lp = np.stack([levels.receiver_levels_db(
-        lw, p, point, bands, cond.temperature_c, cond.relative_humidity, site.air.pressure_kpa,
-        barriers=barriers, sound_speed_mps=cond.sound_speed_mps, hemisphere=hemisphere,
-        receiver_name=name, ground=ground, barrier_method="iso9613-2",
-        absorption=ABSORPTION)["lp_db"]
-        for p in path])  # (G, B)
     dist = np.linalg.norm(path - point[None, :], axis=-1)
+    if np.any(dist < levels.MIN_DISTANCE_M):
+        who = f"receiver {name!r}" if name else "a mic"
+        raise OptionError(f"the path passes within {levels.MIN_DISTANCE_M} m of {who}: no "
+                          "level prediction there", field="receivers")
+    # spreading and absorption for every point at once; ground and walls point by point
+    lp = np.asarray(lw, dtype=float)[None, :] - _attenuation(dist, bands, cond, site, hemisphere,
+                                                              shape)
+    if barriers or ground is not None:
+        zero = np.zeros(len(bands))
+        extra = np.stack([(lambda r: r["ground_db"] + r["screen_db"])(levels.receiver_levels_db(
+            zero, p, point, bands, cond.temperature_c, cond.relative_humidity,
+            site.air.pressure_kpa, barriers=barriers, sound_speed_mps=cond.sound_speed_mps,
+            hemisphere=hemisphere, receiver_name=name, ground=ground,
+            barrier_method="iso9613-2", absorption=ABSORPTION)) for p in path])
+        lp = lp - extra
     t_heard = t_emit + dist / cond.sound_speed_mps
     la = levels.lwa_db(lp, bands)  # (G,)
     ms = np.where(np.isfinite(la), 10.0 ** (la / 10.0), 0.0)
@@ -523,7 +553,7 @@ def _pass_history(lw, t_emit, path, point, bands, cond, site, hemisphere, ground
         lw, path[int(np.argmin(dist))], point, bands, cond.temperature_c,
         cond.relative_humidity, site.air.pressure_kpa, barriers=barriers,
         sound_speed_mps=cond.sound_speed_mps, hemisphere=hemisphere, receiver_name=name,
-        ground=ground, barrier_method="iso9613-2", absorption=ABSORPTION))
+        ground=ground, barrier_method="iso9613-2", absorption=ABSORPTION, band_shape=shape))
     g.update({"distance_m": float(dist.min()), "lp_db": lp_eq, "lpa_db": float(
         levels.lwa_db(lp_eq, bands)), "laeq_db": float(levels.lwa_db(lp_eq, bands)),
         "laeq_interval_s": span, "lae_db": float(lae),
