@@ -408,7 +408,9 @@ def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, rel
         ``distance_m`` (float), ``lp_db`` (B,) = Lw - 20 lg r - 11 - A_atm - A_gr - A_bar
         (ISO 9613-2 eqs. (3), (7)), ``lpa_db`` (float, :func:`lwa_db` of ``lp_db``),
         ``barrier_db`` (B,) the screening (D_z, or the Maekawa loss), ``ground_db`` (B,) A_gr
-        (zeros without ground), ``air_db`` (B,) A_atm, ``divergence_db`` (float).
+        (zeros without ground), ``air_db`` (B,) A_atm, ``divergence_db`` (float),
+        ``screen_db`` (B,) the screening applied, ``barrier_label`` (the most effective wall's
+        label, None when no wall is in the way).
 
     Raises
     ------
@@ -430,6 +432,7 @@ def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, rel
         raise OptionError(f"barrier_method must be 'maekawa' or 'iso9613-2', got "
                           f"{barrier_method!r}", field="barrier_method")
     barrier_db = np.zeros(fm.shape)
+    barrier_label = None
     for i, barrier in enumerate(barriers):  # a few barriers, not samples
         line, height, label = _barrier_parts(barrier, i)
         _check_height(height, label, f"barriers[{i}].height_m")
@@ -439,6 +442,8 @@ def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, rel
         else:
             loss = iso9613_barrier_db(src, rcv, (line, height), fm, c,
                                       cap_db=20.0 if cap_db is None else cap_db)
+        if np.max(loss) > np.max(barrier_db):
+            barrier_label = str(label)
         barrier_db = np.maximum(barrier_db, loss)
     ground_db = np.zeros(fm.shape)
     if ground is not None:
@@ -454,7 +459,7 @@ def receiver_levels_db(lw_db, source_m, receiver_m, bands_hz, temperature_c, rel
     lp = lw - div - air_db - ground_db - screen
     return {"distance_m": distance, "lp_db": lp, "lpa_db": float(lwa_db(lp, bands_hz)),
             "barrier_db": barrier_db, "ground_db": ground_db, "air_db": air_db,
-            "divergence_db": div, "screen_db": screen}
+            "divergence_db": div, "screen_db": screen, "barrier_label": barrier_label}
 
 
 def _jsonable(values, decimals=2):
@@ -508,6 +513,8 @@ def level_result(bands_hz, lw_db, spread_db, receivers=(), *, cautions=CAUTIONS,
         item = {"name": str(name), "distance_m": _jsonable(r["distance_m"]),
                 "lp_db": _jsonable(r["lp_db"]), "lpa_db": _jsonable(r["lpa_db"]),
                 "barrier_db": _jsonable(r["barrier_db"])}
+        if r.get("barrier_label") is not None:
+            item["barrier_label"] = str(r["barrier_label"])
         for key in ("lp_upper_db", "ground_db", "screen_db", "air_db"):
             if key in r:
                 item[key] = _jsonable(r[key])

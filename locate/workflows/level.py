@@ -207,7 +207,8 @@ def propagation_method(ground):
          f"ground effect by the ISO 9613-2 general method with G = {ground:g} (from memory of "
          "the standard's Table 3)")
     return ("spherical spreading (20 lg d + 11 dB), air absorption per band (ISO 9613-1, "
-            f"averaged over each octave band), {g}, screening by walls "
+            "weighted by the spectrum measured in each third of the octave band), "
+            f"{g}, screening by walls "
             "10 lg(3 + 20 z K_met / lambda) capped at 20 dB, less the ground effect it replaces "
             "(ISO 9613-2 eqs. (12), (14), from memory)")
 
