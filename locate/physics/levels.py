@@ -38,6 +38,7 @@ from locate.physics.bands import (
     octave_band_edges_hz,
     octave_band_levels_db,
     time_weighted_ms,
+    weighting_response,
 )
 
 __all__ = [
@@ -75,6 +76,7 @@ __all__ = [
     "c_weighting_db",
     "frequency_weighted",
     "time_weighted_ms",
+    "weighting_response",
     "TIME_CONSTANT_S",
 ]
 
@@ -695,6 +697,15 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
             "dof": dof}
 
 
+def _nan_mean(values, axis=0):
+    """Mean over the finite values along ``axis``; NaN (no warning) where there are none."""
+    v = np.asarray(values, dtype=float)
+    ok = np.isfinite(v)
+    count = np.sum(ok, axis=axis)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, np.sum(np.where(ok, v, 0.0), axis=axis) / count, np.nan)
+
+
 def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB,
                           pair_attenuation_db=None):
     """Sound power per band from the pairs' coherent parts; upper bounds where it is not clear.
@@ -758,8 +769,8 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         found = np.sum(np.where(sub_ok, mean_w, 0.0), axis=-1)  # (B,)
         rest = np.sum(np.where(sub_ok, 0.0, sub_up), axis=-1)  # bound of the parts not found
         usable = np.all(n_p > 0, axis=-1)
-        total = np.nanmean(auto * 10.0 ** (att / 10.0), axis=0)  # energetic mean over mics
-        dof = np.nanmedian(np.asarray(cross["dof"], dtype=float), axis=0)
+        total = _nan_mean(auto * 10.0 ** (att / 10.0), axis=0)  # energetic mean over mics
+        dof = _nan_mean(np.asarray(cross["dof"], dtype=float), axis=0)
         rel = 1.0 / np.sqrt(np.maximum(dof, 1.0))  # sampling scatter, shared by the pairs
         # a level: the parts not found could add at most 25 % (1 dB; half of it is added, so
         # the level is within 0.5 dB of the truth on that account), enough dof
@@ -774,7 +785,7 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         w_found = np.sum(np.where(sub_ok[None], w, 0.0), axis=-1)  # (P, B)
         for k in range(m):  # a mic's estimate: the mean over the pairs it belongs to
             mine = (pairs[:, 0] == k) | (pairs[:, 1] == k)
-            mic_w[k] = np.nanmean(w_found[mine], axis=0) + 0.5 * rest
+            mic_w[k] = _nan_mean(w_found[mine], axis=0) + 0.5 * rest
         mic_lw = np.where(ok & (mic_w > 0), 10.0 * np.log10(mic_w), np.nan)
     finite = np.isfinite(mic_lw)
     spread = np.where(np.any(finite, axis=0),
