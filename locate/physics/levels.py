@@ -666,9 +666,12 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
                     axis=-1)
     auto = np.where(usable, auto, np.nan)
     pairs = np.array([(i, j) for i in range(m) for j in range(i + 1, m)])
+    from scipy import fft as sfft
+
     up = int(max(1, min(8, 2**22 // n)))  # interpolation factor of the lag search
-    n_up = up * n
-    half = max(int(np.ceil(search_s * fs * up)), 1)
+    n_up = sfft.next_fast_len(up * n, real=True)
+    step_s = n / (n_up * fs)  # lag step of the interpolated correlation
+    half = max(int(np.ceil(search_s / step_s)), 1)
     in_bands = np.any(np.stack(members) & usable[:, None], axis=0)
     lags = np.zeros(len(pairs))
     cross = np.full((len(pairs), len(lo), parts), np.nan)
@@ -677,9 +680,9 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
     for p, (i, j) in enumerate(pairs):  # a few dozen pairs at most
         g = spec[i] * np.conj(spec[j]) * scale
         # residual lag: peak of the broadband cross-correlation near zero (8x interpolated)
-        r = np.fft.irfft(np.where(in_bands, g, 0.0), n_up)
+        r = sfft.irfft(np.where(in_bands, g, 0.0), n_up)
         window = np.concatenate([r[-half:], r[:half + 1]])
-        peak = (int(np.argmax(window)) - half) / (up * fs)  # = minus mic j's excess delay
+        peak = (int(np.argmax(window)) - half) * step_s  # = minus mic j's excess delay
         lags[p] = -peak
         g = g * np.exp(2j * np.pi * freqs * peak)
         v_bin = (np.abs(spec[i]) ** 2 * scale) * (np.abs(spec[j]) ** 2 * scale)
