@@ -83,9 +83,10 @@ __all__ = [
 MIN_DISTANCE_M = 0.5  # closer than this the point-source model has no meaning (common practice)
 CAUTIONS = (
     "These levels are estimates from a few microphones, not a compliance measurement.",
-    "Only spherical spreading, air absorption (ISO 9613-1) and a single-edge barrier estimate "
-    "are modelled; ground effect, wind and temperature gradients, reflections and source "
-    "directivity are not.",
+    "Propagation to receivers is a screening estimate: spherical spreading, air absorption "
+    "(ISO 9613-1), a single-edge barrier and, only when a ground factor is given, the ISO "
+    "9613-2 ground effect (as recalled); wind and temperature gradients, reflections and "
+    "source directivity are not modelled.",
     "A regulatory noise assessment must follow the local code and the practice of a competent, "
     "licensed person.",
     "Recording people (speech) may be regulated where you are; check before you record.",
