@@ -630,8 +630,9 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
     Notes
     -----
     Independent noise at the two mics does not add up in the cross-spectrum: the sum of its
-    products over N bins is a random complex number of variance V = sum |X_i|^2 |X_j|^2 (a
-    conservative value: it counts the coherent part too), i.e. about N^(-1/2) of the noise
+    products over N bins is a random complex number of variance V = sum P_i P_j, P the power
+    per bin (a running median over 17 bins, so a tone's own bins do not count; for broadband
+    sound it counts the coherent part too, conservatively), i.e. about N^(-1/2) of the noise
     power, while the source's part adds in phase (Bendat & Piersol's coherent output power,
     textbook).  |z| of noise alone follows a Rayleigh law, so |z|^2 - V removes its mean.
     """
@@ -666,6 +667,12 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
     auto = np.stack([np.sum(np.abs(spec[:, sel]) ** 2 * scale[sel], axis=-1) for sel in members],
                     axis=-1)
     auto = np.where(usable, auto, np.nan)
+    # each mic's power per bin as the noise sees it: a running median over 17 bins (scaled by
+    # 1 / ln 2, the median of an exponential law, so a smooth spectrum keeps its mean) -- a
+    # tone's few bins do not raise it, so a steady tone stands out of its own band's floor
+    from scipy.ndimage import median_filter
+
+    floor_bin = median_filter(np.abs(spec) ** 2 * scale, size=(1, 17), mode="nearest") / np.log(2)
     pairs = np.array([(i, j) for i in range(m) for j in range(i + 1, m)])
     from scipy import fft as sfft
 
@@ -686,7 +693,8 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
         peak = (int(np.argmax(window)) - half) * step_s  # = minus mic j's excess delay
         lags[p] = -peak
         g = g * np.exp(2j * np.pi * freqs * peak)
-        v_bin = (np.abs(spec[i]) ** 2 * scale) * (np.abs(spec[j]) ** 2 * scale)
+        v_bin = floor_bin[i] * floor_bin[j]
+        w_bin = (np.abs(spec[i]) ** 2 * scale) * (np.abs(spec[j]) ** 2 * scale)
         for b in range(len(lo)):
             if not usable[b]:
                 continue
@@ -695,7 +703,7 @@ def pair_cross_powers(signals, sample_rate_hz, *, bands_hz=OCTAVE_BANDS_HZ,
                 var = float(np.sum(v_bin[sel]))
                 cross[p, b, k] = np.sqrt(max(z2 - var, 0.0))
                 noise[p, b, k] = np.sqrt(var)
-            w = np.sqrt(v_bin[members[b]])
+            w = np.sqrt(w_bin[members[b]])
             dof[p, b] = np.sum(w) ** 2 / np.sum(w**2) if np.any(w > 0) else 0.0
     return {"pairs": pairs, "lag_s": lags, "cross_ms": cross, "noise_ms": noise, "auto_ms": auto,
             "dof": dof}
@@ -711,7 +719,7 @@ def _nan_mean(values, axis=0):
 
 
 def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB,
-                          pair_attenuation_db=None):
+                          pair_attenuation_db=None, min_dof=MIN_DOF):
     """Sound power per band from the pairs' coherent parts; upper bounds where it is not clear.
 
     Parameters
@@ -739,7 +747,11 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         error, as a sound power); ``mic_lw_db`` (M, B) each mic's estimate from its pairs;
         ``spread_db`` (B,) max - min of those over the mics; ``part_power`` (B, S) the power
         found in each part of each band (half its bound where not found): the spectrum's shape
-        inside the band, for :func:`air_attenuation_db`.
+        inside the band, for :func:`air_attenuation_db`; ``few_dof`` (B,) bands clear of the
+        noise that miss only the degrees of freedom (a tone, or a short record), and
+        ``found_db`` (B,) their value as a level would be.
+    min_dof : float
+        Degrees of freedom a level needs (:data:`MIN_DOF`).
 
     Notes
     -----
@@ -778,10 +790,12 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
         rel = 1.0 / np.sqrt(np.maximum(dof, 1.0))  # sampling scatter, shared by the pairs
         # a level: the parts not found could add at most 25 % (1 dB; half of it is added, so
         # the level is within 0.5 dB of the truth on that account), enough dof
-        ok = usable & (found > 0) & (rest <= 0.25 * found) & (dof >= MIN_DOF)
+        clear_enough = usable & (found > 0) & (rest <= 0.25 * found)
+        ok = clear_enough & (dof >= min_dof)
         value = found + 0.5 * rest
         upper = np.minimum(found + rest, total) * (1.0 + _UPPER_SIGMAS * rel)
         lw = np.where(ok, 10.0 * np.log10(value), np.nan)
+        found_db = np.where(clear_enough, 10.0 * np.log10(value), np.nan)
         up = np.where(~ok & usable, 10.0 * np.log10(upper), np.nan)
         floor = np.where(usable, 10.0 * np.log10(np.sqrt(np.sum(se**2, axis=-1))), np.nan)
         m = att.shape[0]
@@ -796,7 +810,8 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
                       np.max(np.where(finite, mic_lw, -np.inf), axis=0)
                       - np.min(np.where(finite, mic_lw, np.inf), axis=0), np.nan)
     shape = np.where(sub_ok, mean_w, np.where(np.isfinite(sub_up), 0.5 * sub_up, 0.0))
-    return {"part_power": shape, "lw_db": lw, "upper_db": up, "is_upper": ~ok & usable,
+    return {"few_dof": clear_enough & ~ok, "found_db": found_db, "part_power": shape,
+            "lw_db": lw, "upper_db": up, "is_upper": ~ok & usable,
             "floor_db": floor,
             "mic_lw_db": mic_lw, "spread_db": spread}
 

@@ -242,6 +242,10 @@ def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg
         spread_coh, floor = coh["spread_db"], coh["floor_db"] + to_active
         mic_coh = coh["mic_lw_db"] - att + to_active
         shape = coh["part_power"]
+        steady = _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh)
+        if np.any(steady):  # a steady tone: its few degrees of freedom do not scatter it
+            lw_coh = np.where(steady, coh["found_db"] + to_active, lw_coh)
+            upper = np.where(steady, np.nan, upper)
     else:  # one mic: its whole band level is all that can be said (an upper bound)
         lw_coh = np.full(nb, np.nan)
         upper = levels.combine_mics(lp_auto + att + to_active)[0]
@@ -271,6 +275,29 @@ def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg
     upper = np.where(np.isfinite(lw), np.nan, upper)
     return {"lw_db": lw, "upper_db": upper, "spread_db": spread, "mic_lp_db": mic_lp,
             "method": method, "floor_db": floor, "disagree": disagree, "shape": shape}
+
+
+STEADY_PARTS = 4  # sub-spans of the steadiness check of a band with few degrees of freedom
+
+
+def _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh):
+    """Bands clear of the noise but with few degrees of freedom (a tone) that read the same,
+    within 1 dB, in each quarter of the span: a steady sound, whose level does not scatter
+    like that of a random one (the 1 / sqrt(dof) allowance is for random sound)."""
+    few = np.asarray(coh["few_dof"], dtype=bool)
+    if not np.any(few):
+        return few
+    n = aligned.shape[1] // STEADY_PARTS
+    runs = []
+    for k in range(STEADY_PARTS):
+        part = aligned[:, k * n:(k + 1) * n]
+        cross = levels.pair_cross_powers(part, fs, bands_hz=bands, full_scale_db_spl=fs_db,
+                                         shifts_s=frac_s, undo_air=undo)
+        runs.append(levels.coherent_source_power(cross, div, min_dof=0)["lw_db"])
+    runs = np.array(runs)
+    with np.errstate(invalid="ignore"):
+        same = np.all(np.isfinite(runs), axis=0) & (np.ptp(runs, axis=0) <= 1.0)
+    return few & same
 
 
 TAPER_FRACTION = 0.04  # Tukey window: 2 % of the span tapered at each end
