@@ -507,10 +507,11 @@ def level_result(bands_hz, lw_db, spread_db, receivers=(), *, cautions=CAUTIONS,
     left = [b for b, u in zip(bands, is_up, strict=True) if u]
     note = ("A-weighted total of the bands that are levels: " + ", ".join(f"{b:g}" for b in summed)
             + " Hz" if summed else "no band is a level: no A-weighted total")
+    lwa_upper = lwa_db(np.where(is_up, up, lw), bands_hz)
     if left:
         note += ("; left out (upper bounds only): " + ", ".join(f"{b:g}" for b in left)
-                 + " Hz, so the total is a lower bound of the whole (with those bands at their "
-                 "bounds it would be at most source_lwa_upper_db)")
+                 + " Hz, so the total is a lower bound of the whole; with those bands at their "
+                 f"bounds it would be at most {float(lwa_upper):.1f} dB")
     rec_out = []
     for name, r in receivers:
         item = {"name": str(name), "distance_m": _jsonable(r["distance_m"]),
@@ -535,8 +536,7 @@ def level_result(bands_hz, lw_db, spread_db, receivers=(), *, cautions=CAUTIONS,
         "source_lw_is_upper_bound": [bool(v) for v in is_up],
         "source_lwa_db": _jsonable(lwa_db(lw, bands_hz)),
         "source_lwa_bands_hz": summed,
-        "source_lwa_upper_db": _jsonable(lwa_db(np.where(is_up, up, lw), bands_hz))
-        if left else None,
+        "source_lwa_upper_db": _jsonable(lwa_upper) if left else None,
         "source_lwa_note": note,
         "mic_spread_db": _jsonable(spread_db),
         "receivers": rec_out,

@@ -327,3 +327,34 @@ def test_a_pass_by_at_30_m_gives_lafmax_and_lae_at_a_receiver_within_1_5_db(tmp_
     # the time of the maximum: the closest approach heard, plus the F lag (common practice)
     assert abs(r["t_lafmax_s"] - truth["t_lafmax_s"]) < 0.3
     assert doc["source"] == "track" and "LAFmax" in out
+
+
+def test_a_steady_tone_is_a_level_not_a_bound(tmp_path):
+    # A fan-like source: a 125 Hz hum with its 250 Hz harmonic over broadband noise.  A tone
+    # holds few degrees of freedom but does not scatter like random sound; it reads the same
+    # in each quarter of the span, so its bands are levels within 1 dB and LwA within 1 dB.
+    # Truth as the level scene: Lw = Lp(1 m) + 11 dB (textbook) of the emitted signal.
+    src = np.array([120.0, 150.0, 1.5])
+    wave = (Waveform(kind="noise", band_hz=(300.0, 3000.0), duration_s=8.0, rms_pa_at_1m=20.0),
+            Waveform(kind="tone", fundamental_hz=125.0, harmonics=(1.0, 0.5), duration_s=8.0,
+                     rms_pa_at_1m=60.0))
+    sim = simulate_events(ARRAY, [Emission(src, -1.5, wave)], sample_rate_hz=24000.0,
+                          duration_s=5.0, temperature_c=15.0, relative_humidity=60.0,
+                          noise_rms=2e-3, rng=np.random.default_rng(5))
+    site = write_site(tmp_path, ARRAY, sim.signals, 24000.0, temperature_c=15.0,
+                      humidity=60.0, full_scale_pa=P_FULL_SCALE_PA * np.sqrt(2))
+    site.write_text(site.read_text().replace("channel = ", "full_scale_db_spl = 120.0\n"
+                                             "channel = "))
+    emitted = sim.emitted_signals[0] / (P_FULL_SCALE_PA * np.sqrt(2))
+    lw_true = levels.octave_band_levels_db(emitted, sim.emitted_rate_hz,
+                                           full_scale_db_spl=120.0) + 11.0
+    fix_json, lev_json = tmp_path / "fix.json", tmp_path / "lev.json"
+    assert run(["fix", site, "--from", 1.0, "--to", 3.0, "--source-z", src[2],
+                "--json", fix_json])[0] == 0
+    code, _, err = run(["level", site, fix_json, "--json", lev_json])
+    assert code == 0, err
+    doc = json.loads(lev_json.read_text())
+    got = np.array([np.nan if v is None else v for v in doc["source_lw_db"]])
+    for b in (1, 2):  # 125 and 250 Hz: the hum and its harmonic
+        assert abs(got[b] - lw_true[b]) <= 1.0, (BANDS[b], got[b], lw_true[b])
+    assert abs(doc["source_lwa_db"] - float(levels.lwa_db(lw_true))) <= 1.0
