@@ -47,7 +47,7 @@ def _band_label(b):
     return f"{b:g}" if b < 1000 else f"{b / 1000:g}k"
 
 
-def _bars(ax, x, level, bound, floor, width, colour, *, labels=True, fontsize=6.5, span=40.0):
+def _bars(ax, x, level, bound, floor, width, colour, *, labels=True, fontsize=7.0, span=40.0):
     """Level bars from ``floor``; upper bounds as hatched open bars with a downward arrow."""
     from locate.draw.kit import HALO
 
@@ -111,9 +111,12 @@ def level_figure(lev):
     x_a = n + 0.6  # the A-weighted total, set apart from the bands
     ticks = list(x) + [x_a]
     names = [_band_label(b) for b in bands] + ["A-wtd"]
-    height = 5.2 if receivers else 2.7
+    labels = [_receiver_label(r, pass_by) for r in receivers]
+    lines = sum(len(lab.splitlines()) for lab in labels)
+    legend_in = 0.2 * lines + 0.5  # room under the lower panel for its legend, inches
+    height = (5.0 + 0.2 * lines) if receivers else 2.8
     with _style():
-        fig = Figure(figsize=(7.2, height))
+        fig = Figure(figsize=(6.5, height))
         FigureCanvasAgg(fig)
         n_rows = 2 if receivers else 1
         gs = fig.add_gridspec(n_rows, 1, height_ratios=[1.0, 1.15][:n_rows], hspace=0.75)
@@ -129,7 +132,7 @@ def level_figure(lev):
         if lwa is not None:
             ax.bar([x_a], [lwa - floor], 0.62, bottom=floor, color=_TOTAL,
                    edgecolor=PALETTE["ink"], linewidth=0.4, zorder=3)
-            ax.text(x_a, lwa + 0.6, f"{lwa:.0f}", ha="center", va="bottom", fontsize=6.5,
+            ax.text(x_a, lwa + 0.6, f"{lwa:.0f}", ha="center", va="bottom", fontsize=7.5,
                     fontweight="bold", zorder=6)
         _tidy(ax, ticks, names[:-1] + ["LwA"], floor, top, f"Lw, {power_unit}")
         ax.set_title("Source: sound power level per octave band"
@@ -146,16 +149,16 @@ def level_figure(lev):
             handles.append(Patch(facecolor=_TOTAL, edgecolor=PALETTE["ink"], lw=0.4,
                                  label="LwA: A-weighted total of the level bands"))
         ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.0, -0.13), ncol=2,
-                  fontsize=7, frameon=False, handlelength=1.6)
+                  fontsize=7.5, frameon=False, handlelength=1.6)
         if receivers:
             _receiver_panel(fig.add_subplot(gs[1]), receivers, bands, x, x_a, ticks, names,
-                            pressure_unit, pass_by)
-        fig.subplots_adjust(left=0.09, right=0.99, top=0.93,
-                            bottom=0.13 if receivers else 0.3)
+                            pressure_unit, pass_by, labels)
+        fig.subplots_adjust(left=0.1, right=0.99, top=1.0 - 0.35 / height,
+                            bottom=legend_in / height if receivers else 0.3)
     return fig
 
 
-def _receiver_panel(ax, receivers, bands, x, x_a, ticks, names, unit, pass_by):
+def _receiver_panel(ax, receivers, bands, x, x_a, ticks, names, unit, pass_by, labels):
     n = len(bands)
     k = len(receivers)
     width = 0.8 / k
@@ -163,31 +166,29 @@ def _receiver_panel(ax, receivers, bands, x, x_a, ticks, names, unit, pass_by):
     for r in receivers:
         levels.append(_arr(r.get("lp_db"), n))
         bounds.append(_arr(r.get("lp_upper_db"), n))
-        key = "lafmax_db" if pass_by else "laeq_db"
-        totals.append(r.get(key) if r.get(key) is not None else r.get("lpa_db"))
+        totals.append(r.get("laeq_db") if r.get("laeq_db") is not None else r.get("lpa_db"))
     floor = _floor(np.concatenate(levels + bounds))
     tops = np.concatenate(levels + bounds + [np.array(totals, dtype=float)])
     top = np.nanmax(tops) + 7.0 if np.any(np.isfinite(tops)) else floor + 10.0
     handles = []
-    for j, r in enumerate(receivers):
+    for j in range(len(receivers)):
         colour = _RECEIVERS[j % len(_RECEIVERS)]
         off = (j - (k - 1) / 2.0) * width
         _bars(ax, x + off, levels[j], bounds[j], floor, width * 0.92, colour,
-              labels=k <= 2, fontsize=6, span=top - floor)
+              labels=k <= 2, fontsize=7.0, span=top - floor)
         if totals[j] is not None:
             ax.bar([x_a + off], [totals[j] - floor], width * 0.92, bottom=floor, color=colour,
                    edgecolor=PALETTE["ink"], linewidth=0.4, zorder=3)
             ax.text(x_a + off, totals[j] + 0.6, f"{totals[j]:.0f}", ha="center", va="bottom",
-                    fontsize=6, fontweight="bold", zorder=6)
+                    fontsize=7.0, fontweight="bold", zorder=6)
         handles.append(Patch(facecolor=colour, edgecolor=PALETTE["ink"], lw=0.4,
-                             label=_receiver_label(r, pass_by)))
-    _tidy(ax, ticks, names[:-1] + ["LAFmax" if pass_by else "LAeq"], floor, top,
-          f"Lp, {unit}")
+                             label=labels[j]))
+    _tidy(ax, ticks, names[:-1] + ["LAeq"], floor, top, f"Lp, {unit}")
     what = ("Receivers: predicted sound pressure level, Leq over the pass per band" if pass_by
             else "Receivers: predicted sound pressure level, Leq while the source sounds")
     ax.set_title(what, loc="left", fontsize=9, fontweight="bold")
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.0, -0.13), ncol=1,
-              fontsize=7, frameon=False, handlelength=1.6)
+              fontsize=7.5, frameon=False, handlelength=1.6)
 
 
 def _receiver_label(r, pass_by):
@@ -197,14 +198,21 @@ def _receiver_label(r, pass_by):
     parts = []
     for key, sym in (("laeq_db", "LAeq"), ("lae_db", "LAE"), ("lafmax_db", "LAFmax"),
                      ("lcpeak_db", "LCpeak")):
-        if r.get(key) is not None and not (pass_by and key in ("laeq_db", "lcpeak_db")):
+        if r.get(key) is not None and not (pass_by and key == "lcpeak_db"):
             parts.append(f"{sym} {r[key]:.0f} dB")
+            if key == "laeq_db" and r.get("laeq_interval_s") is not None:
+                parts[-1] = f"LAeq over {r['laeq_interval_s']:.3g} s {r[key]:.0f} dB"
+            if key == "lafmax_db" and r.get("t_lafmax_s") is not None:
+                parts[-1] += f" (heard at {r['t_lafmax_s']:.1f} s)"
     screen = [v for v in (r.get("screen_db") or r.get("barrier_db") or []) if v is not None]
     wall = r.get("barrier_label")
     if screen and max(screen) > 0.05:
         by = f"the {wall}" if wall else "a wall"
         parts.append(f"screening by {by}: up to {max(screen):.1f} dB")
-    return where + (": " + ", ".join(parts) if parts else "")
+    import textwrap
+
+    text = where + (": " + ", ".join(parts) if parts else "")
+    return "\n".join(textwrap.wrap(text, 88, subsequent_indent="   "))
 
 
 def _line_handle(label):
