@@ -132,8 +132,9 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
         levels.air_attenuation_db(dist, bands, cond.temperature_c, cond.relative_humidity,
                                   site.air.pressure_kpa)
     undo = (dist, cond.temperature_c, cond.relative_humidity, site.air.pressure_kpa)
+    search = _lag_search_s(mics, source, dist, cov, cond.sound_speed_mps)
     est = _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg,
-                        to_active)
+                        to_active, search)
     lw, spread, upper = est["lw_db"], est["spread_db"], est["upper_db"]
     lp = est["mic_lp_db"]
     if est["disagree"]:
@@ -225,7 +226,20 @@ def _forward(upper, lw, pred):
     return np.asarray(upper, dtype=float) - loss
 
 
-def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg, to_active):
+def _lag_search_s(mics, source, dist, cov, c):
+    """How far each pair's residual lag is searched: 4 standard deviations of the predicted
+    delay difference from the position's covariance, between 0.5 ms and 10 ms."""
+    unit = (mics - source[None, :]) / dist[:, None]
+    sd = 0.0
+    for i in range(len(mics)):  # a few mics
+        for j in range(i + 1, len(mics)):
+            g = unit[j] - unit[i]
+            sd = max(sd, float(np.sqrt(max(g @ cov @ g, 0.0))) / c)
+    return float(np.clip(4.0 * sd, 5e-4, 1e-2)) if np.isfinite(sd) else 1e-2
+
+
+def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg, to_active,
+                  search_s=5e-4):
     """Per band, the source's part: from the cross-spectra between mics (absorption taken off
     each frequency bin, ``undo``; ``div`` the divergence alone) and, when a background span
     ``bg`` was found, from the mics' own spectra less the background's.  Where both are levels
@@ -236,13 +250,13 @@ def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg
     nb = len(bands)
     if m >= 2:
         cross = levels.pair_cross_powers(aligned, fs, bands_hz=bands, full_scale_db_spl=fs_db,
-                                         shifts_s=frac_s, undo_air=undo)
+                                         shifts_s=frac_s, undo_air=undo, search_s=search_s)
         coh = levels.coherent_source_power(cross, div)
         lw_coh, upper = coh["lw_db"] + to_active, coh["upper_db"] + to_active
         spread_coh, floor = coh["spread_db"], coh["floor_db"] + to_active
         mic_coh = coh["mic_lw_db"] - att + to_active
         shape = coh["part_power"]
-        steady = _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh)
+        steady = _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh, search_s)
         if np.any(steady):  # a steady tone: its few degrees of freedom do not scatter it
             lw_coh = np.where(steady, coh["found_db"] + to_active, lw_coh)
             upper = np.where(steady, np.nan, upper)
@@ -280,7 +294,7 @@ def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg
 STEADY_PARTS = 4  # sub-spans of the steadiness check of a band with few degrees of freedom
 
 
-def _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh):
+def _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh, search_s):
     """Bands clear of the noise but with few degrees of freedom (a tone) that read the same,
     within 1 dB, in each quarter of the span: a steady sound, whose level does not scatter
     like that of a random one (the 1 / sqrt(dof) allowance is for random sound)."""
@@ -292,7 +306,7 @@ def _steady_bands(aligned, fs, fs_db, bands, div, undo, frac_s, coh):
     for k in range(STEADY_PARTS):
         part = aligned[:, k * n:(k + 1) * n]
         cross = levels.pair_cross_powers(part, fs, bands_hz=bands, full_scale_db_spl=fs_db,
-                                         shifts_s=frac_s, undo_air=undo)
+                                         shifts_s=frac_s, undo_air=undo, search_s=search_s)
         runs.append(levels.coherent_source_power(cross, div, min_dof=0)["lw_db"])
     runs = np.array(runs)
     with np.errstate(invalid="ignore"):
