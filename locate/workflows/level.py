@@ -89,6 +89,7 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
     # a short taper at each end keeps strong bands from leaking into weak ones through the
     # spectrum of the cut (a rectangular cut leaks -6 dB per octave, common practice)
     taper = _taper(length)
+    plain = aligned  # untapered, for the bounds (see _cover_leakage)
     aligned = aligned * taper
     # the part of each mic's delay below one sample, removed in the cross-spectra
     frac_s = (dist - dist.min()) / cond.sound_speed_mps - shift / fs
@@ -135,6 +136,10 @@ def level_for_fix(recordings, site, cond, entry, *, hemisphere=False, result_pat
     search = _lag_search_s(mics, source, dist, cov, cond.sound_speed_mps)
     est = _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg,
                         to_active, search)
+    if len(mics) >= 2 and np.any(np.isfinite(est["upper_db"])):
+        est["upper_db"] = _cover_leakage(est["upper_db"], levels.pair_cross_powers(
+            plain, fs, bands_hz=bands, full_scale_db_spl=fs_db, shifts_s=frac_s,
+            undo_air=undo, search_s=search), div, to_active)
     lw, spread, upper = est["lw_db"], est["spread_db"], est["upper_db"]
     lp = est["mic_lp_db"]
     if est["disagree"]:
@@ -289,6 +294,17 @@ def _source_power(aligned, fs, fs_db, bands, att, div, undo, frac_s, lp_auto, bg
     upper = np.where(np.isfinite(lw), np.nan, upper)
     return {"lw_db": lw, "upper_db": upper, "spread_db": spread, "mic_lp_db": mic_lp,
             "method": method, "floor_db": floor, "disagree": disagree, "shape": shape}
+
+
+def _cover_leakage(upper, cross_plain, att, to_active, pair_att=None):
+    """Bounds that also cover what an untapered analysis of the same sound puts in the band:
+    a strong neighbouring band or tone leaks into a weak band through the spectrum of a plain
+    cut, and a bound must hold for the band level however it is read."""
+    coh = levels.coherent_source_power(cross_plain, att, pair_attenuation_db=pair_att,
+                                       min_dof=0)
+    plain = np.where(np.isfinite(coh["lw_db"]), coh["lw_db"], coh["upper_db"]) + to_active
+    with np.errstate(invalid="ignore"):
+        return np.where(np.isfinite(upper), np.fmax(upper, plain), upper)
 
 
 STEADY_PARTS = 4  # sub-spans of the steadiness check of a band with few degrees of freedom
@@ -452,6 +468,8 @@ def level_for_track(recordings, site, cond, result, *, hemisphere=False, result_
                               field="track.points")
     raw, _ = recordings.read(lo, hi)
     y = np.stack([_on_emission_time(raw[k], fs, lo, heard[k]) for k in range(len(mics))])
+    y_plain = y
+    y = y * _taper(y.shape[1])  # against leakage from strong bands, as for a fix
     # the pairs' mean gain over the pass, per band: g = 10^(-A/20) at each instant
     coarse = np.arange(0, grid.size, max(int(_STEP_S * fs), 1))
     att_t = _attenuation(dist[:, coarse], bands, cond, site, hemisphere)  # (M, G', B)
@@ -473,6 +491,29 @@ def level_for_track(recordings, site, cond, result, *, hemisphere=False, result_
     coh = levels.coherent_source_power(cross, mic_att, pair_attenuation_db=pair_att)
     lw, upper, spread = coh["lw_db"], coh["upper_db"], coh["spread_db"]
     shape = coh["part_power"]
+    if np.any(coh["few_dof"]):  # a steady tone reads the same in each quarter of the pass
+        n_q = y.shape[1] // STEADY_PARTS
+        runs = []
+        for k in range(STEADY_PARTS):
+            sel = (coarse >= k * n_q) & (coarse < (k + 1) * n_q)
+            g_k, g3_k = g[:, sel], g3[:, sel]
+            part = levels.pair_cross_powers(y[:, k * n_q:(k + 1) * n_q] * _taper(n_q), fs,
+                                            bands_hz=bands,
+                                            full_scale_db_spl=fs_db, search_s=2e-4)
+            runs.append(levels.coherent_source_power(
+                part, -10.0 * np.log10(np.mean(g_k**2, axis=1)), min_dof=0,
+                pair_attenuation_db=-10.0 * np.log10(
+                    np.mean(g3_k[pairs[:, 0]] * g3_k[pairs[:, 1]], axis=1)))["lw_db"])
+        runs = np.array(runs)
+        with np.errstate(invalid="ignore"):
+            steady = (coh["few_dof"] & np.all(np.isfinite(runs), axis=0)
+                      & (np.ptp(runs, axis=0) <= 1.0))
+        lw = np.where(steady, coh["found_db"], lw)
+        upper = np.where(steady, np.nan, upper)
+    if np.any(np.isfinite(upper)):
+        upper = _cover_leakage(upper, levels.pair_cross_powers(
+            y_plain, fs, bands_hz=bands, full_scale_db_spl=fs_db, search_s=2e-4), mic_att, 0.0,
+            pair_att)
     notes = ["the source's sound power is taken as constant over the tracked pass, from the "
              "part of each band common to the mics (cross-spectra along the path)"]
     # measured at the mics: the heard span of the tracked pass
