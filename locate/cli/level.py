@@ -23,11 +23,20 @@ from locate.errors import OptionError
               help="Only this fix of the result (1-based; default: every fix).")
 @click.option("--hemisphere", is_flag=True,
               help="Source on hard ground radiating into a half space (8 dB, not 11 dB).")
+@click.option("--ground", "ground", type=click.FloatRange(0.0, 1.0), default=None,
+              help="Ground factor G for the receivers, ISO 9613-2 general method (0 hard, e.g. "
+                   "paving or water; 1 porous, e.g. grass or crops). Default: no ground "
+                   "effect (free field).")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
 @click.pass_context
 @transactional
-def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
-    """Source sound power per octave band, and the level at the site's named receivers."""
+def level(ctx, site_path, result_path, fix_no, hemisphere, ground, json_path):
+    """Source sound power per octave band, and the level at the site's named receivers.
+
+    RESULT is a fix result (a sound from a still source: LAeq, LAE, LAFmax and LCpeak at the
+    mics and receivers) or a track result (a pass-by: LAFmax with its time and LAE at the
+    receivers, from the reconstructed path and the source's sound power).
+    """
     from locate.io.audio import open_recordings
     from locate.results.documents import (
         check_same_site,
@@ -36,45 +45,44 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
         write_json,
     )
     from locate.workflows.fixing import conditions_for, fix_result
-    from locate.workflows.level import level_for_fix
+    from locate.workflows.level import level_for_fix, level_for_track
 
     site = load(site_path)
     check_outputs({"--json": json_path}, site_inputs(site) + [result_path])
-    result = read_result(result_path, kinds=("fix",))
+    result = read_result(result_path, kinds=("fix", "track"))
     check_same_site(site, result, result_path)
-    fixes = result.get("fixes", [])
-    if fix_no is not None:
-        if not 1 <= fix_no <= len(fixes):
-            raise OptionError(f"the result holds {len(fixes)} fix(es); --fix {fix_no} is not "
-                              "one of them", field="--fix")
-        chosen = [(fix_no, fixes[fix_no - 1])]
-    else:
-        chosen = list(enumerate(fixes, 1))
     rec = open_recordings(site)
     cond = conditions_for(site, result.get("sound_speed_mps"))
     out = []
-    for k, entry in chosen:
+    if result.get("kind") == "track":
+        if fix_no is not None:
+            raise OptionError("--fix applies to a fix result; RESULT is a track",
+                              field="--fix")
         with reading_result(result_path):
-            lev = level_for_fix(rec, site, cond, entry, hemisphere=hemisphere,
-                                result_path=result_path)
-        lev["fix"] = k
+            lev = level_for_track(rec, site, cond, result, hemisphere=hemisphere,
+                                  result_path=result_path, ground=ground)
         out.append(lev)
-        unit = "dB" if lev["calibrated"] else "dBFS-rel"
-        echo(ctx, f"#{k} at ({entry['position_m'][0]:.1f}, {entry['position_m'][1]:.1f}) m: "
-                  f"sound power {fmt_db(lev['source_lwa_db'])} {unit}(A) "
-                  f"(+-{lev['lw_position_sd_db']:.1f} dB from the position), averaged over "
-                  f"the {lev['active_duration_s']:.3g} s it sounds")
-        echo(ctx, "   band Hz   " + " ".join(f"{b:>6}" for b in lev["bands_hz"]))
-        echo(ctx, "   Lw        " + " ".join(f"{fmt_db(v):>6}" for v in lev["source_lw_db"]))
-        echo(ctx, "   mic spread" + " ".join(f"{fmt_db(v):>6}" for v in lev["mic_spread_db"]))
-        for r in lev["receivers"]:
-            screen = max((v for v in r["barrier_db"] if v is not None), default=0.0)
-            echo(ctx, f"   at {r['name']} ({r['distance_m']:.0f} m): {fmt_db(r['lpa_db'])} "
-                      f"{unit}(A), barrier up to {fmt_db(screen)} dB")
-        for note in lev.get("notes", []):
-            warn(f"#{k}: {note}")
-    echo(ctx, "Screening estimate only: ground effect, meteorology and reflections are not "
-              "modelled; not a compliance measurement.")
+        _echo_level(ctx, lev, "pass-by")
+    else:
+        fixes = result.get("fixes", [])
+        if fix_no is not None:
+            if not 1 <= fix_no <= len(fixes):
+                raise OptionError(f"the result holds {len(fixes)} fix(es); --fix {fix_no} is "
+                                  "not one of them", field="--fix")
+            chosen = [(fix_no, fixes[fix_no - 1])]
+        else:
+            chosen = list(enumerate(fixes, 1))
+        for k, entry in chosen:
+            with reading_result(result_path):
+                lev = level_for_fix(rec, site, cond, entry, hemisphere=hemisphere,
+                                    result_path=result_path, ground=ground)
+            lev["fix"] = k
+            out.append(lev)
+            _echo_level(ctx, lev, f"#{k} at ({entry['position_m'][0]:.1f}, "
+                                  f"{entry['position_m'][1]:.1f}) m")
+    echo(ctx, "Screening estimate only (" + ("ISO 9613-2 ground effect, " if ground is not None
+                                             else "no ground effect, ")
+         + "no meteorology or reflections); not a compliance measurement.")
     if json_path:
         doc = fix_result(site, cond, [], kind="level", warnings=rec.warnings,
                          extra={"levels": out})
@@ -83,3 +91,51 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, json_path):
         doc["cautions"] = out[0]["cautions"] if out else doc["cautions"]
         write_json(json_path, doc)
     return out
+
+
+def _bound(v, up):
+    if v is not None:
+        return fmt_db(v)
+    if up is not None:
+        return "<" + f"{up:.0f}"
+    return fmt_db(None)
+
+
+def _echo_level(ctx, lev, head):
+    unit = "dB" if lev["calibrated"] else "dBFS-rel"
+    ups = lev.get("source_lw_upper_db") or [None] * len(lev["bands_hz"])
+    sd = lev.get("lw_position_sd_db")
+    sd_text = f" (± {sd:.1f} dB from the position)" if sd is not None else ""
+    echo(ctx, f"{head}: sound power LwA {fmt_db(lev['source_lwa_db'])} {unit}{sd_text}, "
+              f"averaged over the {lev['active_duration_s']:.3g} s it sounds")
+    echo(ctx, f"   {lev.get('source_lwa_note', '')}")
+    echo(ctx, "   band Hz   " + " ".join(f"{b:>6}" for b in lev["bands_hz"]))
+    echo(ctx, "   Lw        " + " ".join(f"{_bound(v, u):>6}"
+                                         for v, u in zip(lev["source_lw_db"], ups)))
+    echo(ctx, "   mic spread" + " ".join(f"{fmt_db(v):>6}" for v in lev["mic_spread_db"]))
+    if any(u is not None for u in ups):
+        echo(ctx, "   (<N: the source's part is below N dB; the band is not clearly above the "
+                  "noise)")
+    for m in lev.get("mics") or []:
+        if "lae_db" in m:
+            echo(ctx, f"   mic {m['name']}: LAE {fmt_db(m.get('lae_db'))} {unit}, LAFmax "
+                      f"{fmt_db(m.get('lafmax_db'))} {unit}, LCpeak {fmt_db(m.get('lcpeak_db'))}"
+                      f" {unit}, LAeq,{m.get('interval_s', 0):.3g}s "
+                      f"{fmt_db(m.get('laeq_db'))} {unit}")
+    for r in lev["receivers"]:
+        screen = max((v for v in r.get("screen_db") or r["barrier_db"] if v is not None),
+                     default=0.0)
+        wall = (f", screening by walls: up to {screen:.1f} dB" if screen > 0.05
+                else ", no wall in the way")
+        if "t_lafmax_s" in r:
+            echo(ctx, f"   at {r['name']} (closest {r['distance_m']:.0f} m): LAFmax "
+                      f"{fmt_db(r.get('lafmax_db'))} {unit} at {r['t_lafmax_s']:.2f} s, LAE "
+                      f"{fmt_db(r.get('lae_db'))} {unit}{wall}")
+        else:
+            echo(ctx, f"   at {r['name']} ({r['distance_m']:.0f} m): LAeq,"
+                      f"{r.get('laeq_interval_s') or 0:.3g}s {fmt_db(r.get('laeq_db'))} {unit}, "
+                      f"LAE {fmt_db(r.get('lae_db'))} {unit}, LAFmax "
+                      f"{fmt_db(r.get('lafmax_db'))} {unit}, LCpeak "
+                      f"{fmt_db(r.get('lcpeak_db'))} {unit}{wall}")
+    for note in lev.get("notes", []):
+        warn(f"{head.split(' ')[0]}: {note}")

@@ -8,7 +8,10 @@ Sources
 -------
 * IEC 61260-1:2014, base-10 system: G = 10^(3/10), exact mid-band frequencies
   f_m = 1000 G^(k/3) Hz (one-third-octave index k), band edges f_m G^(-+1/(2b)), b = 1 or 3.
-* IEC 61672-1:2013, eq. (E.6): A-weighting with the A1000 normalisation (+2.00 dB).
+* IEC 61672-1:2013, eq. (E.6): A-weighting with the A1000 normalisation (+2.00 dB);
+  eq. (E.1): C-weighting with C1000 = -0.062 dB; the weightings as analogue filters (poles at
+  20.6, 107.7, 737.9 and 12194 Hz, Annex E) for time signals; time weighting F (tau = 0.125 s)
+  and S (1 s), clause 5.8: L_tau(t) = 10 lg[(1/tau) int p^2(x) e^(-(t - x)/tau) dx / p0^2].
 * AES17 (common practice): 0 dBFS is the level of a full-scale sine.
 """
 
@@ -26,7 +29,15 @@ __all__ = [
     "background_corrected_db",
     "energetic_mean_db",
     "lwa_db",
+    "c_weighting_db",
+    "weighting_response",
+    "frequency_weighted",
+    "time_weighted_ms",
+    "TIME_CONSTANT_S",
 ]
+
+TIME_CONSTANT_S = {"F": 0.125, "S": 1.0}  # IEC 61672-1:2013 clause 5.8
+_POLES_HZ = (20.60, 107.7, 737.9, 12194.0)  # IEC 61672-1:2013 Annex E, (E.1)-(E.4)
 
 OCTAVE_BANDS_HZ = (63, 125, 250, 500, 1000, 2000, 4000, 8000)  # nominal, IEC 61260-1 Annex E
 _G = 10.0**0.3  # octave frequency ratio, base-10 system, IEC 61260-1:2014 eq. (1)
@@ -232,3 +243,68 @@ def lwa_db(lw_bands_db, bands_hz=OCTAVE_BANDS_HZ):
     mean, count = energetic_mean_db(weighted, axis=-1)
     with np.errstate(divide="ignore"):
         return mean + 10.0 * np.log10(np.maximum(count, 1))  # mean -> sum
+
+
+def c_weighting_db(frequency_hz):
+    """C-weighting, dB, IEC 61672-1:2013 eq. (E.1) with C1000 = -0.062 dB; 0.00 dB at 1 kHz."""
+    f2 = np.asarray(frequency_hz, dtype=float) ** 2
+    f1, _, _, f4 = _POLES_HZ
+    with np.errstate(divide="ignore"):
+        return 20.0 * np.log10(f4**2 * f2 / ((f2 + f1**2) * (f2 + f4**2))) + 0.062
+
+
+def weighting_response(frequency_hz, weighting):
+    """Complex response of the A, C or Z weighting as the analogue filter of IEC 61672-1 Annex E.
+
+    A: s^4 / ((s + w1)^2 (s + w2) (s + w3) (s + w4)^2), C: s^2 / ((s + w1)^2 (s + w4)^2),
+    w_k = 2 pi f_k, normalised to 0 dB at 1 kHz; Z: 1.  Its magnitude is
+    :func:`a_weighting_db` / :func:`c_weighting_db`; the phase is that of the minimum-phase
+    analogue network, which a peak (LCpeak) depends on.
+    """
+    w = weighting.upper()
+    if w == "Z":
+        return np.ones(np.shape(frequency_hz), dtype=complex)
+    if w not in ("A", "C"):
+        raise ValueError(f"weighting must be 'A', 'C' or 'Z', got {weighting!r}")
+    w1, w2, w3, w4 = (2.0 * np.pi * f for f in _POLES_HZ)
+
+    def h(f):
+        s = 2j * np.pi * np.asarray(f, dtype=float)
+        if w == "A":
+            return s**4 / ((s + w1) ** 2 * (s + w2) * (s + w3) * (s + w4) ** 2)
+        return s**2 / ((s + w1) ** 2 * (s + w4) ** 2)
+
+    return h(frequency_hz) / np.abs(h(1000.0))
+
+
+def frequency_weighted(signal, sample_rate_hz, weighting="A"):
+    """The signal through the A, C or Z weighting filter, same shape ``(..., T)``.
+
+    Applied in the frequency domain with the analogue response (:func:`weighting_response`)
+    at every bin, so there is no bilinear frequency warping near Nyquist; the record is
+    zero-padded by at least 0.25 s (the A and C filters' slowest pole, 20.6 Hz, has decayed by
+    more than 250 dB by then) so the filter's tail does not wrap around.
+    """
+    x = np.asarray(signal, dtype=float)
+    fs = float(sample_rate_hz)
+    n = x.shape[-1]
+    n_fft = int(2 ** np.ceil(np.log2(n + max(int(0.25 * fs), 16))))
+    spec = np.fft.rfft(x, n_fft, axis=-1)
+    spec = spec * weighting_response(np.fft.rfftfreq(n_fft, 1.0 / fs), weighting)
+    if n_fft % 2 == 0:
+        spec[..., -1] = spec[..., -1].real  # the Nyquist term of a real signal is real
+    return np.fft.irfft(spec, n_fft, axis=-1)[..., :n]
+
+
+def time_weighted_ms(signal, sample_rate_hz, time_constant_s=TIME_CONSTANT_S["F"]):
+    """Exponentially time-weighted mean square, IEC 61672-1:2013 clause 5.8, shape ``(..., T)``.
+
+    y(t) = (1/tau) int_{-inf}^t x^2(u) e^{-(t - u)/tau} du, evaluated exactly for a signal held
+    constant over each sample (starting from rest); 10 lg(y / p0^2) is L_F (tau = 0.125 s) or
+    L_S (1 s).
+    """
+    from scipy.signal import lfilter
+
+    x2 = np.asarray(signal, dtype=float) ** 2
+    a = np.exp(-1.0 / (float(sample_rate_hz) * float(time_constant_s)))
+    return lfilter([1.0 - a], [1.0, -a], x2, axis=-1)

@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import base64
 import datetime
-import io
 from pathlib import Path
 
 import numpy as np
@@ -108,41 +107,10 @@ def _map_alt(site, result):
 
 
 def _level_png(lev) -> bytes:
-    """Sound power per octave band with the spread between mics, and receiver levels."""
-    from matplotlib.figure import Figure
+    """Source sound power and the receivers' levels, each panel on its own reference."""
+    from locate.draw.levels import level_png
 
-    from locate.draw import kit as mk
-
-    bands = [b for b in lev["bands_hz"]]
-    x = np.arange(len(bands))
-    lw = np.array([np.nan if v is None else v for v in lev["source_lw_db"]], dtype=float)
-    spread = np.array([np.nan if v is None else v for v in lev.get("mic_spread_db")
-                       or [None] * len(bands)], dtype=float)
-    fig = Figure(figsize=(7.0, 2.7))
-    ax = fig.add_subplot(1, 1, 1)
-    ink = mk.PALETTE.get("ink", "#222222")
-    ax.bar(x, lw, width=0.6, color="#4a78a8", label="source sound power level Lw",
-           yerr=0.5 * np.nan_to_num(spread), error_kw={"ecolor": ink, "capsize": 3, "lw": 0.8})
-    markers = ["s", "D", "^", "v", "o"]
-    for k, r in enumerate(lev.get("receivers") or []):
-        lp = np.array([np.nan if v is None else v for v in r.get("lp_db") or []], dtype=float)
-        if lp.size == len(bands):
-            ax.plot(x, lp, marker=markers[k % len(markers)], color="#b35900", lw=1.2,
-                    label=mk.plain(f"predicted at {r.get('name')} (Lp)"))
-    ax.set_xticks(x, [f"{b:g}" for b in bands])
-    ax.set_xlabel("octave band, Hz")
-    unit = "dB re 1 pW / 20 µPa" if lev.get("calibrated", True) else "dB re full scale"
-    ax.set_ylabel(f"level, {unit}")
-    ax.grid(axis="y", color="#cccccc", lw=0.6)
-    ax.set_axisbelow(True)
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.28), ncol=2, fontsize=8,
-              frameon=False)
-    for s in ("top", "right"):
-        ax.spines[s].set_visible(False)
-    fig.tight_layout()
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=150, metadata={"Software": "tdoa"}, facecolor="white")
-    return buf.getvalue()
+    return level_png(lev)
 
 
 def _level_alt(section, lev):
@@ -152,12 +120,16 @@ def _level_alt(section, lev):
         k = int(np.nanargmax([np.nan if v is None else v for v in lev["source_lw_db"]]))
         peak = (f"; highest in the {lev['bands_hz'][k]:g} Hz band at "
                 f"{rf.db(lev['source_lw_db'][k])} dB")
+    bounds = [b for b, u in zip(lev["bands_hz"], lev.get("source_lw_is_upper_bound") or [])
+              if u]
+    bound = (f"; the {', '.join(f'{b:g}' for b in bounds)} Hz band(s) are upper bounds only "
+             "(hatched, with a downward arrow)" if bounds else "")
     rec = "; ".join(f"{r['name']} {r['lpa']} dB(A)" for r in section["receivers"])
-    return (f"Bar chart of the source sound power level per octave band for fix "
-            f"{section['fix']}, A-weighted total {section['lwa']} dB{peak}; error bars show "
-            "the spread between microphones"
-            + (f"; lines show the predicted levels at the receivers ({rec})" if rec else "")
-            + ".")
+    return (f"Two bar charts. Top: the source sound power level per octave band for "
+            f"{section['what']}, dB re 1 pW, A-weighted total {section['lwa']} dB{peak}{bound}; "
+            "error bars show the spread between microphones. "
+            + (f"Bottom: the predicted sound pressure level at the receivers, dB re 20 µPa "
+               f"({rec})." if rec else ""))
 
 
 # ------------------------------------------------------------------------------- the page

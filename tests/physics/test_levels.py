@@ -371,3 +371,217 @@ def test_level_result_follows_the_schema_with_nulls():
     assert out["receivers"][0]["distance_m"] == pytest.approx(80.0, abs=0.01 * M)
     assert out["source_lwa_db"] == pytest.approx(float(levels.lwa_db(lw, BANDS)), abs=0.01 * DB)
     assert any("compliance" in c for c in out["cautions"])
+
+
+# --- issue 21: C weighting, weighting filters, time weighting, event measures ----------------
+
+@pytest.mark.parametrize("nominal_hz, table_db", [
+    # IEC 61672-1:2013 Table 3, C-weighting at nominal frequencies (from memory), 0.1 dB steps
+    (31.5, -3.0), (63, -0.8), (125, -0.2), (250, 0.0), (500, 0.0), (1000, 0.0), (2000, -0.2),
+    (4000, -0.8), (8000, -3.0), (16000, -8.5),
+])
+def test_c_weighting_matches_the_iec_61672_table(nominal_hz, table_db):
+    exact = levels.exact_mid_band_hz([nominal_hz])
+    assert levels.c_weighting_db(exact)[0] == pytest.approx(table_db, abs=0.05 * DB)
+
+
+def test_weighting_filters_match_scipy_analogue_responses():
+    # reference library: scipy.signal.freqs_zpk on the IEC 61672-1 Annex E poles and zeros
+    # (A: four zeros at 0 Hz, poles 20.6 (x2), 107.7, 737.9, 12194 (x2) Hz; C: two zeros,
+    # poles 20.6 (x2), 12194 (x2) Hz), normalised at 1 kHz
+    f = np.array([31.5, 100.0, 400.0, 1000.0, 3150.0, 10000.0])
+    w = 2 * np.pi * np.array([20.6, 107.7, 737.9, 12194.0])
+    for kind, zeros, poles in (("A", 4, [w[0], w[0], w[1], w[2], w[3], w[3]]),
+                               ("C", 2, [w[0], w[0], w[3], w[3]])):
+        _, h = scipy.signal.freqs_zpk([0.0] * zeros, [-p for p in poles], 1.0,
+                                      worN=2 * np.pi * np.append(f, 1000.0))
+        ref = h[:-1] / abs(h[-1])
+        got = levels.weighting_response(f, kind)
+        np.testing.assert_allclose(got, ref, rtol=1e-9)
+        table = levels.a_weighting_db(f) if kind == "A" else levels.c_weighting_db(f)
+        np.testing.assert_allclose(20 * np.log10(np.abs(got)), table, atol=0.005 * DB)
+
+
+def test_a_weighted_signal_of_a_sine_loses_the_table_value():
+    fs = 48000.0
+    t = np.arange(int(fs)) / fs
+    for f, a_db in ((1000.0, 0.0), (125.0, -16.1), (4000.0, 1.0)):  # IEC 61672-1 Table 3
+        x = np.sin(2 * np.pi * f * t)
+        y = levels.frequency_weighted(x, fs, "A")
+        mid = slice(int(0.3 * fs), int(0.7 * fs))  # away from the start and end transients
+        got = 10 * np.log10(np.mean(y[mid] ** 2) / np.mean(x[mid] ** 2))
+        assert got == pytest.approx(a_db, abs=0.1 * DB), f
+
+
+def test_time_weighting_f_has_the_125_ms_time_constant():
+    # IEC 61672-1:2013 clause 5.8: exponential time weighting, tau = 0.125 s (F); a step of
+    # mean square 1 reaches 1 - 1/e after tau, and after switching off decays at
+    # 10 lg(e) / tau = 34.7 dB/s (F; 4.3 dB/s for S, 1 s) -- from memory of the standard
+    fs = 8000.0
+    x = np.ones(int(2 * fs))
+    x[int(fs):] = 0.0
+    ms = levels.time_weighted_ms(x, fs, levels.TIME_CONSTANT_S["F"])
+    assert ms[int(0.125 * fs) - 1] == pytest.approx(1 - np.exp(-1), abs=2e-3)
+    decay = 10 * np.log10(ms[int(1.2 * fs)] / ms[int(1.7 * fs)]) / 0.5
+    assert decay == pytest.approx(34.7, abs=0.1)
+    slow = levels.time_weighted_ms(x, fs, levels.TIME_CONSTANT_S["S"])
+    assert 10 * np.log10(slow[int(1.2 * fs)] / slow[int(1.7 * fs)]) / 0.5 == pytest.approx(
+        4.34, abs=0.02)
+
+
+@pytest.mark.parametrize("burst_s, table_db", [
+    # IEC 61672-1:2013 Table 4, toneburst response, F: LAFmax - LA of the steady 4 kHz tone
+    # (from memory): 200 ms -1.0 dB, 2 ms -18.0 dB, 0.25 ms -27.0 dB; the hand calculation
+    # 10 lg(1 - e^(-T/tau)) gives -0.98, -17.99, -27.0
+    (0.2, -1.0), (0.002, -18.0), (0.00025, -27.0),
+])
+def test_sine_burst_lafmax_and_lae_match_the_hand_calculation(burst_s, table_db):
+    fs, f, amp = 96000.0, 4000.0, 2.0  # 2 Pa amplitude: 1.414 Pa rms
+    p0 = 20e-6
+    n = int(round(burst_s * fs))
+    x = np.zeros(int(0.6 * fs))
+    t = np.arange(n) / fs
+    x[int(0.2 * fs):int(0.2 * fs) + n] = amp * np.sin(2 * np.pi * f * t)
+    meas = levels.event_measures(x / p0, fs)
+    la = 20 * np.log10(amp / np.sqrt(2) / p0) + float(levels.a_weighting_db(f))  # steady LA
+    hand = 10 * np.log10(1 - np.exp(-burst_s / 0.125))
+    assert meas["lafmax_db"] - la == pytest.approx(hand, abs=0.15 * DB)
+    assert meas["lafmax_db"] - la == pytest.approx(table_db, abs=0.3 * DB)  # table tolerance
+    # LAE: the burst's energy, (A^2 / 2) T re p0^2 x 1 s (ISO 1996-1), A-weighted
+    lae = 10 * np.log10(amp**2 / 2 * burst_s / p0**2) + float(levels.a_weighting_db(f))
+    tol = 0.05 if burst_s >= 0.002 else 0.3  # a 1-cycle burst spreads beyond one tone
+    assert meas["lae_db"] == pytest.approx(lae, abs=tol * DB)
+
+
+def test_lcpeak_of_a_1_khz_sine_is_its_amplitude():
+    # C(1 kHz) = 0 dB (IEC 61672-1); peak 20 lg(A / p0) = the rms level + 3.01 dB (textbook)
+    fs, amp = 48000.0, 3.0
+    t = np.arange(int(fs)) / fs
+    fade = np.minimum(1.0, t / 0.05)  # a 50 ms fade-in: no switch-on transient in the filter
+    meas = levels.event_measures(amp * fade * np.sin(2 * np.pi * 1000.0 * t) / 20e-6, fs)
+    assert meas["lcpeak_db"] == pytest.approx(20 * np.log10(amp / 20e-6), abs=0.05 * DB)
+    assert meas["laeq_db"] == pytest.approx(20 * np.log10(amp / np.sqrt(2) / 20e-6),
+                                            abs=0.15 * DB)  # less the fade-in: -0.07 dB
+
+
+def test_event_measures_take_the_background_off():
+    # energetic subtraction of a steady background (common practice): an event 10 dB above
+    # the background over 1 s within a 2 s record
+    fs = 16000.0
+    rng = np.random.default_rng(21)
+    bg = 0.01 * rng.standard_normal(int(4 * fs))
+    event = np.zeros(int(2 * fs))
+    event[int(0.5 * fs):int(1.5 * fs)] = np.sqrt(10.0) * 0.01 * rng.standard_normal(int(fs))
+    clean = levels.event_measures(event / 20e-6, fs)
+    got = levels.event_measures((event + bg[:event.size]) / 20e-6, fs,
+                                background_ref=bg[event.size:] / 20e-6)
+    assert got["lae_db"] == pytest.approx(clean["lae_db"], abs=0.2 * DB)
+    plain = levels.event_measures((event + bg[:event.size]) / 20e-6, fs)
+    assert plain["lae_db"] - clean["lae_db"] > 0.5  # 2 s of background add about 0.8 dB
+
+
+# --- issue 21: ISO 9613-2 ground effect and barrier (from memory) --------------------------
+
+def test_iso_9613_2_ground_effect_values():
+    # ISO 9613-2:1996 Table 3 (from memory).  Hard ground (G = 0): -1.5 dB in each end region
+    # and -3 q in the middle, q = 1 - 30 (hs + hr) / dp beyond 30 (hs + hr)
+    near = levels.ground_attenuation_db(50.0, 1.5, 1.5, ground_factor=0.0)
+    np.testing.assert_allclose(near, -3.0, atol=1e-9)
+    far = levels.ground_attenuation_db(200.0, 1.5, 1.5, ground_factor=0.0)
+    np.testing.assert_allclose(far, -3.0 - 3.0 * (1 - 90.0 / 200.0), atol=1e-9)
+    # porous ground (G = 1) at 1.5 m over 200 m, 500 Hz: 2 (-1.5 + c'(1.5)),
+    # c'(h) = 1.5 + 14 e^(-0.46 h^2) (1 - e^(-dp/50)): 9.77 dB; 2-8 kHz: 0; 63 Hz: -3 - 3q
+    soft = levels.ground_attenuation_db(200.0, 1.5, 1.5, ground_factor=1.0)
+    c = 1.5 + 14.0 * np.exp(-0.46 * 1.5**2) * (1 - np.exp(-4.0))
+    assert soft[3] == pytest.approx(2 * (-1.5 + c), abs=1e-9)
+    assert soft[3] == pytest.approx(9.77, abs=0.01)
+    np.testing.assert_allclose(soft[5:], 0.0, atol=1e-12)
+    assert soft[0] == pytest.approx(-3.0 - 3.0 * 0.55, abs=1e-9)
+    with pytest.raises(TdoaError):
+        levels.ground_attenuation_db(200.0, 1.5, 1.5, ground_factor=1.5)
+
+
+def test_iso_9613_2_barrier_dz():
+    # ISO 9613-2:1996 eq. (14) (from memory): D_z = 10 lg(3 + (C2 / lambda) C3 z K_met),
+    # C2 = 20, C3 = 1; grazing (z = 0) gives 10 lg 3 = 4.8 dB at every frequency
+    fm = levels.exact_mid_band_hz(BANDS)
+    wall = ([[20.0, -10.0], [20.0, 10.0]], 2.0)
+    graze = levels.iso9613_barrier_db([0, 0, 2.0], [40.0, 0, 2.0], wall, fm, 343.0)
+    np.testing.assert_allclose(graze, 10 * np.log10(3.0), atol=1e-9)
+    # a 4 m wall halfway along a 40 m path at 1 m heights: z = 2 sqrt(20^2 + 3^2) - 40
+    deep = levels.iso9613_barrier_db([0, 0, 1.0], [40.0, 0, 1.0], ([[20.0, -10.0],
+                                                                  [20.0, 10.0]], 4.0), fm, 343.0)
+    z = 2 * np.hypot(20.0, 3.0) - 40.0
+    kmet = np.exp(-np.sqrt(np.hypot(20.0, 3.0) ** 2 * 40.0 / (2 * z)) / 2000.0)
+    hand = np.minimum(10 * np.log10(3 + 20 * fm / 343.0 * z * kmet), 20.0)
+    np.testing.assert_allclose(deep, hand, atol=1e-9)
+    assert deep[-1] == 20.0  # the single-diffraction cap (ISO 9613-2, from memory)
+    # the screening replaces the ground effect where larger: A_bar = D_z - A_gr >= 0
+    out = levels.receiver_levels_db(np.full(8, 100.0), [0, 0, 1.0], [40.0, 0, 1.0], BANDS,
+                                    15.0, 70.0, barriers=[wall[:1] + (4.0,)], ground=1.0,
+                                    barrier_method="iso9613-2", sound_speed_mps=343.0)
+    np.testing.assert_allclose(out["ground_db"] + out["screen_db"],
+                               np.maximum(out["barrier_db"], out["ground_db"]), atol=1e-9)
+
+
+# --- issue 21: the source's part from cross-spectra -------------------------------------------
+
+def _common_plus_noise(signal_db, noise_db, n_mics, seconds, fs, seed):
+    """White common signal and independent white noise, band levels re 1 (numpy only)."""
+    rng = np.random.default_rng(seed)
+    n = int(seconds * fs)
+    common = rng.standard_normal(n) * 10 ** (signal_db / 20)
+    noise = rng.standard_normal((n_mics, n)) * 10 ** (noise_db / 20)
+    return common, common[None, :] + noise
+
+
+@pytest.mark.parametrize("signal_db", [-6.0, -25.0])
+def test_cross_spectra_find_a_common_signal_under_the_noise_or_bound_it(signal_db):
+    # Independent noise averages out of the cross-spectra (textbook: coherent output power);
+    # a white signal 6 dB under white noise is found within 1 dB in every band with thousands
+    # of bins (8 s at 16 kHz); 25 dB under, it is not clearly above the cross-spectra's own
+    # noise floor: upper bounds, which hold
+    fs = 16000.0
+    common, x = _common_plus_noise(signal_db, 0.0, 4, 8.0, fs, seed=5)
+    truth = levels.octave_band_levels_db(common, fs)
+    cross = levels.pair_cross_powers(x, fs)
+    coh = levels.coherent_source_power(cross, np.zeros((4, 8)))
+    lw, up = coh["lw_db"], coh["upper_db"]  # dBFS, as octave_band_levels_db
+    found = np.isfinite(lw)
+    if signal_db > -10:
+        assert found[3:7].all()  # 500 Hz - 4 kHz
+    np.testing.assert_allclose(lw[found], truth[found], atol=1.0 * DB)
+    bounded = ~found & np.isfinite(truth)
+    assert np.all(up[bounded] >= truth[bounded])
+    if signal_db < -20:
+        assert bounded[3:7].all()
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3, 4])
+def test_noise_alone_is_never_a_level(seed):
+    # no common sound at all: every band is an upper bound, and it bounds the nothing there
+    fs = 16000.0
+    x = np.random.default_rng(seed).standard_normal((3, int(2 * fs)))
+    coh = levels.coherent_source_power(levels.pair_cross_powers(x, fs), np.zeros((3, 8)))
+    usable = np.isfinite(levels.octave_band_levels_db(x[0], fs))
+    assert not np.any(np.isfinite(coh["lw_db"]))
+    assert np.all(coh["is_upper"][usable])
+    # the bound sits well below the noise's own band level (the cross-spectra see past it):
+    # about 4.4 / sqrt(bins) of it for three mics (three parts per band, 3 standard errors)
+    noise = levels.octave_band_levels_db(x, fs).mean(axis=0)
+    assert np.all(coh["upper_db"][4:7] < noise[4:7] - 6.0)
+
+
+def test_level_result_marks_upper_bounds_and_sums_only_levels():
+    lw = LW_TRUE.copy()
+    lw[7] = np.nan
+    up = np.full(8, np.nan)
+    up[7] = 80.0
+    out = levels.level_result(BANDS, lw, np.zeros(8), upper_db=up)
+    assert out["source_lw_db"][7] is None and out["source_lw_upper_db"][7] == 80.0
+    assert out["source_lw_is_upper_bound"] == [False] * 7 + [True]
+    assert out["source_lwa_bands_hz"] == list(BANDS[:7])
+    assert out["source_lwa_db"] == pytest.approx(float(levels.lwa_db(LW_TRUE[:7], BANDS[:7])),
+                                                 abs=0.01)
+    assert "8000" in out["source_lwa_note"] and "lower bound" in out["source_lwa_note"]
+    assert out["source_lwa_upper_db"] >= out["source_lwa_db"]
