@@ -57,6 +57,7 @@ class _Source:
     channel: int  # 1-based
     field: str  # site-file key the file came from
     n_frames: int
+    parts: tuple | None = None  # a recorder's files (locate.io.filesets.Part), or one file
 
 
 def _describe(exc) -> str:
@@ -73,6 +74,15 @@ def open_recordings(site) -> Recordings:
         A file is missing, unreadable or empty, lacks the mic's channel, has another sample
         rate than the others, or the mics' recordings do not overlap in time.
     """
+    if any(getattr(m, "files", None) is not None for m in site.mics):
+        from locate.io.deployment import plan_deployment
+
+        plan = plan_deployment(site)  # recorders writing many timestamped files
+        rec = Recordings([_Source(*s[:5], parts=s[5]) for s in plan["sources"]],
+                         plan["sample_rate_hz"], plan["offsets_s"], plan["drift_ppm"],
+                         epoch=plan["epoch"], deployment=plan["deployment"])
+        rec.warnings.extend(plan["deployment"].notes)
+        return rec
     infos: dict[Path, object] = {}
     sources = []
     for i, mic in enumerate(site.mics):
@@ -112,7 +122,13 @@ def open_recordings(site) -> Recordings:
     if starts is not None:
         offsets = offsets + starts
     drift = np.array([m.drift_ppm for m in site.mics], dtype=float)
-    rec = Recordings(tuple(sources), float(rates[first]), offsets, drift)
+    epoch = None
+    if starts is not None:  # UTC of common time 0: the earliest start_time
+        from locate.io.site import parse_start_time
+
+        stamps = [parse_start_time(m.start_time) for m in site.mics]
+        epoch = min(stamps, key=lambda w: (w[0] - stamps[0][0]) + w[1])
+    rec = Recordings(tuple(sources), float(rates[first]), offsets, drift, epoch=epoch)
     notes = (truncation_note(p, inf) for p, inf in infos.items())
     rec.warnings[:0] = [n for n in notes if n]
     return rec
@@ -135,9 +151,18 @@ class Recordings:
         ``stop_s - start_s``.
     warnings : list of str
         Open-time notes plus, deduplicated, what reads found (zero fill, clipping, dead mics).
+    epoch : (int, float) or None
+        UTC of common time 0 (whole POSIX seconds, fraction) when the recordings carry clock
+        time (bext stamps or start_time); None otherwise.
+    deployment : bool
+        Recorders of many files (:mod:`locate.io.deployment`): the span is every time some mic
+        covers, and a mic is left out where it has no audio (:meth:`uncovered`), not zero-filled.
     """
 
-    def __init__(self, sources, sample_rate_hz, offsets_s, drift_ppm):
+    def __init__(self, sources, sample_rate_hz, offsets_s, drift_ppm, *, epoch=None,
+                 deployment=None):
+        self.epoch = epoch
+        self.deployment = deployment  # locate.io.deployment.Deployment, or None
         self._sources = tuple(sources)
         self.sample_rate_hz = float(sample_rate_hz)
         self.mic_names = [s.mic for s in self._sources]
@@ -151,6 +176,11 @@ class Recordings:
                                 self.offsets_s + n / (self.sample_rate_hz * self._scale())], 1)
         self.start_s = float(np.max(self._cover[:, 0]))
         self.stop_s = float(np.min(self._cover[:, 1]))
+        if deployment is not None:  # every time that some mic covers; gaps are left out
+            self.start_s = float(np.min(self._cover[:, 0]))
+            self.stop_s = float(np.max(self._cover[:, 1]))
+            self.duration_s = self.stop_s - self.start_s
+            return
         if self.stop_s <= self.start_s:
             a, b = int(np.argmax(self._cover[:, 0])), int(np.argmin(self._cover[:, 1]))
             raise RecordingError(
@@ -169,7 +199,56 @@ class Recordings:
         ``offsets_s`` are total offsets (``offset_s`` plus start-time offsets), as
         :attr:`offsets_s`.  Used by clock calibration to re-measure with a first fit applied.
         """
-        return Recordings(self._sources, self.sample_rate_hz, offsets_s, drift_ppm)
+        return Recordings(self._sources, self.sample_rate_hz, offsets_s, drift_ppm,
+                          epoch=self.epoch, deployment=self.deployment)
+
+    def subset(self, index) -> Recordings:
+        """The same reader over the mics ``index`` (sequence of ints) only."""
+        idx = [int(i) for i in index]
+        dep = None if self.deployment is None else self.deployment.subset(idx)
+        return Recordings([self._sources[i] for i in idx], self.sample_rate_hz,
+                          self.offsets_s[idx], self.drift_ppm[idx], epoch=self.epoch,
+                          deployment=dep)
+
+    def clock_time(self, t_s, digits=3) -> str | None:
+        """ISO 8601 UTC text of common time ``t_s``; None when the recordings carry no clock."""
+        if self.epoch is None or t_s is None or not np.isfinite(t_s):
+            return None
+        from locate.io.filesets import utc_text
+
+        return utc_text(self.epoch[0], self.epoch[1], float(t_s), digits=digits)
+
+    def seconds_at(self, whole, frac=0.0) -> float:
+        """Common time (s) of a UTC instant (whole POSIX seconds, fraction); needs a clock."""
+        if self.epoch is None:
+            raise RecordingError("the recordings carry no clock time (no bext stamps, no "
+                                 "start_time): give times in seconds", field="start_s")
+        return float(int(whole) - int(self.epoch[0])) + float(frac) - float(self.epoch[1])
+
+    def uncovered(self, start_s, stop_s) -> list[list[tuple[float, float]]]:
+        """Per mic, the parts of ``[start_s, stop_s)`` (common time) it has no audio for.
+
+        Before a recorder starts, after it stops and in the gaps between its files.  Empty
+        lists for a reader of single files (those zero-fill, with a warning, as before).
+        """
+        out = [[] for _ in self._sources]
+        if self.deployment is None:
+            return out
+        scale = self._scale() * self.sample_rate_hz
+        for i, s in enumerate(self._sources):
+            holes = [(-np.inf, 0.0)] + [(float(a), float(b)) for a, b in
+                                        self.deployment.gaps[i]] + [(float(s.n_frames), np.inf)]
+            for a, b in holes:
+                lo = self.offsets_s[i] + a / scale[i]
+                hi = self.offsets_s[i] + b / scale[i]
+                lo, hi = max(lo, start_s), min(hi, stop_s)
+                if hi > lo:
+                    out[i].append((float(lo), float(hi)))
+        return out
+
+    def covering(self, start_s, stop_s) -> np.ndarray:
+        """Which mics have audio over all of ``[start_s, stop_s)``, bool (N,)."""
+        return np.array([not u for u in self.uncovered(start_s, stop_s)], dtype=bool)
 
     @property
     def files(self) -> list[tuple[str, Path, int]]:
@@ -242,6 +321,13 @@ class Recordings:
             out = np.empty((self.n_mics, n_out))
         by_file: dict[Path, list[int]] = {}
         for i, s in enumerate(self._sources):
+            if s.parts is not None:  # a recorder's many files (gaps read as zeros, not used)
+                x = _read_parts(s, lo[i], hi[i], scratch, i)
+                if not np.isfinite(x).all():
+                    self._check_finite(x, i, start_s, stop_s)
+                out[i] = _sinc_interpolate(x, SINC_HALF_TAPS + np.arange(n_out) * scale[i]) \
+                    if drifting[i] else x
+                continue
             by_file.setdefault(s.path, []).append(i)
         for path, idx in by_file.items():
             f_lo, f_hi = int(lo[idx].min()), int(hi[idx].max())
@@ -259,8 +345,14 @@ class Recordings:
                     out[i] = _sinc_interpolate(x, pos)
                 else:
                     out[i] = x
-        for key, msg in _signal_notes(out, self.mic_names):
-            self._warn(key, msg)
+        if self.deployment is None:
+            for key, msg in _signal_notes(out, self.mic_names):
+                self._warn(key, msg)
+        else:  # channel notes only of the mics with audio over the whole span
+            have = np.flatnonzero(self.covering(start_s, stop_s))
+            if have.size:
+                for key, msg in _signal_notes(out[have], [self.mic_names[i] for i in have]):
+                    self._warn(key, msg)
         return out, residual
 
     def blocks(self, block_s, overlap_s=0.0, start_s=None, stop_s=None, *,
@@ -340,6 +432,32 @@ def _read_frames(path, lo, hi, n_frames, scratch=None) -> np.ndarray:
             f.read(frames=b - a, dtype="float32", always_2d=True, out=out[a - lo: b - lo])
         out[: max(min(a, hi) - lo, 0)] = 0.0  # before the file (a reused buffer holds old data)
         out[max(b, lo) - lo:] = 0.0  # after it
+    return out
+
+
+def _read_parts(source, lo, hi, scratch, key) -> np.ndarray:
+    """Mic samples ``[lo, hi)`` of a recorder's channel across its files, float64 ``(hi - lo,)``.
+
+    Samples no file covers are zero (the reader's callers leave the mic out there, see
+    :meth:`Recordings.uncovered`).  ``scratch`` keeps one buffer per mic, so memory is one
+    block however many files the recorder wrote.
+    """
+    n = int(hi - lo)
+    out = None if scratch is None else scratch.get(("parts", key))
+    if out is None or out.shape != (n,):
+        out = np.zeros(n)
+        if scratch is not None:
+            scratch[("parts", key)] = out
+    else:
+        out[:] = 0.0
+    for part in source.parts:
+        a, b = max(lo, part.k0), min(hi, part.k0 + part.n_frames)
+        if b <= a:
+            continue
+        with soundfile.SoundFile(str(part.path)) as f:
+            f.seek(int(a - part.k0))
+            x = f.read(frames=int(b - a), dtype="float32", always_2d=True)
+        out[a - lo: a - lo + x.shape[0]] = x[:, source.channel - 1]
     return out
 
 

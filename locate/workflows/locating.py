@@ -15,6 +15,7 @@ from locate.errors import NothingFoundError, OptionError
 from locate.fix.air_solve import fit_entry
 from locate.signal.event_choice import choose_events
 from locate.workflows.fixing import (
+    add_clock_times,
     conditions_for,
     fix_result,
     fix_span,
@@ -120,7 +121,10 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
                 entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
                                             source_z_m=source_z_m, reject=reject,
                                             keep_curves=keep_curves, t_s=t)
-                if solve_air:
+                if solve_air and entry.get("absent_mics"):
+                    entry["warnings"].append("the sound speed was not solved for this fix: "
+                                             "some mics had no audio over it")
+                elif solve_air:
                     fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
                               solve_wind=solve_wind)
             except NothingFoundError as exc:
@@ -137,7 +141,8 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         err = NothingFoundError("no span gave a usable fix (see the warnings above)")
         err.warnings = warnings
         raise err
-    return fix_result(site, cond, entries, warnings=warnings, dims=dims, source_z_m=source_z_m)
+    return add_clock_times(fix_result(site, cond, entries, warnings=warnings, dims=dims,
+                                      source_z_m=source_z_m), rec, site)
 
 
 def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,
@@ -165,5 +170,6 @@ def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,
                             threshold_db=threshold_db, progress=bar.update)
     require_events(found, a, b)
     rows = [ev.to_dict(site.mic_names) for ev in found]
-    return fix_result(site, cond, [], kind="events", extra={"events": rows, "span_s": [a, b]},
-                      warnings=rec.warnings)
+    return add_clock_times(fix_result(site, cond, [], kind="events",
+                                      extra={"events": rows, "span_s": [a, b]},
+                                      warnings=rec.warnings), rec, site)
