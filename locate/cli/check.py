@@ -14,6 +14,7 @@ from locate.cli.common import (
     warn,
 )
 
+TIMELINE_CHARS = 48  # width of the coverage timeline
 CHECK_SCAN_S = 300.0  # tdoa check reads this much of the recordings for channel problems
 
 
@@ -35,13 +36,18 @@ def check(ctx, site_path, dims):
     echo(ctx, f"Air       {cond.temperature_c:g} degC, {cond.relative_humidity:g} % RH, "
               f"sound speed {cond.sound_speed_mps:.2f} m/s; wind {cond.wind_speed_mps:g} m/s "
               f"from {cond.wind_from_deg:g} deg")
-    echo(ctx, f"Audio     {rec.sample_rate_hz:g} Hz, {rec.duration_s:.2f} s common to all mics")
+    echo(ctx, f"Audio     {rec.sample_rate_hz:g} Hz, {rec.duration_s:.2f} s "
+              + ("common to all mics" if rec.deployment is None else
+                 "from the first recorder's start to the last one's end"))
     echo(ctx, f"Array     {len(pos)} mics, widest spacing {span:.1f} m "
               f"(largest delay {span / cond.sound_speed_mps * 1e3:.1f} ms)")
     for (name, path, ch), m in zip(rec.files, site.mics):
         x, y, z = m.position_m
-        echo(ctx, f"  {name:<8} x {x:9.2f}  y {y:9.2f}  z {z:6.2f} m   {Path(path).name} "
+        many = f" (+{len(m.files) - 1} more)" if m.files and len(m.files) > 1 else ""
+        echo(ctx, f"  {name:<8} x {x:9.2f}  y {y:9.2f}  z {z:6.2f} m   {Path(path).name}{many} "
                   f"ch {ch}  offset {m.offset_s:+.6f} s")
+    if rec.deployment is not None:
+        print_coverage(ctx, rec)
     opened = list(rec.warnings)
     stop_s = min(rec.stop_s, rec.start_s + CHECK_SCAN_S)  # dead, silent or clipped channels
     with progress_bar(ctx, stop_s - rec.start_s, "Reading the recordings") as bar:
@@ -57,3 +63,37 @@ def check(ctx, site_path, dims):
         warn(w)
     echo(ctx, "Site file and recordings look usable." if not found else
          "Site file and recordings are readable; mind the channel warnings before a fix.")
+
+
+def _clock(rec, t):
+    text = rec.clock_time(t)
+    return f"{t:.3f} s" if text is None else f"{text} ({t:.3f} s)"
+
+
+def print_coverage(ctx, rec):
+    """Each recorder's coverage: start, end, gaps, sample rate, timestamp source, timeline."""
+    from locate.io.deployment import coverage_rows
+
+    rows = coverage_rows(rec)
+    t0, t1 = rec.start_s, rec.stop_s
+    head = (f"Coverage  {t1 - t0:.1f} s from {_clock(rec, t0)}"
+            if rec.epoch is not None else f"Coverage  {t1 - t0:.1f} s (no clock time)")
+    echo(ctx, head)
+    width = TIMELINE_CHARS
+    for r in rows:
+        line = [" "] * width
+        edges = np.linspace(t0, t1, width + 1)
+        for k in range(width):
+            a, b = edges[k], edges[k + 1]
+            inside = r["start_s"] < b and r["stop_s"] > a
+            hole = any(lo <= a and hi >= b for lo, hi in r["gaps"])
+            partly = any(lo < b and hi > a for lo, hi in r["gaps"])
+            line[k] = " " if not inside or hole else (":" if partly else "#")
+        gaps = ("no gaps" if not r["gaps"] else
+                f"{len(r['gaps'])} gap(s): " + "; ".join(
+                    f"{_clock(rec, a)} to {_clock(rec, b)} ({b - a:.1f} s)"
+                    for a, b in r["gaps"]))
+        echo(ctx, f"  {r['mic']:<8} |{''.join(line)}| {r['files']} file(s), "
+                  f"{r['sample_rate_hz']} Hz, times from {r['source']}")
+        echo(ctx, f"  {'':<8} {_clock(rec, r['start_s'])} to {_clock(rec, r['stop_s'])}; "
+                  f"{gaps}")

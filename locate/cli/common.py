@@ -61,11 +61,72 @@ def load(site_path, dims=2, require_audio=True):
     return load_site(site_path, dims=dims, require_audio=require_audio)
 
 
+class ClockTime(str):
+    """An ISO 8601 clock time given for ``--from``/``--to``; seconds once the recordings are
+    open (:func:`resolve_span`)."""
+
+
+class _TimeType(click.ParamType):
+    """Seconds into the recording (a number) or an ISO 8601 clock time."""
+
+    name = "SECONDS|ISO8601"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, (float, int)) or isinstance(value, ClockTime):
+            return value
+        text = str(value).strip()
+        try:
+            return float(text)
+        except ValueError:
+            pass
+        from locate.io.site import parse_start_time
+
+        try:
+            parse_start_time(text)
+        except ValueError:
+            self.fail(f"{value!r} is neither seconds nor an ISO 8601 clock time such as "
+                      "2026-11-18T23:58:30Z", param, ctx)
+        return ClockTime(text)
+
+
+TIME = _TimeType()
+
+
+def resolve_span(rec, start_s, stop_s, window_s=None):
+    """``--from``/``--to`` in seconds of the recordings' time base (clock times converted).
+
+    A clock time without a zone is UTC.  Raises OptionError when the recordings carry no clock
+    time or the converted span is empty.
+    """
+    from locate.io.site import parse_start_time
+
+    out = []
+    for v, opt in ((start_s, "--from"), (stop_s, "--to")):
+        if isinstance(v, ClockTime):
+            if getattr(rec, "epoch", None) is None:
+                raise OptionError(f"{v} is a clock time but the recordings carry none (no "
+                                  "bext stamps, no start_time): give seconds", field=opt)
+            out.append(rec.seconds_at(*parse_start_time(v)))
+        else:
+            out.append(v)
+    if any(isinstance(v, ClockTime) for v in (start_s, stop_s)):
+        a, b = out
+        if b is not None and a is not None and b <= a:
+            raise OptionError(f"the span {start_s} .. {stop_s} is empty: --from must be before "
+                              "--to", field="--from")
+        if a is not None and a < rec.start_s - 1e-9:
+            raise OptionError(f"{start_s} is before the recordings begin "
+                              f"({rec.clock_time(rec.start_s)})", field="--from")
+        check_span_args(max(a, 0.0), b, window_s)
+    return out[0], out[1]
+
+
 def span_options(f):
-    f = click.option("--from", "start_s", type=float, default=None,
-                     help="Start of the span, seconds into the recording.")(f)
-    f = click.option("--to", "stop_s", type=float, default=None,
-                     help="End of the span, seconds into the recording.")(f)
+    f = click.option("--from", "start_s", type=TIME, default=None,
+                     help="Start of the span: seconds into the recording, or an ISO 8601 "
+                          "clock time (UTC unless a zone is given) when they carry one.")(f)
+    f = click.option("--to", "stop_s", type=TIME, default=None,
+                     help="End of the span: seconds, or an ISO 8601 clock time.")(f)
     f = click.option("--band", default=None, metavar="LO:HI",
                      help="Analysis band in Hz (default: where the signal stands above the "
                           "noise).")(f)
@@ -96,6 +157,8 @@ def check_span_args(start_s, stop_s, window_s=None):
     if (start_s is None) != (stop_s is None):
         raise OptionError("give both --from and --to (or neither, to detect events)",
                           field="--from" if start_s is None else "--to")
+    if isinstance(start_s, ClockTime) or isinstance(stop_s, ClockTime):
+        return  # checked by resolve_span once the recordings' clock is known
     if start_s is not None and (start_s < 0 or stop_s <= start_s):
         raise OptionError(f"the span {start_s:g}..{stop_s:g} s is empty or negative: --from "
                           "must be >= 0 and before --to", field="--from")
@@ -137,7 +200,8 @@ def print_fixes(ctx, site, cond, result):
         x, y, z = f["position_m"]
         e = f["ellipse95"]
         height = f"z {z:.2f} m (solved)" if f["dims"] == 3 else f"z {z:.2f} m (given)"
-        echo(ctx, f"#{k} heard at {f['t_s']:.3f} s  ->  x {x:.2f} m, y {y:.2f} m, {height}")
+        when = f"{f['t_s']:.3f} s" + (f" ({f['t_utc']})" if f.get("t_utc") else "")
+        echo(ctx, f"#{k} heard at {when}  ->  x {x:.2f} m, y {y:.2f} m, {height}")
         echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} x "
                   f"{fmt_length(e['semi_minor_m'])} "
                   f"(half-axes), long axis toward {e['azimuth_deg']:.0f} deg; timing residual "

@@ -11,6 +11,7 @@ from locate.cli.common import (
     load,
     parse_band,
     progress_bar,
+    resolve_span,
     site_inputs,
     span_options,
     warn,
@@ -36,17 +37,23 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
     site = load(site_path)
     check_output_path(json_path, site_inputs(site))
     rec = open_recordings(site)
+    start_s, stop_s = resolve_span(rec, start_s, stop_s)
     check_band(band_hz, rec.sample_rate_hz)
     result = list_events(site, rec, start_s=start_s, stop_s=stop_s, band_hz=band_hz,
                          threshold_db=threshold_db,
                          progress=lambda label, total: progress_bar(ctx, total, label))
     rows = result["events"]
     a, b = result["span_s"]
-    echo(ctx, f"{len(rows)} event(s) in {a:.2f}..{b:.2f} s")
-    echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'above bg':>9} {'mics':>5}  first mic")
+    echo(ctx, f"{len(rows)} event(s) in {a:.2f}..{b:.2f} s"
+              + (f" ({result['span_utc'][0]} .. {result['span_utc'][1]})"
+                 if result.get("span_utc") else ""))
+    clock = any(r.get("t_utc") for r in rows)
+    echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'above bg':>9} {'mics':>5}  first mic"
+              + ("  clock time (UTC)" if clock else ""))
     for k, r in enumerate(rows, 1):
         echo(ctx, f"{k:>3} {r['t_s']:>10.3f} s {r['duration_s']:>6.3f} s {r['level_db']:>6.1f} dB "
-                  f"{r['n_mics']:>5}  {r['first_mic']}")
+                  f"{r['n_mics']:>5}  {r['first_mic']}"
+                  + (f"  {r['t_utc']}" if r.get("t_utc") else ""))
     for w in rec.warnings:
         warn(w)
     if json_path:

@@ -15,6 +15,7 @@ from locate.cli.common import (
     parse_band,
     print_fixes,
     progress_bar,
+    resolve_span,
     site_inputs,
     span_options,
     warn,
@@ -68,6 +69,7 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
                                      solve_wind=solve_wind, events_choice=events_choice,
                                      start_s=start_s, dims=dims)
     rec = open_recordings(site)
+    start_s, stop_s = resolve_span(rec, start_s, stop_s, window_s)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
     if sweep:

@@ -49,7 +49,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     from locate.io.audio import open_recordings
     from locate.results.documents import check_output_path, write_json
     from locate.track.tracker import track_recording, track_to_dict
-    from locate.workflows.fixing import conditions_for, fix_result
+    from locate.workflows.fixing import add_clock_times, conditions_for, fix_result
 
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
@@ -90,6 +90,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     result = fix_result(site, cond, [], kind="track", warnings=warnings, dims=dims,
                         source_z_m=source_z_m,
                         extra={"track": doc, "span_s": [start_s, stop_s]})
+    add_clock_times(result, rec, site)
     _print_track(ctx, site, cond, doc, bearing_from_name=names[len(site.mics)]
                  if site.receivers else site.mic_names[0])
     for w in result["warnings"]:
