@@ -164,6 +164,8 @@ class Recordings:
         self.epoch = epoch
         self.deployment = deployment  # locate.io.deployment.Deployment, or None
         self._sources = tuple(sources)
+        self._part_k0 = [None if s.parts is None else np.array([p.k0 for p in s.parts])
+                         for s in self._sources]
         self.sample_rate_hz = float(sample_rate_hz)
         self.mic_names = [s.mic for s in self._sources]
         self.n_mics = len(self._sources)
@@ -322,7 +324,7 @@ class Recordings:
         by_file: dict[Path, list[int]] = {}
         for i, s in enumerate(self._sources):
             if s.parts is not None:  # a recorder's many files (gaps read as zeros, not used)
-                x = _read_parts(s, lo[i], hi[i], scratch, i)
+                x = _read_parts(s, lo[i], hi[i], scratch, i, self._part_k0[i])
                 if not np.isfinite(x).all():
                     self._check_finite(x, i, start_s, stop_s)
                 out[i] = _sinc_interpolate(x, SINC_HALF_TAPS + np.arange(n_out) * scale[i]) \
@@ -435,7 +437,7 @@ def _read_frames(path, lo, hi, n_frames, scratch=None) -> np.ndarray:
     return out
 
 
-def _read_parts(source, lo, hi, scratch, key) -> np.ndarray:
+def _read_parts(source, lo, hi, scratch, key, part_k0) -> np.ndarray:
     """Mic samples ``[lo, hi)`` of a recorder's channel across its files, float64 ``(hi - lo,)``.
 
     Samples no file covers are zero (the reader's callers leave the mic out there, see
@@ -450,7 +452,10 @@ def _read_parts(source, lo, hi, scratch, key) -> np.ndarray:
             scratch[("parts", key)] = out
     else:
         out[:] = 0.0
-    for part in source.parts:
+    first = max(int(np.searchsorted(part_k0, lo, side="right")) - 1, 0)
+    for part in source.parts[first:]:
+        if part.k0 >= hi:
+            break
         a, b = max(lo, part.k0), min(hi, part.k0 + part.n_frames)
         if b <= a:
             continue
