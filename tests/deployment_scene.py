@@ -65,17 +65,19 @@ def file_lengths(rng, total_s, fs, lo_s=45.0, hi_s=60.0):
     return out
 
 
-def plan_files(*, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7.9, 1.4, 5.6), seed=7):
+def plan_files(*, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7.9, 1.4, 5.6), seed=7,
+               file_s=(45.0, 60.0)):
     """(starts (N,) whole samples, lengths per recorder): the files before they are written."""
     rng = np.random.default_rng(seed)
     starts = np.round(np.asarray(starts_s, float) * fs) / fs
-    return starts, [file_lengths(rng, duration_s - s, fs) for s in starts]
+    return starts, [file_lengths(rng, duration_s - s, fs, *file_s) for s in starts]
 
 
 def write_deployment(folder, *, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7.9, 1.4, 5.6),
                      bang_times_s=None, positions_m=None, drop=((2, 3),), stamp=True,
                      noise_fs=2e-4, seed=7, temperature_c=8.0, block_s=60.0,
-                     subtype="PCM_16", mics_m=MICS5_M, window_s=0.9):
+                     subtype="PCM_16", mics_m=MICS5_M, window_s=0.9, file_s=(45.0, 60.0),
+                     progress=None):
     """Write the recorders' files and a site file ``site.toml`` naming them by glob.
 
     Parameters
@@ -87,7 +89,8 @@ def write_deployment(folder, *, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7
     """
     folder = Path(folder)
     n_mic = len(mics_m)
-    starts, plan = plan_files(fs=fs, duration_s=duration_s, starts_s=starts_s, seed=seed)
+    starts, plan = plan_files(fs=fs, duration_s=duration_s, starts_s=starts_s, seed=seed,
+                              file_s=file_s)
     emissions = [synth.Emission(np.asarray(p, float), float(t), bang())
                  for t, p in zip(bang_times_s, positions_m)]
     windows = []
@@ -130,6 +133,8 @@ def write_deployment(folder, *, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7
                 nrng.standard_normal(n)  # the same noise stream as with the file kept
             mine.append((path, k0, n))
             k0 += n
+            if progress is not None:
+                progress(i, j, len(lengths))
         files.append(mine)
     raw = site_dict(mics_m, temperature_c=temperature_c, relative_humidity=60.0,
                     mic_files=[f"R{i + 1}/*.wav" for i in range(n_mic)],
