@@ -77,7 +77,7 @@ def write_deployment(folder, *, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7
                      bang_times_s=None, positions_m=None, drop=((2, 3),), stamp=True,
                      noise_fs=2e-4, seed=7, temperature_c=8.0, block_s=60.0,
                      subtype="PCM_16", mics_m=MICS5_M, window_s=0.9, file_s=(45.0, 60.0),
-                     progress=None):
+                     progress=None, bang_pa=20.0):
     """Write the recorders' files and a site file ``site.toml`` naming them by glob.
 
     Parameters
@@ -85,13 +85,14 @@ def write_deployment(folder, *, fs=8000, duration_s=400.0, starts_s=(0.0, 3.2, 7
     starts_s : true start of each recorder after ``BASE`` (rounded to whole samples)
     bang_times_s, positions_m : emission times (after BASE) and positions (E, 3)
     drop : pairs (recorder, file index) left out (the recorder was off)
+    bang_pa : rms pressure of each bang at 1 m, Pa
     stamp : write bext chunks (else plain WAVs)
     """
     folder = Path(folder)
     n_mic = len(mics_m)
     starts, plan = plan_files(fs=fs, duration_s=duration_s, starts_s=starts_s, seed=seed,
                               file_s=file_s)
-    emissions = [synth.Emission(np.asarray(p, float), float(t), bang())
+    emissions = [synth.Emission(np.asarray(p, float), float(t), bang(bang_pa))
                  for t, p in zip(bang_times_s, positions_m)]
     windows = []
     arrivals = np.zeros((len(emissions), n_mic))

@@ -2,8 +2,8 @@
 
 Invented scene (tests/deployment_scene.py, exact simulator locate.synth): 5 recorders at 8 kHz
 start 0-7.9 s apart and write 45-60 s files stamped in their bext chunks; the deployment
-crosses midnight; recorder 3 misses its 4th file (a 52 s gap); 8 bangs over 6 minutes, one
-straddling a file boundary of recorder 1, one while recorder 3 is off.  References: the
+crosses midnight; recorder 3 misses its 4th file (a 52 s gap); 8 bangs (2 Pa rms at 1 m) over
+6 minutes, one straddling a file boundary of recorder 1, one while recorder 3 is off.  References: the
 simulator's true positions and arrival times, and Python's datetime for the clock times.
 """
 
@@ -45,7 +45,8 @@ def scene(tmp_path_factory):
     rng = np.random.default_rng(3)
     pos = np.c_[rng.uniform(5, 55, 8), rng.uniform(5, 55, 8), np.ones(8)]
     times = _scene_times(starts, plan, pos)
-    sc = write_deployment(folder, fs=FS, bang_times_s=times, positions_m=pos, drop=((2, 3),))
+    sc = write_deployment(folder, fs=FS, bang_times_s=times, positions_m=pos, drop=((2, 3),),
+                          bang_pa=2.0)
     sc.notes["positions"] = pos
     return sc
 
