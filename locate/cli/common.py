@@ -244,6 +244,7 @@ OPTION_OF = {
     "start_s": "--from", "window_s": "--window", "hop_s": "--hop", "solve_wind": "--solve-wind",
     "model": "--model", "source_z_m": "--source-z", "speed_guess_mps": "--speed-guess",
     "threshold_db": "--threshold", "segment_s": "--segment", "snr_db": "--snr",
+    "chunk_s": "--chunk", "chunk_overlap_s": "--chunk-overlap",
 }
 """The library names its parameters in errors (``window_s``); the command line says the option
 the user typed (``--window``)."""

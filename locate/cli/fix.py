@@ -43,11 +43,21 @@ from locate.errors import NothingFoundError, OptionError
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
               help="Also draw each pair's correlation and residual (diagnostics figure).")
 @click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
+@click.option("--chunk", "chunk_s", type=float, default=None, metavar="SECONDS",
+              help="Scan a long deployment for events in time chunks of this length, "
+                   "overlapping (--chunk-overlap): same fixes as one run; with --scheduler "
+                   "on a Dask cluster.")
+@click.option("--chunk-overlap", "chunk_overlap_s", type=float, default=30.0,
+              show_default=True, help="With --chunk: seconds scanned either side of a chunk.")
+@click.option("--scheduler", default=None, metavar="ADDRESS",
+              help="With --chunk: run the chunks on this Dask scheduler (tcp://host:port); "
+                   "its workers must see the files at the same paths.")
 @field_options
 @click.pass_context
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
-        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
+        chunk_s=None, chunk_overlap_s=30.0, scheduler=None, geojson_path=None,
+        solve_air=False, solve_wind=False, events_choice=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.fix.air_solve import summary_lines as air_summary
@@ -80,6 +90,35 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         return run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
                          source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
                          map_path)
+    if scheduler is not None and chunk_s is None:
+        raise OptionError("--scheduler runs the chunks of --chunk: give --chunk SECONDS",
+                          field="--scheduler")
+    if chunk_s is not None:
+        if start_s is not None or window_s is not None or solve_air or choice is not None \
+                or panels_path:
+            raise OptionError("--chunk scans every event of the recordings: leave out "
+                              "--from/--to, --window, --solve-air, --events and --panels",
+                              field="--chunk")
+        from locate.workflows.chunked import locate_chunked, plan_chunks
+
+        n = len(plan_chunks(rec.start_s, rec.stop_s, rec.sample_rate_hz, chunk_s,
+                            chunk_overlap_s))
+        try:
+            with progress_bar(ctx, n, f"Chunks ({n})") as bar:
+                result = locate_chunked(
+                    site, rec, chunk_s=chunk_s, overlap_s=chunk_overlap_s,
+                    scheduler=scheduler, progress=bar.update, band_hz=band_hz, dims=dims,
+                    source_z_m=source_z_m, sound_speed_mps=sound_speed_mps,
+                    threshold_db=threshold_db, reject=not no_reject)
+        except NothingFoundError as exc:
+            for w in getattr(exc, "warnings", ()):
+                warn(w)
+            raise
+        print_fixes(ctx, site, cond, result)
+        for w in result["warnings"]:
+            warn(w)
+        write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path)
+        return result
     try:
         result = locate_recordings(
             site, rec, start_s=start_s, stop_s=stop_s, window_s=window_s, band_hz=band_hz,

@@ -52,7 +52,8 @@ def no_progress(label, total):
 def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=None,
                       band_hz=None, dims=2, source_z_m=0.0, sound_speed_mps=None,
                       threshold_db=10.0, reject=True, keep_curves=False, solve_air=False,
-                      solve_wind=False, events_choice=None, progress=no_progress) -> dict:
+                      solve_wind=False, events_choice=None, progress=no_progress,
+                      scan_s=None, own_s=None) -> dict:
     """Fix a stationary source in a site's recordings.
 
     Parameters
@@ -82,6 +83,9 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         Which detected events to fix.
     progress : callable
         ``progress(label, total)`` -> context manager with ``update(n)``.
+    scan_s, own_s : (float, float), optional
+        Without a span: scan only ``scan_s`` for events and fix those first heard within
+        ``own_s`` (one chunk of a chunked scan, :mod:`locate.workflows.chunked`).
 
     Returns
     -------
@@ -97,10 +101,14 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
     cond = conditions_for(site, sound_speed_mps)
     warnings = list(site.warnings) + list(rec.warnings)
     if start_s is None:
-        with progress("Scanning for events", rec.duration_s) as bar:
-            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz,
-                                 threshold_db=threshold_db, progress=bar.update)
-        require_events(events, rec.start_s, rec.stop_s)
+        a, b = (rec.start_s, rec.stop_s) if scan_s is None else scan_s
+        with progress("Scanning for events", b - a) as bar:
+            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz, start_s=a,
+                                 stop_s=b, threshold_db=threshold_db, progress=bar.update)
+        if own_s is not None:  # a chunk keeps the events first heard in its own part
+            events = [ev for ev in events
+                      if own_s[0] <= float(np.nanmin(ev.onset_s)) < own_s[1]]
+        require_events(events, a, b)
         events, notes = choose_events(events, events_choice)
         warnings.extend(notes)
         spans = plan_spans(events, rec, site.positions_m, cond)

@@ -3,8 +3,9 @@
 Invented scene (tests/deployment_scene.py, exact simulator locate.synth): 5 recorders at 8 kHz
 start 0-7.9 s apart and write 45-60 s files stamped in their bext chunks; the deployment
 crosses midnight; recorder 3 misses its 4th file (a 52 s gap); 8 bangs (2 Pa rms at 1 m) over
-6 minutes, one straddling a file boundary of recorder 1, one while recorder 3 is off.  References: the
-simulator's true positions and arrival times, and Python's datetime for the clock times.
+6 minutes, one straddling a file boundary of recorder 1, one while recorder 3 is off.
+References: the simulator's true positions and arrival times, and Python's datetime for the
+clock times.
 """
 
 from __future__ import annotations
