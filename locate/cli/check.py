@@ -51,7 +51,8 @@ def check(ctx, site_path, dims):
     opened = list(rec.warnings)
     stop_s = min(rec.stop_s, rec.start_s + CHECK_SCAN_S)  # dead, silent or clipped channels
     with progress_bar(ctx, stop_s - rec.start_s, "Reading the recordings") as bar:
-        for _t0, signals, _ in rec.blocks(60.0, 0.0, rec.start_s, stop_s, reuse=True):
+        for _t0, signals, _ in rec.blocks(60.0, 0.0, rec.start_s, stop_s, reuse=True,
+                                          gaps_ok=True):
             bar.update(signals.shape[1] / rec.sample_rate_hz)
     found = [w for w in rec.warnings if w not in opened]
     scanned = (f"the first {stop_s - rec.start_s:.0f} s" if stop_s < rec.stop_s

@@ -168,6 +168,7 @@ def check_span_args(start_s, stop_s, window_s=None):
 
 def site_inputs(site):
     files = [site.path, site.recording_file] + [m.file for m in site.mics]
+    files += [f for m in site.mics for f in (getattr(m, "files", None) or ())]
     return [f for f in files if f is not None]
 
 

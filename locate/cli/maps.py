@@ -6,6 +6,7 @@ import click
 import numpy as np
 
 from locate.cli.common import (
+    TIME,
     check_band,
     check_span_args,
     draw_map,
@@ -14,6 +15,7 @@ from locate.cli.common import (
     load,
     parse_band,
     progress_bar,
+    resolve_span,
     site_inputs,
     warn,
 )
@@ -24,9 +26,10 @@ __all__ = ["track", "map_command"]
 
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
-@click.option("--from", "start_s", type=float, required=True,
-              help="Start of the pass, seconds into the recording.")
-@click.option("--to", "stop_s", type=float, required=True, help="End of the pass, seconds.")
+@click.option("--from", "start_s", type=TIME, required=True,
+              help="Start of the pass: seconds into the recording, or an ISO 8601 clock time.")
+@click.option("--to", "stop_s", type=TIME, required=True,
+              help="End of the pass: seconds, or an ISO 8601 clock time.")
 @click.option("--window", "window_s", type=float, default=None,
               help="Analysis window, s (default: from the array size and --speed-guess).")
 @click.option("--hop", "hop_s", type=float, default=None, help="Window hop, s.")
@@ -53,10 +56,6 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
 
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
-    if window_s is not None and window_s > stop_s - start_s:
-        raise OptionError(f"window {window_s:g} s is longer than the span "
-                          f"{stop_s - start_s:g} s: shorten --window or widen --from/--to",
-                          field="--window")
     if hop_s is not None and hop_s <= 0:
         raise OptionError(f"hop {hop_s:g} s must be positive", field="--hop")
     tone_hz = None if tone is None else ("auto" if tone == "auto" else _float(tone, "--tone"))
@@ -64,6 +63,11 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     for p, opt in ((json_path, "--json"), (map_path, "--map")):
         check_output_path(p, site_inputs(site), option=opt)
     rec = open_recordings(site)
+    start_s, stop_s = resolve_span(rec, start_s, stop_s, window_s)
+    if window_s is not None and window_s > stop_s - start_s:
+        raise OptionError(f"window {window_s:g} s is longer than the span "
+                          f"{stop_s - start_s:g} s: shorten --window or widen --from/--to",
+                          field="--window")
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
     signals, _ = rec.read(start_s, stop_s)

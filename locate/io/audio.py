@@ -283,7 +283,7 @@ class Recordings:
                                  field="start_s")
         return start_s, stop_s
 
-    def read(self, start_s, stop_s, *, out=None, scratch=None):
+    def read(self, start_s, stop_s, *, out=None, scratch=None, gaps_ok=False):
         """Read the common-time span ``[start_s, stop_s)`` of every mic.
 
         Parameters
@@ -294,6 +294,10 @@ class Recordings:
             Written in place and returned when its shape fits (saves allocating a block).
         scratch : dict, optional
             Holds the frame buffers of the files between calls (used by :meth:`blocks`).
+        gaps_ok : bool
+            A deployment only: read spans where some mic has no audio (as zeros), for a
+            caller that leaves it out there (:meth:`uncovered`).  Otherwise such a span is an
+            error naming the mic, its files and the gap: no command computes on zeros.
 
         Returns
         -------
@@ -310,6 +314,8 @@ class Recordings:
             Empty span, span outside the recordings, or NaN/inf samples in it.
         """
         start_s, stop_s = self._check_span(start_s, stop_s)
+        if self.deployment is not None and not gaps_ok:
+            self._refuse_gaps(start_s, stop_s)
         fs = self.sample_rate_hz
         n_out = max(int(round((stop_s - start_s) * fs)), 1)
         scale = self._scale()
@@ -357,8 +363,19 @@ class Recordings:
                     self._warn(key, msg)
         return out, residual
 
+    def _refuse_gaps(self, start_s, stop_s):
+        for i, holes in enumerate(self.uncovered(start_s, stop_s)):
+            if holes:
+                a, b = holes[0]
+                raise RecordingError(
+                    f'mic "{self.mic_names[i]}" has no audio from {a:.3f} to {b:.3f} s '
+                    f"(recorder off, or between its files), inside the span {start_s:.3f}.."
+                    f"{stop_s:.3f} s: choose a span that every mic covers (tdoa check shows "
+                    "the coverage)", file=self._sources[i].path,
+                    field=self.deployment.fields[i])
+
     def blocks(self, block_s, overlap_s=0.0, start_s=None, stop_s=None, *,
-               reuse=False):
+               reuse=False, gaps_ok=False):
         """Yield ``(t0_s, signals (N, T), residual_offset_s (N,))`` block after block.
 
         Blocks are ``block_s`` long and start every ``block_s - overlap_s`` seconds (both
@@ -386,7 +403,8 @@ class Recordings:
         buffer, scratch = None, ({} if reuse else None)
         while True:
             k_end = min(k + block_n, n_stop)
-            signals, residual = self.read(k / fs, k_end / fs, out=buffer, scratch=scratch)
+            signals, residual = self.read(k / fs, k_end / fs, out=buffer, scratch=scratch,
+                                          gaps_ok=gaps_ok)
             if reuse:
                 buffer = signals
             yield k / fs, signals, residual

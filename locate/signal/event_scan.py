@@ -197,7 +197,8 @@ def stream_frame_energy(recordings, start_s, stop_s, *, frame_s=FRAME_S, band_hz
     while k < n_stop - 1:
         k_end = min(k + block, n_stop)
         a, b = max(k - pad, min(lo_all, k)), min(k_end + pad, max(hi_all, k_end))
-        raw, _ = recordings.read(a / fs, b / fs, out=raw, scratch=scratch)
+        # gaps_ok: a deployment's uncovered frames are blanked below, not read as signal
+        raw, _ = recordings.read(a / fs, b / fs, out=raw, scratch=scratch, gaps_ok=True)
         sig = raw
         if band_hz is not None:
             sig = _band(sig, fs, band_hz)

@@ -137,7 +137,10 @@ def test_a_gap_is_uncovered_and_not_a_dead_mic(tmp_path):
     assert holes[0] == [(pytest.approx(n1 / FS), pytest.approx(n1 / FS + 2.0))]
     assert holes[1:] == [[], [], []]
     assert list(rec.covering(8.0, 9.0)) == [False, True, True, True]
-    x, _ = rec.read(5.0, 12.0)
+    with pytest.raises(RecordingError) as info:  # no command computes on the gap's zeros
+        rec.read(5.0, 12.0)
+    assert info.value.field == "mics[0].file" and "no audio from 7.015" in str(info.value)
+    x, _ = rec.read(5.0, 12.0, gaps_ok=True)  # a caller that leaves M1 out there
     assert not any("dead" in w or "silent" in w for w in rec.warnings)
     after = n1 + 2 * FS - 5 * FS  # R1's second file follows the gap
     assert np.array_equal(x[0, after:after + 100], whole[0, n1:n1 + 100])
