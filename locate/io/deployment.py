@@ -23,7 +23,9 @@ from locate.io.filesets import describe_files, place_files
 from locate.io.site import parse_start_time
 from locate.io.site_tables import zone_seconds
 
-__all__ = ["Deployment", "plan_deployment", "coverage_rows"]
+__all__ = ["Deployment", "plan_deployment", "coverage_rows", "START_AGREE_S"]
+
+START_AGREE_S = 1.0  # a start_time beside bext stamps must agree with them this well
 
 
 @dataclass(frozen=True)
@@ -90,6 +92,15 @@ def plan_deployment(site):
             cache[key] = (infos, place_files(infos, start_time=start, field_name=fld,
                                              ordered_by=order))
         infos, fs_set = cache[key]
+        if fs_set.source == "bext" and m.start_time:
+            given = parse_start_time(m.start_time)
+            off = (given[0] - fs_set.start[0]) + (given[1] - fs_set.start[1])
+            if abs(off) > START_AGREE_S:
+                raise RecordingError(
+                    f"start_time {m.start_time} is {off:+.3f} s from the bext stamp of "
+                    f"{fs_set.parts[0].path.name} (time_zone {m.time_zone or 'UTC'}): the "
+                    "stamps place the files; correct or remove start_time, or give the "
+                    "recorder's time_zone", file=site.path, field=f"mics[{i}].start_time")
         channel = m.channel if m.channel is not None else 1
         for f in infos:
             if channel > f.channels:

@@ -92,7 +92,7 @@ def _write(path, x, fs=FS, start=None):
         insert_bext(path, pack_bext(start, fs))
 
 
-def _deployment(tmp_path, *, gap_s=0.0, stamp=True, extra=None):
+def _deployment(tmp_path, *, gap_s=0.0, stamp=True, extra=None, zone="Z"):
     """4 recorders; R1 writes 2 files (optionally with a gap), the others one file each."""
     rng = np.random.default_rng(1)
     whole = rng.uniform(-0.5, 0.5, (4, 20 * FS)).astype(np.float32)
@@ -108,7 +108,9 @@ def _deployment(tmp_path, *, gap_s=0.0, stamp=True, extra=None):
         else:
             _write(d / "a_1.wav", whole[i], start=T0 if stamp else None)
         m = {"name": f"M{i + 1}", "x": LAYOUT[i][0], "y": LAYOUT[i][1], "z": LAYOUT[i][2],
-             "file": f"R{i + 1}/*.wav", "time_zone": "Z"}
+             "file": f"R{i + 1}/*.wav"}
+        if zone:
+            m["time_zone"] = zone
         m.update((extra or {}).get(i, {}))
         mics.append(m)
     site = tmp_path / "site.toml"
@@ -181,3 +183,24 @@ def test_start_time_in_the_site_places_unstamped_recorders(tmp_path):
     rec = open_recordings(load_site(site))
     assert list(rec.offsets_s) == [0.0, 1.5, 1.5, 1.5]
     assert rec.clock_time(0.0) == "2026-11-18T23:59:30.000Z"
+
+
+def test_stamps_without_a_time_zone_are_read_as_utc_with_a_note(tmp_path):
+    site, _ = _deployment(tmp_path, zone=None)
+    rec = open_recordings(load_site(site))
+    assert rec.clock_time(0.0) == "2026-11-18T23:59:30.000Z"
+    assert any("no time zone" in w for w in rec.warnings)
+
+
+def test_a_recorder_on_local_time(tmp_path):
+    # stamps on a clock at UTC+01:00: the true UTC is an hour earlier (datetime arithmetic)
+    site, _ = _deployment(tmp_path, zone="+01:00")
+    rec = open_recordings(load_site(site))
+    assert rec.clock_time(0.0) == "2026-11-18T22:59:30.000Z"
+
+
+def test_a_start_time_that_contradicts_the_stamps(tmp_path):
+    site, _ = _deployment(tmp_path, extra={1: {"start_time": "2026-11-18T23:59:35Z"}})
+    with pytest.raises(RecordingError) as info:
+        open_recordings(load_site(site))
+    assert info.value.field == "mics[1].start_time" and "+5.000 s" in str(info.value)
