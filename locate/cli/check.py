@@ -8,9 +8,12 @@ import click
 import numpy as np
 
 from locate.cli.common import (
+    draw_timeline,
     echo,
     load,
     progress_bar,
+    site_inputs,
+    timeline_option,
     warn,
 )
 
@@ -21,13 +24,17 @@ CHECK_SCAN_S = 300.0  # tdoa check reads this much of the recordings for channel
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
 @click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
+@timeline_option
 @click.pass_context
-def check(ctx, site_path, dims):
+def check(ctx, site_path, dims, timeline_path=None):
     """Validate the site file and recordings; print geometry and warnings."""
     from locate.io.audio import open_recordings
     from locate.workflows.fixing import conditions_for
 
     site = load(site_path, dims)
+    if timeline_path:
+        from locate.results.documents import check_output_path
+        check_output_path(timeline_path, site_inputs(site), option="--timeline")
     rec = open_recordings(site)
     cond = conditions_for(site)
     pos = site.positions_m
@@ -62,6 +69,8 @@ def check(ctx, site_path, dims):
                  "no dead, silent or clipped channel"))
     for w in list(site.warnings) + list(rec.warnings):
         warn(w)
+    if timeline_path:
+        draw_timeline(ctx, rec, None, timeline_path)
     echo(ctx, "Site file and recordings look usable." if not found else
          "Site file and recordings are readable; mind the channel warnings before a fix.")
 

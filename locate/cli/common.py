@@ -226,6 +226,19 @@ def draw_map(site, result, path):
     plot.save_figure(fig, path)
 
 
+def timeline_option(f):
+    return click.option("--timeline", "timeline_path", type=click.Path(dir_okay=False),
+                        default=None, help="Draw each recorder's coverage (and the events or "
+                        "fixes) against clock time (PNG, SVG or PDF).")(f)
+
+
+def draw_timeline(ctx, rec, result, path):
+    from locate.draw import figures as plot
+    from locate.draw.timeline import timeline_figure
+    plot.save_figure(timeline_figure(rec, result), path)
+    echo(ctx, f"Timeline written to {path}")
+
+
 def draw_panels(result, path):
     from locate.draw import figures as plot
     fig = plot.panels_figure(result)

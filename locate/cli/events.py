@@ -7,6 +7,7 @@ import click
 from locate.cli.common import (
     check_band,
     check_span_args,
+    draw_timeline,
     echo,
     load,
     parse_band,
@@ -14,6 +15,7 @@ from locate.cli.common import (
     resolve_span,
     site_inputs,
     span_options,
+    timeline_option,
     warn,
 )
 
@@ -24,8 +26,9 @@ from locate.cli.common import (
 @click.option("--threshold", "threshold_db", type=float, default=10.0, show_default=True,
               help="dB above the background for a frame to count as active.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@timeline_option
 @click.pass_context
-def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
+def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path, timeline_path=None):
     """List detected events with time, duration, level and how many mics heard them."""
     from locate.io.audio import open_recordings
     from locate.results.documents import check_output_path, write_json
@@ -36,6 +39,7 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
         check_span_args(start_s, stop_s)
     site = load(site_path)
     check_output_path(json_path, site_inputs(site))
+    check_output_path(timeline_path, site_inputs(site), option="--timeline")
     rec = open_recordings(site)
     start_s, stop_s = resolve_span(rec, start_s, stop_s)
     check_band(band_hz, rec.sample_rate_hz)
@@ -58,4 +62,6 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path):
         warn(w)
     if json_path:
         write_json(json_path, result)
+    if timeline_path:
+        draw_timeline(ctx, rec, result, timeline_path)
     return rows

@@ -8,6 +8,7 @@ from locate.cli.common import (
     check_band,
     check_span_args,
     draw_panels,
+    draw_timeline,
     echo,
     geometry_options,
     load,
@@ -18,6 +19,7 @@ from locate.cli.common import (
     resolve_span,
     site_inputs,
     span_options,
+    timeline_option,
     warn,
     write_fix_outputs,
 )
@@ -52,11 +54,13 @@ from locate.errors import NothingFoundError, OptionError
 @click.option("--scheduler", default=None, metavar="ADDRESS",
               help="With --chunk: run the chunks on this Dask scheduler (tcp://host:port); "
                    "its workers must see the files at the same paths.")
+@timeline_option
 @field_options
 @click.pass_context
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
-        chunk_s=None, chunk_overlap_s=30.0, scheduler=None, geojson_path=None,
+        chunk_s=None, chunk_overlap_s=30.0, scheduler=None, timeline_path=None,
+        geojson_path=None,
         solve_air=False, solve_wind=False, events_choice=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
@@ -73,7 +77,7 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     site = load(site_path, dims)
     inputs = site_inputs(site)
     for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
-                   (panels_path, "--panels")):
+                   (panels_path, "--panels"), (timeline_path, "--timeline")):
         check_output_path(p, inputs, option=opt)
     choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
                                      solve_wind=solve_wind, events_choice=events_choice,
@@ -118,6 +122,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         for w in result["warnings"]:
             warn(w)
         write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path)
+        if timeline_path:
+            draw_timeline(ctx, rec, result, timeline_path)
         return result
     try:
         result = locate_recordings(
@@ -139,4 +145,6 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path)
     if panels_path:
         draw_panels(result, panels_path)
+    if timeline_path:
+        draw_timeline(ctx, rec, result, timeline_path)
     return result

@@ -154,7 +154,7 @@ class Recordings:
     epoch : (int, float) or None
         UTC of common time 0 (whole POSIX seconds, fraction) when the recordings carry clock
         time (bext stamps or start_time); None otherwise.
-    deployment : bool
+    deployment : locate.io.deployment.Deployment or None
         Recorders of many files (:mod:`locate.io.deployment`): the span is every time some mic
         covers, and a mic is left out where it has no audio (:meth:`uncovered`), not zero-filled.
     """

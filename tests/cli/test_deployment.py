@@ -194,3 +194,21 @@ def test_a_corrupt_bext_chunk(small, tmp_path):
     data[at:at + 10] = b"20XX-11-18"
     first.write_bytes(bytes(data))
     _one_line_error(f, first.name, "bext.OriginationDate")
+
+
+def test_timeline_figure_shows_each_recorder_and_the_gap(scene, fixed, tmp_path):
+    from locate.draw.timeline import timeline_figure
+    from locate.io.audio import open_recordings
+    from locate.io.site import load_site
+
+    result = fixed[0]
+    rec = open_recordings(load_site(scene.site))
+    fig = timeline_figure(rec, result)
+    cover, points = fig.axes[0], fig.axes[1]
+    bars = cover.collections
+    assert len(bars) == 5
+    assert [len(b.get_paths()) for b in bars] == [1, 1, 2, 1, 1]  # M3: two spans, a gap
+    assert len(points.collections[0].get_offsets()) == 8
+    code, out, err = run_cli(["check", scene.site, "--timeline", tmp_path / "cover.png"])
+    assert code == 0, err
+    assert (tmp_path / "cover.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
