@@ -22,6 +22,8 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from locate.errors import RecordingError
 
 __all__ = ["Part", "FileSet", "FileInfo", "expand_pattern", "is_pattern", "natural_key",
@@ -228,7 +230,34 @@ def _by_stamps(infos, fs, notes) -> FileSet:
         parts.append(Part(f.path, k0, f.n_frames))
         end = k0 + f.n_frames
         prev = f
+    _check_rate(parts, fs)
     return FileSet(tuple(parts), fs, "bext", (w0, f0), tuple(gaps), notes)
+
+
+STANDARD_RATES_HZ = (8000, 11025, 16000, 22050, 24000, 32000, 44100, 48000, 88200, 96000,
+                     176400, 192000)  # common practice (audio recorders)
+
+
+def _check_rate(parts, fs):
+    """Refuse stamps whose spacing says the files were recorded at another standard rate.
+
+    Files that all start ``r`` times their length apart, with ``r`` the ratio of ``fs`` to
+    another standard rate (within 0.1 %), were written at that rate and labelled ``fs`` (or
+    stamped with a clock counting at it): every file would leave the same proportional gap.
+    """
+    if len(parts) < 3:
+        return
+    r = np.array([(b.k0 - a.k0) / a.n_frames for a, b in zip(parts[:-1], parts[1:])])
+    if np.ptp(r) > 2e-3 * r.mean() or abs(r.mean() - 1.0) < 2e-3:
+        return
+    true_rate = fs / r.mean()
+    for rate in STANDARD_RATES_HZ:
+        if rate != fs and abs(true_rate / rate - 1.0) < 1e-3:
+            raise RecordingError(
+                f"its files start {r.mean():.4f} times their length apart: the stamps say the "
+                f"audio ran at {rate} Hz, but the header says {fs} Hz (a rate that contradicts "
+                "the stamps): set the right rate, or give start_time and leave out the stamps",
+                file=parts[0].path, field="sample rate")
 
 
 def _dur(s: float) -> str:

@@ -55,6 +55,23 @@ def test_overlapping_stamps_name_the_later_file():
     assert "overlapping" in msg and "R1_001.wav" in msg
 
 
+def test_stamps_spaced_for_another_rate():
+    # 44.1 kHz audio labelled 48 kHz: 60 s files seem 55.1 s long and are stamped 60 s apart,
+    # a gap of 8.8 % after each (48000 / 44100 = 1.0884).  (The other way round the files
+    # overlap, refused by test_overlapping_stamps_name_the_later_file.)
+    fs = 48000
+    n = 60 * 44100
+    files = [FileInfo(Path(f"R1_{k}.wav"), n, fs, 1, _posix(T0 + dt.timedelta(seconds=60 * k)),
+                      1 / fs) for k in range(4)]
+    with pytest.raises(RecordingError) as info:
+        place_files(files)
+    assert info.value.field == "sample rate" and "44100 Hz" in str(info.value)
+    # a recorder that pauses 6 s between 60 s files (a duty cycle) is not a rate error
+    files = [FileInfo(Path(f"R1_{k}.wav"), 60 * fs, fs, 1,
+                      _posix(T0 + dt.timedelta(seconds=66 * k)), 1 / fs) for k in range(4)]
+    assert len(place_files(files).gaps) == 3
+
+
 def test_mixed_rates_within_a_recorder():
     a = _info("R1_001.wav", 45 * FS, T0)
     b = _info("R1_002.wav", 45 * 16000, T0 + dt.timedelta(seconds=45), fs=16000)
