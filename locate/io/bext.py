@@ -26,7 +26,11 @@ OriginationTime lies just after (or the reverse) started on the neighbouring day
 carry no time zone: the recorder's clock is taken as the site file says (``time_zone``).
 
 Nothing here opens audio with libsndfile: the RIFF walk is done by hand (RIFF layout: Microsoft
-and IBM, "Multimedia Programming Interface and Data Specifications 1.0", 1991).
+and IBM, "Multimedia Programming Interface and Data Specifications 1.0", 1991).  A FLAC file
+carries a WAV's ``bext`` chunk when it was encoded keeping the foreign RIFF metadata: each RIFF
+chunk then sits in an APPLICATION metadata block (type 2) whose 4-byte application id is
+``riff`` (FLAC format description, xiph.org, from memory: the ``fLaC`` marker, then blocks of a
+1-byte header - last-block flag and 7-bit type - a 24-bit big-endian length and the payload).
 """
 
 from __future__ import annotations
@@ -39,7 +43,8 @@ from pathlib import Path
 
 from locate.errors import RecordingError
 
-__all__ = ["BextStamp", "read_bext", "parse_bext", "pack_bext", "insert_bext",
+__all__ = ["BextStamp", "read_bext", "read_flac_bext", "parse_bext", "pack_bext", "insert_bext",
+           "insert_flac_bext",
            "BEXT_MIN_BYTES", "BEXT_SIZE"]
 
 BEXT_MIN_BYTES = 346  # up to the end of TimeReferenceHigh (fields before Version)
@@ -178,6 +183,63 @@ def read_bext(path) -> BextStamp | None:
                 return None  # the stamp comes before the audio in every recorder we know
             pos += 8 + n + (n & 1)
     return None
+
+
+def read_flac_bext(path) -> BextStamp | None:
+    """The ``bext`` stamp a FLAC file keeps in a ``riff`` APPLICATION block, or None.
+
+    Raises
+    ------
+    RecordingError
+        A metadata block that runs past the end of the file, or a corrupt ``bext`` chunk.
+    """
+    p = Path(path)
+    size = p.stat().st_size
+    with open(p, "rb") as fh:
+        if fh.read(4) != b"fLaC":
+            return None
+        pos = 4
+        for _ in range(_MAX_CHUNKS):
+            fh.seek(pos)
+            head = fh.read(4)
+            if len(head) < 4:
+                return None
+            last, kind = head[0] >> 7, head[0] & 0x7F
+            n = int.from_bytes(head[1:], "big")
+            if pos + 4 + n > size:
+                raise RecordingError(f"a FLAC metadata block claims {n} bytes past the end of "
+                                     "the file: the file is corrupt", file=p, field="bext")
+            if kind == 2 and n >= 12:
+                block = fh.read(n)
+                if block[:4] == b"riff" and block[4:8] == b"bext":
+                    m = int.from_bytes(block[8:12], "little")
+                    if 12 + m > n:
+                        raise RecordingError(f"the bext chunk claims {m} bytes but its FLAC "
+                                             f"block holds {n - 12}: the chunk is corrupt",
+                                             file=p, field="bext")
+                    return parse_bext(block[12:12 + m], file=p)
+            if last:
+                return None
+            pos += 4 + n
+    return None
+
+
+def insert_flac_bext(path, chunk: bytes) -> None:
+    """Put a ``bext`` chunk into a FLAC file as a ``riff`` APPLICATION block (test scenes)."""
+    from locate.common import atomic_target
+
+    p = Path(path)
+    data = p.read_bytes()
+    if data[:4] != b"fLaC":
+        raise ValueError(f"{p} is not a FLAC file")
+    head = data[4]
+    n = int.from_bytes(data[5:8], "big")  # STREAMINFO, always first
+    last = head >> 7
+    block = b"riff" + chunk
+    new_head = bytes([(head & 0x7F)]) + data[5:8]  # STREAMINFO is no longer the last
+    app = bytes([(0x80 if last else 0) | 2]) + len(block).to_bytes(3, "big") + block
+    with atomic_target(p, suffix=".flac") as tmp:
+        tmp.write_bytes(data[:4] + new_head + data[8:8 + n] + app + data[8 + n:])
 
 
 def pack_bext(when: _dt.datetime, sample_rate_hz: int, *, description="", originator="",

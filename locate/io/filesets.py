@@ -115,7 +115,7 @@ def describe_files(paths, field_name, zone_s=0) -> list[FileInfo]:
     """
     import soundfile
 
-    from locate.io.bext import read_bext
+    from locate.io.bext import read_bext, read_flac_bext
 
     out = []
     for p in paths:
@@ -133,8 +133,8 @@ def describe_files(paths, field_name, zone_s=0) -> list[FileInfo]:
             raise RecordingError("the file holds no samples (zero length): leave it out or "
                                  "copy it again from the recorder", file=p, field=field_name)
         stamp, res = None, 0.0
-        if str(info.format) == "WAV":
-            b = read_bext(p)
+        if str(info.format) in ("WAV", "WAVEX", "RF64", "FLAC"):
+            b = read_flac_bext(p) if str(info.format) == "FLAC" else read_bext(p)
             if b is not None:
                 whole, frac = b.start(info.samplerate, file=p)
                 stamp = (whole - int(zone_s), frac)

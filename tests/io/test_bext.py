@@ -15,7 +15,14 @@ import pytest
 import soundfile
 
 from locate.errors import RecordingError
-from locate.io.bext import insert_bext, pack_bext, parse_bext, read_bext
+from locate.io.bext import (
+    insert_bext,
+    insert_flac_bext,
+    pack_bext,
+    parse_bext,
+    read_bext,
+    read_flac_bext,
+)
 
 UTC = dt.timezone.utc
 
@@ -114,3 +121,19 @@ def test_chunk_running_past_the_end_of_the_file(tmp_path):
     with pytest.raises(RecordingError) as info:
         read_bext(p)
     assert info.value.field == "bext"
+
+
+def test_a_flac_file_keeps_the_stamp_in_a_riff_application_block(tmp_path):
+    # FLAC metadata layout from memory (xiph.org format description); libsndfile, a reference
+    # FLAC decoder, must still read the audio with the block inserted
+    fs = 16000
+    x = np.round(np.random.default_rng(2).uniform(-0.5, 0.5, 4000) * 32767) / 32768
+    p = tmp_path / "R1_001.flac"
+    soundfile.write(p, x, fs, subtype="PCM_16")
+    assert read_flac_bext(p) is None
+    when = dt.datetime(2026, 11, 19, 0, 0, 2, 500000)
+    insert_flac_bext(p, pack_bext(when, fs))
+    y, rate = soundfile.read(p)
+    assert rate == fs and np.array_equal(x, y)
+    whole, frac = read_flac_bext(p).start(fs)
+    assert dt.datetime.fromtimestamp(whole + frac, tz=UTC) == when.replace(tzinfo=UTC)
