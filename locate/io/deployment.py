@@ -137,6 +137,13 @@ def plan_deployment(site):
         first = int(np.argmin(rel))
         epoch = (int(whole[first]), float(frac[first]))
         offsets = offsets + (rel - rel[first])
+        recorders = {tuple(f.parts) for f in filesets}
+        undeclared = all(m.clock_sd_s is None and not m.offset_s for m in site.mics)
+        if len(recorders) > 1 and undeclared:
+            notes.append("the recorders are placed by their own clocks' stamps: a fix needs "
+                         "them in step to well under a millisecond; unless they share a "
+                         "synchronised clock (GPS, timecode), calibrate them with tdoa sync or "
+                         "declare clock_sd_s")
     drift = np.array([m.drift_ppm for m in site.mics], dtype=float)
     dep = Deployment(tuple(filesets), tuple(fields), tuple(f.gaps for f in filesets),
                      tuple(dict.fromkeys(notes)))
