@@ -221,3 +221,14 @@ def test_a_start_time_that_contradicts_the_stamps(tmp_path):
     with pytest.raises(RecordingError) as info:
         open_recordings(load_site(site))
     assert info.value.field == "mics[1].start_time" and "+5.000 s" in str(info.value)
+
+
+def test_declared_offset_and_drift_still_apply_per_recorder(tmp_path):
+    # site-file clock model (docs/site-file.md): t = offset_s + stamp offset + tau / (1 + ppm 1e-6)
+    site, whole = _deployment(tmp_path, extra={1: {"offset_s": 0.25}, 2: {"drift_ppm": 100.0}})
+    rec = open_recordings(load_site(site))
+    assert list(rec.offsets_s) == [0.0, 0.25, 0.0, 0.0]
+    x, residual = rec.read(1.0, 2.0, gaps_ok=True)
+    assert np.array_equal(x[1], whole[1, int(0.75 * FS):int(1.75 * FS)])  # soundfile samples
+    end = 20 * FS / (FS * (1 + 100e-6))  # recorder 3 covers 20 s of its own clock
+    assert rec.uncovered(19.0, 20.0)[2] == [(pytest.approx(end, abs=1e-9), 20.0)]
