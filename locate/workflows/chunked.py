@@ -17,6 +17,7 @@ the scheduler; the results are merged in time order either way.
 
 from __future__ import annotations
 
+import uuid
 from dataclasses import dataclass
 
 import numpy as np
@@ -156,8 +157,9 @@ def _run_dask(address, site_path, chunks, options, progress):
                           field="scheduler") from None
     with client:
         # pure=False: every chunk runs; retries: a chunk whose worker died runs again
+        run = uuid.uuid4().hex[:12]
         futures = [client.submit(run_chunk, site_path, ch, options, pure=False, retries=2,
-                                 key=f"tdoa-chunk-{ch.index}-{id(chunks)}") for ch in chunks]
+                                 key=f"tdoa-chunk-{run}-{ch.index}") for ch in chunks]
         parts = []
         for fut in as_completed(futures):
             parts.append(fut.result())
