@@ -142,11 +142,76 @@ def load(site_path, dims=2, require_audio=True):
     return load_site(site_path, dims=dims, require_audio=require_audio)
 
 
+class ClockTime(str):
+    """An ISO 8601 clock time given for ``--from``/``--to``; seconds once the recordings are
+    open (:func:`resolve_span`)."""
+
+
+class _TimeType(click.ParamType):
+    """Seconds into the recording (a number) or an ISO 8601 clock time."""
+
+    name = "SECONDS|ISO8601"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, (float, int)) or isinstance(value, ClockTime):
+            return value
+        text = str(value).strip()
+        try:
+            seconds = float(text)
+        except ValueError:
+            seconds = None
+        if seconds is not None:
+            if not math.isfinite(seconds):
+                self.fail(f"{value!r} is not a finite number of seconds", param, ctx)
+            return seconds
+        from locate.io.site import parse_start_time
+
+        try:
+            parse_start_time(text)
+        except ValueError:
+            self.fail(f"{value!r} is neither seconds nor an ISO 8601 clock time such as "
+                      "2026-11-18T23:58:30Z", param, ctx)
+        return ClockTime(text)
+
+
+TIME = _TimeType()
+
+
+def resolve_span(rec, start_s, stop_s, window_s=None):
+    """``--from``/``--to`` in seconds of the recordings' time base (clock times converted).
+
+    A clock time without a zone is UTC.  Raises OptionError when the recordings carry no clock
+    time or the converted span is empty.
+    """
+    from locate.io.site import parse_start_time
+
+    out = []
+    for v, opt in ((start_s, "--from"), (stop_s, "--to")):
+        if isinstance(v, ClockTime):
+            if getattr(rec, "epoch", None) is None:
+                raise OptionError(f"{v} is a clock time but the recordings carry none (no "
+                                  "bext stamps, no start_time): give seconds", field=opt)
+            out.append(rec.seconds_at(*parse_start_time(v)))
+        else:
+            out.append(v)
+    if any(isinstance(v, ClockTime) for v in (start_s, stop_s)):
+        a, b = out
+        if b is not None and a is not None and b <= a:
+            raise OptionError(f"the span {start_s} .. {stop_s} is empty: --from must be before "
+                              "--to", field="--from")
+        if a is not None and a < rec.start_s - 1e-9:
+            raise OptionError(f"{start_s} is before the recordings begin "
+                              f"({rec.clock_time(rec.start_s)})", field="--from")
+        check_span_args(max(a, 0.0), b, window_s)
+    return out[0], out[1]
+
+
 def span_options(f):
-    f = click.option("--from", "start_s", type=FINITE, default=None,
-                     help="Start of the span, seconds into the recording.")(f)
-    f = click.option("--to", "stop_s", type=FINITE, default=None,
-                     help="End of the span, seconds into the recording.")(f)
+    f = click.option("--from", "start_s", type=TIME, default=None,
+                     help="Start of the span: seconds into the recording, or an ISO 8601 "
+                          "clock time (UTC unless a zone is given) when they carry one.")(f)
+    f = click.option("--to", "stop_s", type=TIME, default=None,
+                     help="End of the span: seconds, or an ISO 8601 clock time.")(f)
     f = click.option("--band", default=None, metavar="LO:HI",
                      help="Analysis band in Hz (default: where the signal stands above the "
                           "noise).")(f)
@@ -177,6 +242,8 @@ def check_span_args(start_s, stop_s, window_s=None):
     if (start_s is None) != (stop_s is None):
         raise OptionError("give both --from and --to (or neither, to detect events)",
                           field="--from" if start_s is None else "--to")
+    if isinstance(start_s, ClockTime) or isinstance(stop_s, ClockTime):
+        return  # checked by resolve_span once the recordings' clock is known
     if start_s is not None and (start_s < 0 or stop_s <= start_s):
         raise OptionError(f"the span {start_s:g}..{stop_s:g} s is empty or negative: --from "
                           "must be >= 0 and before --to", field="--from")
@@ -190,6 +257,7 @@ def site_inputs(site):
     sketch = getattr(site, "sketch", None)
     if sketch is not None:
         files += [getattr(sketch, "image", None), getattr(sketch, "geojson", None)]
+    files += [f for m in site.mics for f in (getattr(m, "files", None) or ())]
     return [f for f in files if f is not None]
 
 
@@ -222,7 +290,8 @@ def print_fixes(ctx, site, cond, result):
         x, y, z = f["position_m"]
         e = f["ellipse95"]
         height = f"z {z:.2f} m (solved)" if f["dims"] == 3 else f"z {z:.2f} m (given)"
-        echo(ctx, f"#{k} heard at {f['t_s']:.3f} s  ->  x {x:.2f} m, y {y:.2f} m, {height}")
+        when = f"{f['t_s']:.3f} s" + (f" ({f['t_utc']})" if f.get("t_utc") else "")
+        echo(ctx, f"#{k} heard at {when}  ->  x {x:.2f} m, y {y:.2f} m, {height}")
         echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} x "
                   f"{fmt_length(e['semi_minor_m'])} "
                   f"(half-axes), long axis {e['azimuth_deg']:.0f}° from north; timing residual "
@@ -246,6 +315,19 @@ def draw_map(site, result, path):
     plot.save_figure(fig, path)
 
 
+def timeline_option(f):
+    return click.option("--timeline", "timeline_path", type=click.Path(dir_okay=False),
+                        default=None, help="Draw each recorder's coverage (and the events or "
+                        "fixes) against clock time (PNG, SVG or PDF).")(f)
+
+
+def draw_timeline(ctx, rec, result, path):
+    from locate.draw import figures as plot
+    from locate.draw.timeline import timeline_figure
+    plot.save_figure(timeline_figure(rec, result), path)
+    echo(ctx, f"Timeline written to {path}")
+
+
 def draw_panels(result, path):
     from locate.draw import figures as plot
     fig = plot.panels_figure(result)
@@ -265,6 +347,7 @@ OPTION_OF = {
     "start_s": "--from", "window_s": "--window", "hop_s": "--hop", "solve_wind": "--solve-wind",
     "model": "--model", "source_z_m": "--source-z", "speed_guess_mps": "--speed-guess",
     "threshold_db": "--threshold", "segment_s": "--segment", "snr_db": "--snr",
+    "chunk_s": "--chunk", "chunk_overlap_s": "--chunk-overlap",
 }
 """The library names its parameters in errors (``window_s``); the command line says the option
 the user typed (``--window``)."""

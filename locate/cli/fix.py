@@ -12,6 +12,7 @@ from locate.cli.common import (
     check_sketch,
     check_span_args,
     draw_panels,
+    draw_timeline,
     echo,
     geometry_options,
     load,
@@ -19,8 +20,10 @@ from locate.cli.common import (
     parse_band,
     print_fixes,
     progress_bar,
+    resolve_span,
     site_inputs,
     span_options,
+    timeline_option,
     transactional,
     warn,
     write_fix_outputs,
@@ -47,12 +50,24 @@ from locate.errors import NothingFoundError, OptionError
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
               help="Also draw each pair's correlation and residual (diagnostics figure).")
 @click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
+@click.option("--chunk", "chunk_s", type=float, default=None, metavar="SECONDS",
+              help="Scan a long deployment for events in time chunks of this length, "
+                   "overlapping (--chunk-overlap): same fixes as one run; with --scheduler "
+                   "on a Dask cluster.")
+@click.option("--chunk-overlap", "chunk_overlap_s", type=float, default=30.0,
+              show_default=True, help="With --chunk: seconds scanned either side of a chunk.")
+@click.option("--scheduler", default=None, metavar="ADDRESS",
+              help="With --chunk: run the chunks on this Dask scheduler (tcp://host:port); "
+                   "its workers must see the files at the same paths.")
+@timeline_option
 @field_options
 @click.pass_context
 @transactional
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
-        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
+        chunk_s=None, chunk_overlap_s=30.0, scheduler=None, timeline_path=None,
+        geojson_path=None,
+        solve_air=False, solve_wind=False, events_choice=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.fix.air_solve import summary_lines as air_summary
@@ -67,13 +82,15 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     site = load(site_path, dims)
     inputs = site_inputs(site)
     check_outputs({"--json": json_path, "--csv": csv_path, "--map": map_path,
-                   "--panels": panels_path, "--geojson": geojson_path}, inputs)
+                   "--panels": panels_path, "--geojson": geojson_path,
+                   "--timeline": timeline_path}, inputs)
     if map_path:
         check_sketch(site)
     choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
                                      solve_wind=solve_wind, events_choice=events_choice,
                                      start_s=start_s, dims=dims)
     rec = open_recordings(site)
+    start_s, stop_s = resolve_span(rec, start_s, stop_s, window_s)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
     if sweep:
@@ -84,6 +101,37 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         return run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
                          source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
                          map_path)
+    if scheduler is not None and chunk_s is None:
+        raise OptionError("--scheduler runs the chunks of --chunk: give --chunk SECONDS",
+                          field="--scheduler")
+    if chunk_s is not None:
+        if start_s is not None or window_s is not None or solve_air or choice is not None \
+                or panels_path:
+            raise OptionError("--chunk scans every event of the recordings: leave out "
+                              "--from/--to, --window, --solve-air, --events and --panels",
+                              field="--chunk")
+        from locate.workflows.chunked import locate_chunked, plan_chunks
+
+        n = len(plan_chunks(rec.start_s, rec.stop_s, rec.sample_rate_hz, chunk_s,
+                            chunk_overlap_s))
+        try:
+            with progress_bar(ctx, n, f"Chunks ({n})") as bar:
+                result = locate_chunked(
+                    site, rec, chunk_s=chunk_s, overlap_s=chunk_overlap_s,
+                    scheduler=scheduler, progress=bar.update, band_hz=band_hz, dims=dims,
+                    source_z_m=source_z_m, sound_speed_mps=sound_speed_mps,
+                    threshold_db=threshold_db, reject=not no_reject)
+        except NothingFoundError as exc:
+            for w in getattr(exc, "warnings", ()):
+                warn(w)
+            raise
+        print_fixes(ctx, site, cond, result)
+        for w in result["warnings"]:
+            warn(w)
+        write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path)
+        if timeline_path:
+            draw_timeline(ctx, rec, result, timeline_path)
+        return result
     try:
         result = locate_recordings(
             site, rec, start_s=start_s, stop_s=stop_s, window_s=window_s, band_hz=band_hz,
@@ -105,4 +153,6 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     if panels_path:
         draw_panels(result, panels_path)
         announce(ctx, f"Diagnostics written to {panels_path}")
+    if timeline_path:
+        draw_timeline(ctx, rec, result, timeline_path)
     return result

@@ -8,6 +8,7 @@ import click
 
 from locate.cli.common import (
     FINITE,
+    TIME,
     announce,
     check_band,
     check_outputs,
@@ -19,6 +20,7 @@ from locate.cli.common import (
     load,
     parse_band,
     progress_bar,
+    resolve_span,
     site_inputs,
     transactional,
     warn,
@@ -30,9 +32,10 @@ __all__ = ["track", "map_command"]
 
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
-@click.option("--from", "start_s", type=FINITE, required=True,
-              help="Start of the pass, seconds into the recording.")
-@click.option("--to", "stop_s", type=FINITE, required=True, help="End of the pass, seconds.")
+@click.option("--from", "start_s", type=TIME, required=True,
+              help="Start of the pass: seconds into the recording, or an ISO 8601 clock time.")
+@click.option("--to", "stop_s", type=TIME, required=True,
+              help="End of the pass: seconds, or an ISO 8601 clock time.")
 @click.option("--window", "window_s", type=FINITE, default=None,
               help="Analysis window, s (default: from the array size and --speed-guess).")
 @click.option("--hop", "hop_s", type=FINITE, default=None, help="Window hop, s.")
@@ -56,14 +59,10 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     from locate.io.audio import open_recordings
     from locate.results.documents import write_json
     from locate.track.tracker import track_recording, track_to_dict
-    from locate.workflows.fixing import conditions_for, fix_result
+    from locate.workflows.fixing import add_clock_times, conditions_for, fix_result
 
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
-    if window_s is not None and window_s > stop_s - start_s:
-        raise OptionError(f"window {window_s:g} s is longer than the span "
-                          f"{stop_s - start_s:g} s: shorten --window or widen --from/--to",
-                          field="--window")
     if hop_s is not None and hop_s <= 0:
         raise OptionError(f"hop {hop_s:g} s must be positive", field="--hop")
     tone_hz = None if tone is None else ("auto" if tone == "auto" else _float(tone, "--tone"))
@@ -72,6 +71,11 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     if map_path:
         check_sketch(site)
     rec = open_recordings(site)
+    start_s, stop_s = resolve_span(rec, start_s, stop_s, window_s)
+    if window_s is not None and window_s > stop_s - start_s:
+        raise OptionError(f"window {window_s:g} s is longer than the span "
+                          f"{stop_s - start_s:g} s: shorten --window or widen --from/--to",
+                          field="--window")
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
     signals, _ = rec.read(start_s, stop_s)
@@ -98,6 +102,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
     result = fix_result(site, cond, [], kind="track", warnings=warnings, dims=dims,
                         source_z_m=source_z_m,
                         extra={"track": doc, "span_s": [start_s, stop_s]})
+    add_clock_times(result, rec, site)
     _print_track(ctx, site, cond, doc, bearing_from_name=names[len(site.mics)]
                  if site.receivers else site.mic_names[0])
     for w in result["warnings"]:

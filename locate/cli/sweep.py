@@ -29,7 +29,7 @@ def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, d
            reject, warnings, json_path, csv_path, geojson_path, map_path):
     """``fix --window W --sweep``: every window at once (locate.workflows.sweep), summary on
     screen."""
-    from locate.workflows.fixing import fix_result
+    from locate.workflows.fixing import add_clock_times, fix_result
     from locate.workflows.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines
 
     hop_s = window_s if hop_s is None else hop_s
@@ -45,6 +45,7 @@ def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, d
         raise NothingFoundError("no window gave a usable fix (see the warnings above)")
     result = fix_result(site, cond, entries, warnings=warnings + [SWEEP_NOTE], dims=dims,
                         source_z_m=source_z_m)
+    add_clock_times(result, rec, site)
     lines, window_warnings = sweep_summary_lines(entries, window_s, hop_s, length=fmt_length)
     for line in lines:
         echo(ctx, line)

@@ -106,6 +106,7 @@ class _Source:
     channel: int  # 1-based
     field: str  # site-file key the file came from
     n_frames: int
+    parts: tuple | None = None  # a recorder's files (locate.io.filesets.Part), or one file
 
 
 def _describe(exc) -> str:
@@ -122,6 +123,15 @@ def open_recordings(site) -> Recordings:
         A file is missing, unreadable or empty, lacks the mic's channel, has another sample
         rate than the others, or the mics' recordings do not overlap in time.
     """
+    if any(getattr(m, "files", None) is not None for m in site.mics):
+        from locate.io.deployment import plan_deployment
+
+        plan = plan_deployment(site)  # recorders writing many timestamped files
+        rec = Recordings([_Source(*s[:5], parts=s[5]) for s in plan["sources"]],
+                         plan["sample_rate_hz"], plan["offsets_s"], plan["drift_ppm"],
+                         epoch=plan["epoch"], deployment=plan["deployment"])
+        rec.warnings.extend(plan["deployment"].notes)
+        return rec
     infos: dict[Path, object] = {}
     sources = []
     for i, mic in enumerate(site.mics):
@@ -159,7 +169,13 @@ def open_recordings(site) -> Recordings:
     if starts is not None:
         offsets = offsets + starts
     drift = np.array([m.drift_ppm for m in site.mics], dtype=float)
-    rec = Recordings(tuple(sources), float(rates[first]), offsets, drift)
+    epoch = None
+    if starts is not None:  # UTC of common time 0: the earliest start_time
+        from locate.io.site import parse_start_time
+
+        stamps = [parse_start_time(m.start_time) for m in site.mics]
+        epoch = min(stamps, key=lambda w: (w[0] - stamps[0][0]) + w[1])
+    rec = Recordings(tuple(sources), float(rates[first]), offsets, drift, epoch=epoch)
     notes = [container_note(p, inf) for p, inf in infos.items()]
     notes += [truncation_note(p, inf) for p, inf in infos.items()]
     rec.warnings[:0] = [n for n in notes if n]
@@ -183,10 +199,21 @@ class Recordings:
         ``stop_s - start_s``.
     warnings : list of str
         Open-time notes plus, deduplicated, what reads found (zero fill, clipping, dead mics).
+    epoch : (int, float) or None
+        UTC of common time 0 (whole POSIX seconds, fraction) when the recordings carry clock
+        time (bext stamps or start_time); None otherwise.
+    deployment : locate.io.deployment.Deployment or None
+        Recorders of many files (:mod:`locate.io.deployment`): the span is every time some mic
+        covers, and a mic is left out where it has no audio (:meth:`uncovered`), not zero-filled.
     """
 
-    def __init__(self, sources, sample_rate_hz, offsets_s, drift_ppm):
+    def __init__(self, sources, sample_rate_hz, offsets_s, drift_ppm, *, epoch=None,
+                 deployment=None):
+        self.epoch = epoch
+        self.deployment = deployment  # locate.io.deployment.Deployment, or None
         self._sources = tuple(sources)
+        self._part_k0 = [None if s.parts is None else np.array([p.k0 for p in s.parts])
+                         for s in self._sources]
         self.sample_rate_hz = float(sample_rate_hz)
         self.mic_names = [s.mic for s in self._sources]
         self.n_mics = len(self._sources)
@@ -201,6 +228,11 @@ class Recordings:
                                 self.offsets_s + n / (self.sample_rate_hz * self._scale())], 1)
         self.start_s = float(np.max(self._cover[:, 0]))
         self.stop_s = float(np.min(self._cover[:, 1]))
+        if deployment is not None:  # every time that some mic covers; gaps are left out
+            self.start_s = float(np.min(self._cover[:, 0]))
+            self.stop_s = float(np.max(self._cover[:, 1]))
+            self.duration_s = self.stop_s - self.start_s
+            return
         if self.stop_s <= self.start_s:
             a, b = int(np.argmax(self._cover[:, 0])), int(np.argmin(self._cover[:, 1]))
             raise RecordingError(
@@ -219,7 +251,56 @@ class Recordings:
         ``offsets_s`` are total offsets (``offset_s`` plus start-time offsets), as
         :attr:`offsets_s`.  Used by clock calibration to re-measure with a first fit applied.
         """
-        return Recordings(self._sources, self.sample_rate_hz, offsets_s, drift_ppm)
+        return Recordings(self._sources, self.sample_rate_hz, offsets_s, drift_ppm,
+                          epoch=self.epoch, deployment=self.deployment)
+
+    def subset(self, index) -> Recordings:
+        """The same reader over the mics ``index`` (sequence of ints) only."""
+        idx = [int(i) for i in index]
+        dep = None if self.deployment is None else self.deployment.subset(idx)
+        return Recordings([self._sources[i] for i in idx], self.sample_rate_hz,
+                          self.offsets_s[idx], self.drift_ppm[idx], epoch=self.epoch,
+                          deployment=dep)
+
+    def clock_time(self, t_s, digits=3) -> str | None:
+        """ISO 8601 UTC text of common time ``t_s``; None when the recordings carry no clock."""
+        if self.epoch is None or t_s is None or not np.isfinite(t_s):
+            return None
+        from locate.io.filesets import utc_text
+
+        return utc_text(self.epoch[0], self.epoch[1], float(t_s), digits=digits)
+
+    def seconds_at(self, whole, frac=0.0) -> float:
+        """Common time (s) of a UTC instant (whole POSIX seconds, fraction); needs a clock."""
+        if self.epoch is None:
+            raise RecordingError("the recordings carry no clock time (no bext stamps, no "
+                                 "start_time): give times in seconds", field="start_s")
+        return float(int(whole) - int(self.epoch[0])) + float(frac) - float(self.epoch[1])
+
+    def uncovered(self, start_s, stop_s) -> list[list[tuple[float, float]]]:
+        """Per mic, the parts of ``[start_s, stop_s)`` (common time) it has no audio for.
+
+        Before a recorder starts, after it stops and in the gaps between its files.  Empty
+        lists for a reader of single files (those zero-fill, with a warning, as before).
+        """
+        out = [[] for _ in self._sources]
+        if self.deployment is None:
+            return out
+        scale = self._scale() * self.sample_rate_hz
+        for i, s in enumerate(self._sources):
+            holes = [(-np.inf, 0.0)] + [(float(a), float(b)) for a, b in
+                                        self.deployment.gaps[i]] + [(float(s.n_frames), np.inf)]
+            for a, b in holes:
+                lo = self.offsets_s[i] + a / scale[i]
+                hi = self.offsets_s[i] + b / scale[i]
+                lo, hi = max(lo, start_s), min(hi, stop_s)
+                if hi > lo:
+                    out[i].append((float(lo), float(hi)))
+        return out
+
+    def covering(self, start_s, stop_s) -> np.ndarray:
+        """Which mics have audio over all of ``[start_s, stop_s)``, bool (N,)."""
+        return np.array([not u for u in self.uncovered(start_s, stop_s)], dtype=bool)
 
     @property
     def files(self) -> list[tuple[str, Path, int]]:
@@ -252,7 +333,7 @@ class Recordings:
                                  field="start_s")
         return start_s, stop_s
 
-    def read(self, start_s, stop_s, *, out=None, scratch=None):
+    def read(self, start_s, stop_s, *, out=None, scratch=None, gaps_ok=False):
         """Read the common-time span ``[start_s, stop_s)`` of every mic.
 
         Parameters
@@ -263,6 +344,10 @@ class Recordings:
             Written in place and returned when its shape fits (saves allocating a block).
         scratch : dict, optional
             Holds the frame buffers of the files between calls (used by :meth:`blocks`).
+        gaps_ok : bool
+            A deployment only: read spans where some mic has no audio (as zeros), for a
+            caller that leaves it out there (:meth:`uncovered`).  Otherwise such a span is an
+            error naming the mic, its files and the gap: no command computes on zeros.
 
         Returns
         -------
@@ -279,6 +364,8 @@ class Recordings:
             Empty span, span outside the recordings, or NaN/inf samples in it.
         """
         start_s, stop_s = self._check_span(start_s, stop_s)
+        if self.deployment is not None and not gaps_ok:
+            self._refuse_gaps(start_s, stop_s)
         fs = self.sample_rate_hz
         n_out = max(int(round((stop_s - start_s) * fs)), 1)
         scale = self._scale()
@@ -297,6 +384,13 @@ class Recordings:
                                      file=self._sources[0].path, field="stop_s") from None
         by_file: dict[Path, list[int]] = {}
         for i, s in enumerate(self._sources):
+            if s.parts is not None:  # a recorder's many files (gaps read as zeros, not used)
+                x = _read_parts(s, lo[i], hi[i], scratch, i, self._part_k0[i])
+                if not np.isfinite(x).all():
+                    self._check_finite(x, i, start_s, stop_s)
+                out[i] = _sinc_interpolate(x, SINC_HALF_TAPS + np.arange(n_out) * scale[i]) \
+                    if drifting[i] else x
+                continue
             by_file.setdefault(s.path, []).append(i)
         for path, idx in by_file.items():
             f_lo, f_hi = int(lo[idx].min()), int(hi[idx].max())
@@ -314,7 +408,13 @@ class Recordings:
                     out[i] = _sinc_interpolate(x, pos)
                 else:
                     out[i] = x
-        self._note_signals(out)
+        if self.deployment is None:
+            self._note_signals(out)
+        else:  # channel notes only of the mics with audio over the whole span
+            have = np.flatnonzero(self.covering(start_s, stop_s))
+            if have.size:
+                for key, msg in _signal_notes(out[have], [self.mic_names[i] for i in have]):
+                    self._warn(key, msg)
         return out, residual
 
     def _note_signals(self, out):
@@ -346,8 +446,19 @@ class Recordings:
             raise RecordingError(self._memory_text(n_out, start_s, stop_s),
                                  file=self._sources[0].path, field="stop_s")
 
+    def _refuse_gaps(self, start_s, stop_s):
+        for i, holes in enumerate(self.uncovered(start_s, stop_s)):
+            if holes:
+                a, b = holes[0]
+                raise RecordingError(
+                    f'mic "{self.mic_names[i]}" has no audio from {a:.3f} to {b:.3f} s '
+                    f"(recorder off, or between its files), inside the span {start_s:.3f}.."
+                    f"{stop_s:.3f} s: choose a span that every mic covers (tdoa check shows "
+                    "the coverage)", file=self._sources[i].path,
+                    field=self.deployment.fields[i])
+
     def blocks(self, block_s, overlap_s=0.0, start_s=None, stop_s=None, *,
-               reuse=False):
+               reuse=False, gaps_ok=False):
         """Yield ``(t0_s, signals (N, T), residual_offset_s (N,))`` block after block.
 
         Blocks are ``block_s`` long and start every ``block_s - overlap_s`` seconds (both
@@ -375,7 +486,8 @@ class Recordings:
         buffer, scratch = None, ({} if reuse else None)
         while True:
             k_end = min(k + block_n, n_stop)
-            signals, residual = self.read(k / fs, k_end / fs, out=buffer, scratch=scratch)
+            signals, residual = self.read(k / fs, k_end / fs, out=buffer, scratch=scratch,
+                                          gaps_ok=gaps_ok)
             if reuse:
                 buffer = signals
             yield k / fs, signals, residual
@@ -432,6 +544,35 @@ def _read_frames_from(path, lo, hi, n_frames, scratch):
             f.read(frames=b - a, dtype="float32", always_2d=True, out=out[a - lo: b - lo])
         out[: max(min(a, hi) - lo, 0)] = 0.0  # before the file (a reused buffer holds old data)
         out[max(b, lo) - lo:] = 0.0  # after it
+    return out
+
+
+def _read_parts(source, lo, hi, scratch, key, part_k0) -> np.ndarray:
+    """Mic samples ``[lo, hi)`` of a recorder's channel across its files, float64 ``(hi - lo,)``.
+
+    Samples no file covers are zero (the reader's callers leave the mic out there, see
+    :meth:`Recordings.uncovered`).  ``scratch`` keeps one buffer per mic, so memory is one
+    block however many files the recorder wrote.
+    """
+    n = int(hi - lo)
+    out = None if scratch is None else scratch.get(("parts", key))
+    if out is None or out.shape != (n,):
+        out = np.zeros(n)
+        if scratch is not None:
+            scratch[("parts", key)] = out
+    else:
+        out[:] = 0.0
+    first = max(int(np.searchsorted(part_k0, lo, side="right")) - 1, 0)
+    for part in source.parts[first:]:
+        if part.k0 >= hi:
+            break
+        a, b = max(lo, part.k0), min(hi, part.k0 + part.n_frames)
+        if b <= a:
+            continue
+        with soundfile.SoundFile(str(part.path)) as f:
+            f.seek(int(a - part.k0))
+            x = f.read(frames=int(b - a), dtype="float32", always_2d=True)
+        out[a - lo: a - lo + x.shape[0]] = x[:, source.channel - 1]
     return out
 
 
@@ -504,7 +645,8 @@ def _signal_notes(signals, mic_names):
         if n_full[i] >= CLIP_RUN and n >= CLIP_RUN:
             run[i] = bool(np.any(np.all(np.stack([full[k: n - CLIP_RUN + 1 + k]
                                                   for k in range(CLIP_RUN)]), axis=0)))
-        rms[i] = np.sqrt(np.dot(x[i], x[i]) / n) if n else 0.0
+        # einsum, not np.dot: BLAS threads cost 20 ms per call on a busy machine (measured)
+        rms[i] = np.sqrt(np.einsum("i,i->", x[i], x[i]) / n) if n else 0.0
         silent[i] = not np.any(x[i])
     clipped = run | (n_full > CLIP_FRACTION * n)
     median = float(np.median(rms[~silent])) if np.any(~silent) else 0.0

@@ -77,8 +77,10 @@ class Mic:
     """One microphone.
 
     ``file`` is the mic's own audio file (absolute); ``None`` means the site's
-    ``[recording] file``.  ``channel`` is 1-based.  Clock model: mic sample k (mic time
-    tau = k / fs) was recorded at common time t = offset_s + tau / (1 + drift_ppm 1e-6).
+    ``[recording] file``.  When the site file gives a glob or a list, ``files`` holds every
+    file (placed in time by :mod:`locate.io.filesets`) and ``file`` is the first.
+    ``channel`` is 1-based.  Clock model: mic sample k (mic time tau = k / fs) was recorded
+    at common time t = offset_s + tau / (1 + drift_ppm 1e-6).
     ``geodetic`` is (lat_deg, lon_deg, alt_m) for WGS84 sites.
     """
 
@@ -89,6 +91,9 @@ class Mic:
     offset_s: float = 0.0
     drift_ppm: float = 0.0
     start_time: str | None = None
+    files: tuple[Path, ...] | None = None  # a recorder's many files (file = glob or list)
+    files_order: str | None = None  # "name" (a glob's natural order) or "list" (as given)
+    time_zone: str | None = None  # the recorder clock's zone (bext stamps carry none)
     full_scale_db_spl: float | None = None
     position_sd_m: float | None = None
     height_sd_m: float | None = None

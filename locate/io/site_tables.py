@@ -6,6 +6,7 @@ Plausibility limits are common practice for outdoor acoustic surveys.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -32,7 +33,7 @@ AIR_KEYS = ("temperature_c", "relative_humidity", "pressure_kpa", "wind_speed_mp
             "wind_from_deg", "temperature_sd_c", "wind_sd_mps", "sound_speed_mps")
 SURVEY_KEYS = ("position_sd_m", "height_sd_m", "clock_sd_s")
 MIC_KEYS = ("name", "x", "y", "z", "lat", "lon", "alt", "channel", "file", "offset_s",
-            "drift_ppm", "start_time", "full_scale_db_spl", *SURVEY_KEYS)
+            "drift_ppm", "start_time", "time_zone", "full_scale_db_spl", *SURVEY_KEYS)
 RECEIVER_KEYS = ("name", "x", "y", "z", "lat", "lon", "alt")
 BARRIER_KEYS = ("label", "line", "height_m")
 SKETCH_KEYS = ("image", "refs", "shapes", "geojson")
@@ -181,8 +182,12 @@ def parse_mics(ctx, raw, coords, survey, recording_file, warnings, *, dims, requ
                             f"[{names[name]}]): give each mic its own name")
         names[name] = i
         pos = position(ctx, m, coords, where, who=f' of mic "{name}"')
-        own = get_str(ctx, m, "file", f"{where}.file")
-        own_path = ctx.resolve(own) if own is not None else None
+        files, order = file_set(ctx, m, f"{where}.file", require_audio, warnings)
+        if files is not None:
+            own_path = files[0] if files else None
+        else:
+            own = get_str(ctx, m, "file", f"{where}.file")
+            own_path = ctx.resolve(own) if own is not None else None
         channel = get_int(ctx, m, "channel", f"{where}.channel")
         if own_path is None and recording_file is None and require_audio:
             raise ctx.error(f"{where}.file", f'no recording for mic "{name}": give file = '
@@ -216,7 +221,9 @@ def parse_mics(ctx, raw, coords, survey, recording_file, warnings, *, dims, requ
         if fs_db is not None and not FULL_SCALE_RANGE_DB[0] <= fs_db <= FULL_SCALE_RANGE_DB[1]:
             raise ctx.error(f"{where}.full_scale_db_spl", f"{fs_db:g} dB is outside "
                             "60..200 dB: give the SPL (dB re 20 uPa) of a 0 dBFS sine")
-        d = dict(name=name, channel=channel, file=own_path,
+        zone = _time_zone(ctx, m, f"{where}.time_zone")
+        d = dict(name=name, channel=channel, file=own_path, files=files, files_order=order,
+                 time_zone=zone,
                  offset_s=get_number(ctx, m, "offset_s", f"{where}.offset_s", default=0.0),
                  drift_ppm=drift, start_time=start, full_scale_db_spl=fs_db)
         for k in SURVEY_KEYS:
@@ -228,8 +235,9 @@ def parse_mics(ctx, raw, coords, survey, recording_file, warnings, *, dims, requ
             d["lat"], d["lon"], d["alt"] = pos
         out.append(d)
     with_time = [i for i, z in zoned.items() if z is not None]
-    if with_time and len(with_time) != len(mics):
-        i = next(i for i, z in zoned.items() if z is None)
+    # a recorder's file set may carry its own (bext) stamps: checked when the files are read
+    if with_time and any(z is None and out[i]["files"] is None for i, z in zoned.items()):
+        i = next(i for i, z in zoned.items() if z is None and out[i]["files"] is None)
         raise ctx.error(f"mics[{i}].start_time", "missing: give start_time for every mic or "
                         "for none")
     if with_time and len({zoned[i] for i in with_time}) > 1:
@@ -237,6 +245,72 @@ def parse_mics(ctx, raw, coords, survey, recording_file, warnings, *, dims, requ
         raise ctx.error(f"mics[{i}].start_time", "has no time zone while others do: add Z "
                         "(UTC) or +hh:mm to every start_time")
     return out
+
+
+def file_set(ctx, m, field, require_audio, warnings):
+    """``(files, order)`` when a mic's ``file`` is a glob or a list, else ``(None, None)``.
+
+    ``files`` is a tuple of absolute paths (a glob's in natural name order, a list's as given);
+    ``order`` is ``"name"`` or ``"list"``.  A glob that matches nothing is an error (a warning
+    when audio is not required).
+    """
+    from locate.io.filesets import expand_pattern, is_pattern
+
+    v = m.get("file")
+    if isinstance(v, list):
+        if not v:
+            raise ctx.error(field, "is an empty list: name the recorder's files, or a pattern "
+                            'such as "R1/*.wav"')
+        out = []
+        for k, item in enumerate(v):
+            if not isinstance(item, str) or not item.strip():
+                raise ctx.error(f"{field}[{k}]", "must be a file name (text)")
+            if is_pattern(item):
+                raise ctx.error(f"{field}[{k}]", f'"{item}" is a pattern inside a list: give '
+                                "one pattern as the file, or a list of file names")
+            out.append(ctx.resolve(item))
+        if len(set(out)) != len(out):
+            dup = next(p for p in out if out.count(p) > 1)
+            raise ctx.error(field, f"names {dup.name} twice: give each file once")
+        return tuple(out), "list"
+    if isinstance(v, str) and is_pattern(v):
+        hits = expand_pattern(ctx.path.parent, v)
+        if not hits:
+            msg = (f'"{v}" matches no file (patterns are relative to the site file\'s folder '
+                   f"{ctx.path.parent.resolve()})")
+            if require_audio:
+                raise ctx.error(field, msg)
+            warnings.append(f"{field}: {msg}")
+            return (), "name"
+        return tuple(p.resolve() for p in hits), "name"
+    return None, None
+
+
+_ZONE = re.compile(r"(?:Z|UTC|([+-])(\d{2}):?(\d{2}))", re.IGNORECASE)
+
+
+def _time_zone(ctx, m, field):
+    """A mic's ``time_zone`` (its recorder clock): ``"Z"``, ``"UTC"`` or ``"+hh:mm"``; or None."""
+    v = m.get("time_zone")
+    if v is None:
+        return None
+    text = str(v).strip() if isinstance(v, str) else None
+    g = _ZONE.fullmatch(text) if text else None
+    if g is None or (g.group(1) and (int(g.group(2)) > 14 or int(g.group(3)) > 59)):
+        raise ctx.error(field, f"{v!r} is not a time zone: write \"Z\" (UTC) or an offset "
+                        'from UTC such as "+01:00"')
+    return text
+
+
+def zone_seconds(text) -> int:
+    """Seconds east of UTC of a ``time_zone`` value (None or "Z": 0)."""
+    if text is None:
+        return 0
+    g = _ZONE.fullmatch(str(text).strip())
+    if g is None or not g.group(1):
+        return 0
+    sign = 1 if g.group(1) == "+" else -1
+    return sign * (3600 * int(g.group(2)) + 60 * int(g.group(3)))
 
 
 def mean_origin(geod) -> tuple[float, float, float]:

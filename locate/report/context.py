@@ -205,7 +205,8 @@ def fix_section(result, site):
         g = wgs84_of(f, site)
         span, band = f.get("span_s"), f.get("band_hz")
         rows.append({
-            "n": str(k), "t": rf.seconds(f.get("t_s")),
+            "n": str(k), "t": rf.seconds(f.get("t_s"))
+            + (f" ({f['t_utc'].replace('T', ' ')})" if f.get("t_utc") else ""),
             "x": rf.num(x, d), "y": rf.num(y, d), "z": rf.num(z, 2),
             "z_note": "solved" if f.get("dims", result.get("dims")) == 3 else "given",
             "lat": _latlon(g)[0], "lon": _latlon(g)[1],

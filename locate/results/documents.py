@@ -404,18 +404,24 @@ def text_cell(value) -> str:
 
 def fixes_csv(result: dict) -> str:
     """CSV text with one row per fix of a result dict (text cells neutralised:
-    :func:`text_cell`)."""
+    :func:`text_cell`).
+
+    The last column, ``t_utc``, is the clock time (ISO 8601, UTC) where the recordings carry
+    one, else empty (a column added after the first release: readers by name are unaffected).
+    """
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["t_s", "x_m", "y_m", "z_m", "semi_major95_m", "semi_minor95_m",
-                "azimuth95_deg", "rejected_mics", "residual_rms_s", "p_value", "warnings"])
+                "azimuth95_deg", "rejected_mics", "residual_rms_s", "p_value", "warnings",
+                "t_utc"])
     for f in result.get("fixes", []):
         e = f["ellipse95"]
         x, y, z = f["position_m"]
         w.writerow([f"{f['t_s']:.4f}", f"{x:.3f}", f"{y:.3f}", f"{z:.3f}",
                     _fmt(e["semi_major_m"]), _fmt(e["semi_minor_m"]), _fmt(e["azimuth_deg"]),
                     text_cell(" ".join(f["rejected_mics"])), f"{f['residual_rms_s']:.3e}",
-                    f"{f['p_value']:.3g}", text_cell(" | ".join(f["warnings"]))])
+                    f"{f['p_value']:.3g}", text_cell(" | ".join(f["warnings"])),
+                    f.get("t_utc") or ""])
     return buf.getvalue()
 
 

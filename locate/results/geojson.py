@@ -98,7 +98,7 @@ def _fix_props(entry, k, probability):
     if e is not None:
         props.update(semi_major95_m=e.get("semi_major_m"), semi_minor95_m=e.get("semi_minor_m"),
                      azimuth95_deg=e.get("azimuth_deg"))
-    for key in ("rejected_mics", "residual_rms_s", "p_value", "dims"):
+    for key in ("t_utc", "absent_mics", "rejected_mics", "residual_rms_s", "p_value", "dims"):
         if key in entry:
             props[key] = entry[key]
     if "air_fit" in entry:
@@ -145,6 +145,8 @@ def result_geojson(result: dict, origin, *, probability=0.95, ellipse_vertices=7
             feats.append(geo.ellipse_polygon_feature(
                 pos, cov, probability, org, {"kind": "ellipse", "index": k,
                                             "t_s": entry.get("t_s"),
+                                            **({"t_utc": entry["t_utc"]}
+                                               if "t_utc" in entry else {}),
                                             "probability": probability},
                 n=ellipse_vertices))
     track = result.get("track")
@@ -160,6 +162,9 @@ def result_geojson(result: dict, origin, *, probability=0.95, ellipse_vertices=7
         for k, p in enumerate(pts, 1):
             props = {"kind": "track_point", "index": k, "t_emit_s": p.get("t_emit_s"),
                      "t_heard_s": p.get("t_heard_s"), "position_m": p["position_m"]}
+            for key in ("t_utc", "t_emit_utc"):
+                if key in p:
+                    props[key] = p[key]
             feats.append(geo.enu_point_feature(p["position_m"], org, props))
             cov = _horizontal_cov(p)
             if cov is not None:

@@ -20,12 +20,24 @@ frames it keeps.
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from scipy import fft as sfft
 
 from locate.signal.events import FRAME_S, Event, frame_energy_db
 
 __all__ = ["EventStream", "stream_frame_energy", "scan_recordings"]
+
+
+def _low(part):
+    """20th percentile of each mic's frames; frames a mic has no audio for are NaN and left
+    out (a mic with none in the segment has no background there, so it is never active)."""
+    if np.isfinite(part).all():
+        return np.percentile(part, 20, axis=-1)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanpercentile(part, 20, axis=-1)
 
 
 class EventStream:
@@ -65,7 +77,7 @@ class EventStream:
         while (len(self.lows) + 1) * self.seg <= self.n:
             s = len(self.lows)
             part = self.buf[:, s * self.seg - self.buf0:(s + 1) * self.seg - self.buf0]
-            self.lows.append(np.percentile(part, 20, axis=-1))
+            self.lows.append(_low(part))
         self._advance(final=False)
 
     def finish(self) -> list[Event]:
@@ -77,7 +89,7 @@ class EventStream:
             part = self.buf[:, s * self.seg - self.buf0:]
             pad = (s + 1) * self.seg - self.n
             part = np.concatenate([part, np.repeat(part[:, -1:], pad, axis=1)], axis=1)
-            self.lows.append(np.percentile(part, 20, axis=-1))
+            self.lows.append(_low(part))
         self._advance(final=True)
         return list(self.events)
 
@@ -185,12 +197,27 @@ def stream_frame_energy(recordings, start_s, stop_s, *, frame_s=FRAME_S, band_hz
     while k < n_stop - 1:
         k_end = min(k + block, n_stop)
         a, b = max(k - pad, min(lo_all, k)), min(k_end + pad, max(hi_all, k_end))
-        raw, _ = recordings.read(a / fs, b / fs, out=raw, scratch=scratch)
+        # gaps_ok: a deployment's uncovered frames are blanked below, not read as signal
+        raw, _ = recordings.read(a / fs, b / fs, out=raw, scratch=scratch, gaps_ok=True)
         sig = raw
         if band_hz is not None:
             sig = _band(sig, fs, band_hz)
-        yield (k_end - k) / fs, frame_energy_db(sig[:, k - a:k_end - a], fs, frame_s=frame / fs)
+        e = frame_energy_db(sig[:, k - a:k_end - a], fs, frame_s=frame / fs)
+        if getattr(recordings, "deployment", None) is not None:
+            _blank_uncovered(e, recordings.uncovered(k / fs, k_end / fs), k / fs, frame / fs)
+        yield (k_end - k) / fs, e
         k = k_end
+
+
+def _blank_uncovered(energy, holes, t0_s, frame_s):
+    """NaN in the frames of ``energy (N, F)`` that touch a span a mic has no audio for."""
+    n = energy.shape[1]
+    for i, spans in enumerate(holes):
+        for lo, hi in spans:
+            a = max(int(np.floor((lo - t0_s) / frame_s)), 0)
+            b = min(int(np.ceil((hi - t0_s) / frame_s)), n)
+            if b > a:
+                energy[i, a:b] = np.nan
 
 
 def _band(sig, fs, band_hz):

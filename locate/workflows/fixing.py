@@ -21,7 +21,7 @@ from locate.signal.echoes import onset_mismatch
 from locate.signal.event_scan import scan_recordings
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
-           "plan_spans"]
+           "plan_spans", "add_clock_times"]
 
 MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
 
@@ -125,6 +125,11 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     (entry, fix, delays, warnings)
         ``entry`` is the result-JSON dict of the fix.
     """
+    absent = _absent_mics(recordings, site, cond, start_s, stop_s)
+    if absent:
+        return _fix_without(absent, recordings, site, cond, start_s, stop_s, band_hz=band_hz,
+                            dims=dims, source_z_m=source_z_m, keep_curves=keep_curves,
+                            reject=reject, t_s=t_s)
     positions = site.positions_m
     names = site.mic_names
     signals, residual = recordings.read(start_s, stop_s)
@@ -179,6 +184,36 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     return entry, fix, delays, entry["warnings"]
 
 
+def _absent_mics(recordings, site, cond, start_s, stop_s):
+    """Indices of the mics with no audio somewhere over the span (and the arrival spread
+    around it that the aligned second pass may read): recorders off or between files."""
+    if getattr(recordings, "deployment", None) is None:
+        return []
+    pad = _array_spread_s(site.positions_m, cond)
+    have = recordings.covering(start_s - pad, stop_s + pad)
+    return [int(i) for i in np.flatnonzero(~have)]
+
+
+def _fix_without(absent, recordings, site, cond, start_s, stop_s, *, dims, **kw):
+    """:func:`fix_span` over the mics that have audio; the result names the others."""
+    names = site.mic_names
+    gone = [names[i] for i in absent]
+    keep = [i for i in range(len(names)) if i not in absent]
+    need = 3 if dims == 2 else 4
+    if len(keep) < need:
+        raise NothingFoundError(
+            f"only {len(keep)} mic(s) have audio over {start_s:.3f}..{stop_s:.3f} s "
+            f"({', '.join(gone)} not recording there): a {dims}-D fix needs {need}")
+    entry, fix, delays, warnings = fix_span(
+        recordings.subset(keep), replace(site, mics=tuple(site.mics[i] for i in keep)), cond,
+        start_s, stop_s, dims=dims, **kw)
+    note = (f"mic(s) {', '.join(gone)} had no audio over this span (recorder off or between "
+            "files): left out of this fix")
+    entry["absent_mics"] = gone
+    entry["warnings"] = [note] + entry["warnings"]
+    return entry, fix, delays, entry["warnings"]
+
+
 def _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
                     keep_curves):
     """Second pass with each mic's window shifted by its arrival offset (locate.fix.align), for
@@ -227,6 +262,45 @@ def fix_result(site, cond, entries, *, warnings=(), dims=2, source_z_m=0.0, kind
     if extra:
         result.update(extra)
     add_wgs84_positions(result, site.origin_wgs84)  # "position_wgs84" beside "position_m"
+    return result
+
+
+def add_clock_times(result, recordings, site=None) -> dict:
+    """Put ``t_utc`` (ISO 8601, UTC) beside every time of a result, in place.
+
+    Fixes and events get ``t_utc`` beside ``t_s``; track points ``t_utc`` (when heard) and
+    ``t_emit_utc``; a ``span_s`` gets ``span_utc``; the document gets ``clock`` (the UTC of
+    time 0 and the recorders' declared time zones).  Nothing changes when the recordings
+    carry no clock time (no bext stamps, no start_time).
+    """
+    if recordings is None or getattr(recordings, "epoch", None) is None:
+        return result
+    utc = recordings.clock_time
+
+    def spans(d):
+        if isinstance(d.get("span_s"), list) and len(d["span_s"]) == 2:
+            d["span_utc"] = [utc(v) for v in d["span_s"]]
+
+    for key in ("fixes", "events"):
+        for d in result.get(key) or []:
+            if d.get("t_s") is not None:
+                d["t_utc"] = utc(d["t_s"])
+            spans(d)
+    track = result.get("track")
+    if isinstance(track, dict):
+        for p in track.get("points") or []:
+            if p.get("t_heard_s") is not None:
+                p["t_utc"] = utc(p["t_heard_s"])
+            if p.get("t_emit_s") is not None:
+                p["t_emit_utc"] = utc(p["t_emit_s"])
+    spans(result)
+    clock = {"epoch_utc": utc(0.0, digits=6),
+             "note": "t_s are seconds after epoch_utc; t_utc is UTC"}
+    if site is not None:
+        zones = {m.name: m.time_zone for m in site.mics if getattr(m, "time_zone", None)}
+        if zones:
+            clock["time_zones"] = zones
+    result["clock"] = clock
     return result
 
 

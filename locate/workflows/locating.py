@@ -15,6 +15,7 @@ from locate.errors import NothingFoundError, OptionError
 from locate.fix.air_solve import fit_entry
 from locate.signal.event_choice import choose_events
 from locate.workflows.fixing import (
+    add_clock_times,
     conditions_for,
     fix_result,
     fix_span,
@@ -51,7 +52,8 @@ def no_progress(label, total):
 def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=None,
                       band_hz=None, dims=2, source_z_m=0.0, sound_speed_mps=None,
                       threshold_db=10.0, reject=True, keep_curves=False, solve_air=False,
-                      solve_wind=False, events_choice=None, progress=no_progress) -> dict:
+                      solve_wind=False, events_choice=None, progress=no_progress,
+                      scan_s=None, own_s=None) -> dict:
     """Fix a stationary source in a site's recordings.
 
     Parameters
@@ -81,6 +83,9 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         Which detected events to fix.
     progress : callable
         ``progress(label, total)`` -> context manager with ``update(n)``.
+    scan_s, own_s : (float, float), optional
+        Without a span: scan only ``scan_s`` for events and fix those first heard within
+        ``own_s`` (one chunk of a chunked scan, :mod:`locate.workflows.chunked`).
 
     Returns
     -------
@@ -96,10 +101,14 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
     cond = conditions_for(site, sound_speed_mps)
     warnings = list(site.warnings) + list(rec.warnings)
     if start_s is None:
-        with progress("Scanning for events", rec.duration_s) as bar:
-            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz,
-                                 threshold_db=threshold_db, progress=bar.update)
-        require_events(events, rec.start_s, rec.stop_s)
+        a, b = (rec.start_s, rec.stop_s) if scan_s is None else scan_s
+        with progress("Scanning for events", b - a) as bar:
+            events = scan_events(rec, site.positions_m, cond, band_hz=band_hz, start_s=a,
+                                 stop_s=b, threshold_db=threshold_db, progress=bar.update)
+        if own_s is not None:  # a chunk keeps the events first heard in its own part
+            events = [ev for ev in events
+                      if own_s[0] <= float(np.nanmin(ev.onset_s)) < own_s[1]]
+        require_events(events, a, b)
         events, notes = choose_events(events, events_choice)
         warnings.extend(notes)
         spans = plan_spans(events, rec, site.positions_m, cond)
@@ -120,7 +129,10 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
                 entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
                                             source_z_m=source_z_m, reject=reject,
                                             keep_curves=keep_curves, t_s=t)
-                if solve_air:
+                if solve_air and entry.get("absent_mics"):
+                    entry["warnings"].append("the sound speed was not solved for this fix: "
+                                             "some mics had no audio over it")
+                elif solve_air:
                     fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
                               solve_wind=solve_wind)
             except NothingFoundError as exc:
@@ -137,7 +149,8 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         err = NothingFoundError("no span gave a usable fix (see the warnings above)")
         err.warnings = warnings
         raise err
-    return fix_result(site, cond, entries, warnings=warnings, dims=dims, source_z_m=source_z_m)
+    return add_clock_times(fix_result(site, cond, entries, warnings=warnings, dims=dims,
+                                      source_z_m=source_z_m), rec, site)
 
 
 def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,
@@ -165,5 +178,6 @@ def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,
                             threshold_db=threshold_db, progress=bar.update)
     require_events(found, a, b)
     rows = [ev.to_dict(site.mic_names) for ev in found]
-    return fix_result(site, cond, [], kind="events", extra={"events": rows, "span_s": [a, b]},
-                      warnings=rec.warnings)
+    return add_clock_times(fix_result(site, cond, [], kind="events",
+                                      extra={"events": rows, "span_s": [a, b]},
+                                      warnings=rec.warnings), rec, site)
