@@ -102,6 +102,9 @@ _HINTS = {
     "sound_speed": "measure the air temperature",
     "clocks": "synchronise the recorder clocks",
     "wind": "measure the wind speed and direction",
+    "reflections": "the ground reflection limits the timing: mics mounted on the ground "
+                   "(boundary plates) avoid it",
+    "source_height": "find out how high the source was (its height is only assumed)",
 }
 _NOT_DECLARED = ("survey uncertainty not declared: mic positions, clocks and air are treated as "
                  "exact (declare them in the site file, e.g. a [survey] table)")
@@ -370,7 +373,8 @@ def extra_covariance_hook(mic_positions_m, sds, *, locate=locate_source, passes=
 
 
 _LABELS = {"timing": "timing", "mic_positions": "mic positions", "sound_speed": "sound speed",
-           "clocks": "clocks", "wind": "wind", "unexplained": "unexplained misfit"}
+           "clocks": "clocks", "wind": "wind", "unexplained": "unexplained misfit",
+           "reflections": "ground reflection", "source_height": "source height"}
 
 
 def budget_summary(budget) -> str:

@@ -17,6 +17,7 @@ __all__ = [
     "nuisance_sds",
     "declared_sds",
     "has_nuisance",
+    "with_source_height",
     "sound_speed_slope_mps_per_c",
 ]
 
@@ -36,7 +37,7 @@ is assumed: undeclared uncertainties are zero."""
 
 def nuisance_sds(n_mics, *, position_sd_m=0.0, height_sd_m=None, clock_sd_s=0.0,
                  clock_group=None, sound_speed_sd_mps=0.0, wind_sd_mps=0.0,
-                 temperature_sd_c=0.0):
+                 temperature_sd_c=0.0, source_height_sd_m=0.0):
     """Declared standard deviations in the form the budget functions take.
 
     Parameters
@@ -57,6 +58,8 @@ def nuisance_sds(n_mics, *, position_sd_m=0.0, height_sd_m=None, clock_sd_s=0.0,
         sd of each horizontal wind component, m/s.
     temperature_sd_c : float
         Kept for the report only.
+    source_height_sd_m : float
+        sd of the given source height of a 2-D fix, metres.
 
     Returns
     -------
@@ -82,7 +85,9 @@ def nuisance_sds(n_mics, *, position_sd_m=0.0, height_sd_m=None, clock_sd_s=0.0,
         "declared": {"mic_positions": bool(np.any(pos > 0) or np.any(hgt > 0)),
                      "clocks": bool(np.any(clk > 0)),
                      "sound_speed": float(sound_speed_sd_mps) > 0,
-                     "wind": float(wind_sd_mps) > 0},
+                     "wind": float(wind_sd_mps) > 0,
+                     "source_height": float(source_height_sd_m) > 0},
+        "source_height_m": float(source_height_sd_m),
         "defaults": [],
     }
 
@@ -165,3 +170,11 @@ def declared_sds(site):
 def has_nuisance(sds) -> bool:
     """True when any declared nuisance sd is non-zero."""
     return sds is not None and any(sds["declared"].values())
+
+
+def with_source_height(sds, sd_m):
+    """``sds`` with the sd of a 2-D fix's given source height (0: the height is exact)."""
+    out = dict(sds)
+    out["source_height_m"] = float(sd_m)
+    out["declared"] = {**sds["declared"], "source_height": float(sd_m) > 0}
+    return out

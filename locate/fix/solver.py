@@ -28,7 +28,7 @@ import numpy as np
 from scipy import stats
 
 from locate.errors import ConvergenceError, NothingFoundError
-from locate.fix.integrity import assess_fix
+from locate.fix.integrity import _endfire_pairs, assess_fix
 from locate.physics.air import travel_time_gradient, travel_time_s
 from locate.signal.delays import DelaySet
 
@@ -543,7 +543,12 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
         warnings.append("the geometry cannot fix the source (singular information matrix)")
     cond = np.linalg.cond(info) if np.all(np.isfinite(info)) else np.inf
     if cond > 1e12:
-        warnings.append("poor geometry: the position is nearly undetermined along one axis")
+        line = _endfire_pairs(prob, prob.point(x), names)
+        warnings.append("poor geometry: the position is nearly undetermined along one axis"
+                        + (f"; the source is near the extension of the line through mics "
+                           f"{', '.join(line)} (their delay is at its largest and says little "
+                           "about the position): a mic off that line, toward the source, "
+                           "would help" if line else ""))
     # far outside the array / non-quadratic misfit: warnings and an honest ellipse
     notes, covp[:dims, :dims] = assess_fix(prob, x, chi2, covp[:dims, :dims], inflation, names)
     warnings.extend(notes)

@@ -15,7 +15,9 @@ __all__ = ["COMPONENT_NAMES", "budget_sections", "assumed_text"]
 
 COMPONENT_NAMES = {"timing": "Timing (correlation noise)", "mic_positions": "Mic positions",
                    "sound_speed": "Sound speed (air temperature)", "clocks": "Recorder clocks",
-                   "wind": "Wind", "unexplained": "Misfit beyond the declared uncertainties"}
+                   "wind": "Wind", "unexplained": "Misfit beyond the declared uncertainties",
+                   "reflections": "Ground reflection (timing bias)",
+                   "source_height": "Source height (assumed)"}
 
 # site-file fields named in ``defaults`` -> the assumption they feed
 _DEFAULT_OF = {"position": "mic_positions", "height": "mic_positions", "temperature": "temperature",
@@ -77,7 +79,7 @@ def budget_sections(result):
                  "share": rf.percent(v, 1),
                  "area": rf.percent(area.get(c), 1) if c in area else rf.DASH,
                  "declared": "yes" if declared.get(c)
-                 else (rf.DASH if c in ("timing", "unexplained") else "no")}
+                 else (rf.DASH if c in ("timing", "unexplained", "reflections") else "no")}
                 for c, v in shares.items()]
         gains = b.get("resurvey_gain") or {}
         mics = [{"name": m, "share": rf.percent(v, 1), "gain": rf.percent(gains.get(m), 1)}

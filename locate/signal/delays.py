@@ -26,7 +26,7 @@ mic j later than mic i.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import fft as sfft
@@ -37,6 +37,7 @@ __all__ = [
     "geometric_max_lag_s",
     "gcc_phat",
     "estimate_delays",
+    "multipath_bias_s",
     "WEAK_PEAK_SCORE",
     "AMBIGUOUS_RATIO",
 ]
@@ -105,6 +106,21 @@ class DelaySet:
     max_lag_s: np.ndarray
     curves: list | None = None
     warnings: list = field(default_factory=list)
+    spectral_freqs_hz: np.ndarray | None = None
+    spectral_weight: np.ndarray | None = None
+    bias_covariance_s2: np.ndarray | None = None
+
+    def with_bias(self, bias_covariance_s2) -> DelaySet:
+        """The same set with a (P, P) second moment of systematic delay errors (reflections)
+        added to ``covariance_s2`` and ``sd_s``, and kept apart in ``bias_covariance_s2`` (the
+        budget reports it as its own component)."""
+        m = np.asarray(bias_covariance_s2, dtype=float)
+        m = 0.5 * (m + m.T)
+        base = self.covariance_s2 if self.bias_covariance_s2 is None else (
+            self.covariance_s2 - self.bias_covariance_s2)
+        cov = base + m
+        return replace(self, covariance_s2=cov, sd_s=np.sqrt(np.diag(cov)),
+                       bias_covariance_s2=m)
 
     @property
     def n_mics(self) -> int:
@@ -122,7 +138,10 @@ class DelaySet:
             duration_s=self.duration_s, band_hz=self.band_hz,
             sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s[idx],
             curves=None if self.curves is None else [self.curves[k] for k in idx],
-            warnings=list(self.warnings),
+            warnings=list(self.warnings), spectral_freqs_hz=self.spectral_freqs_hz,
+            spectral_weight=None if self.spectral_weight is None else self.spectral_weight[idx],
+            bias_covariance_s2=None if self.bias_covariance_s2 is None
+            else self.bias_covariance_s2[np.ix_(idx, idx)],
         )
 
     def to_dicts(self, mic_names) -> list[dict]:
@@ -419,6 +438,7 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         if np.all(np.abs(step) < 1e-12):
             break
     delay = lag0 + d
+    spec_f, spec_w = _binned_weights(freqs[kb], c)
 
     cov = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask)
     sd = np.sqrt(np.diag(cov))
@@ -451,8 +471,70 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         pairs=pairs, delay_s=delay, sd_s=sd, covariance_s2=cov, peak=peak, score=score,
         second_ratio=second, quality=tuple(quality), t_s=float(t_s),
         duration_s=n_samp / fs, band_hz=lo_hi, sample_rate_hz=fs, max_lag_s=max_lag_s,
-        curves=curves,
+        curves=curves, spectral_freqs_hz=spec_f, spectral_weight=spec_w,
     )
+
+
+_SPECTRAL_BINS = 1024  # most frequency bins kept for the multipath-bias model
+
+
+def _binned_weights(freqs_hz, c):
+    """The fine-delay weights c_k of every pair summed into at most ``_SPECTRAL_BINS`` bins.
+
+    Returns (bin centre frequencies (B,), weights (P, B)); the bias model of
+    :func:`multipath_bias_s` needs only sums of c_k times smooth functions of frequency.
+    """
+    if freqs_hz.size == 0:
+        return np.zeros(0), np.zeros((c.shape[0], 0))
+    n_bins = min(_SPECTRAL_BINS, freqs_hz.size)
+    edges = np.linspace(freqs_hz[0], freqs_hz[-1] * (1 + 1e-12), n_bins + 1)
+    which = np.clip(np.searchsorted(edges, freqs_hz, side="right") - 1, 0, n_bins - 1)
+    w = np.zeros((c.shape[0], n_bins))
+    fsum = np.zeros(n_bins)
+    np.add.at(fsum, which, freqs_hz)
+    count = np.bincount(which, minlength=n_bins)
+    for p in range(c.shape[0]):
+        w[p] = np.bincount(which, weights=c[p], minlength=n_bins)
+    keep = count > 0
+    return fsum[keep] / count[keep], w[:, keep]
+
+
+def multipath_bias_s(delays: DelaySet, lag_s, gain):
+    """Delay bias of every pair from a second path at each mic (ground or wall reflection).
+
+    A copy of the sound ``gain`` times as strong arriving ``lag_s`` after the direct sound at
+    mic u multiplies its spectrum by 1 + g e^{-i omega lag}: a phase error
+    phi_u = arg(1 + g e^{-i omega lag}) in every bin.  Linearising the fine-delay estimator
+    (the maximum of sum_k c_k cos(phase_k + omega_k d)) about the true delay gives the bias of
+    pair (i, j):  b = -sum_k c_k omega_k (phi_j - phi_i) / sum_k c_k omega_k^2  (the same
+    first-order expansion as the noise model; the two-path phase is textbook, e.g. the image
+    method of a reflecting plane).
+
+    Parameters
+    ----------
+    delays : DelaySet
+        With ``spectral_weight`` (from :func:`estimate_delays`).
+    lag_s, gain : array_like, shape (S, N)
+        Extra travel time and relative amplitude of the second path at each mic, for S
+        scenarios.
+
+    Returns
+    -------
+    ndarray, shape (S, P), seconds (zero when the set carries no spectral weights).
+    """
+    lag = np.atleast_2d(np.asarray(lag_s, dtype=float))
+    g = np.atleast_2d(np.asarray(gain, dtype=float))
+    n_pairs = len(delays.pairs)
+    if delays.spectral_weight is None or delays.spectral_weight.shape[1] == 0:
+        return np.zeros((lag.shape[0], n_pairs))
+    om = 2 * np.pi * np.asarray(delays.spectral_freqs_hz, dtype=float)
+    c = np.asarray(delays.spectral_weight, dtype=float)  # (P, B)
+    phi = np.angle(1.0 + g[..., None] * np.exp(-1j * om[None, None, :] * lag[..., None]))
+    ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]
+    dphi = phi[:, jj, :] - phi[:, ii, :]  # (S, P, B)
+    num = np.einsum("pb,spb->sp", c * om[None, :], dphi)
+    den = np.maximum(np.sum(c * om[None, :] ** 2, axis=1), 1e-300)
+    return -num / den[None, :]
 
 
 def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):

@@ -117,7 +117,8 @@ def search_lags_s(site, cond, pairs):
 
 
 def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
-             keep_curves=False, reject=True, t_s=None, extra_covariance=None):
+             keep_curves=False, reject=True, t_s=None, extra_covariance=None,
+             source_z_sd_m=0.0):
     """Read one span, estimate delays and fix the source.
 
     Returns
@@ -152,8 +153,12 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
                         "strong echo?) for pair(s) " + ", ".join(amb)
                         + ": a broadband part of the sound or a --band around it would help")
     from locate.accuracy.budget import declared_sds, extra_covariance_hook, uncertainty_budget
+    from locate.accuracy.inputs import with_source_height
 
     sds = declared_sds(site)
+    sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0)
+    delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
+                                    source_z_sd_m=source_z_sd_m, mic_names=names)
     if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
         extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
                                                  source_z_m=source_z_m, reject=reject,
@@ -177,6 +182,28 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
     return entry, fix, delays, entry["warnings"]
+
+
+def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
+                           source_z_sd_m=0.0, mic_names=None):
+    """``delays`` with the ground-reflection bias term in their covariance
+    (:mod:`locate.accuracy.reflections`), evaluated at a first, timing-only fix; unchanged when
+    no first fix can be made."""
+    from locate.accuracy.reflections import with_ground_reflection
+    from locate.errors import TdoaError
+
+    try:
+        first = locate_source(positions_m, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
+                              dims=dims, source_z_m=source_z_m, reject=True,
+                              mic_names=mic_names)
+    except (TdoaError, ValueError, np.linalg.LinAlgError):
+        return delays
+    if not np.all(np.isfinite(first.position_m)):
+        return delays
+    sd = float(source_z_sd_m) if dims == 2 else float(np.sqrt(max(
+        first.covariance_m2[2, 2], 0.0)) if np.isfinite(first.covariance_m2[2, 2]) else 0.0)
+    return with_ground_reflection(delays, first.position_m, positions_m, cond.sound_speed_mps,
+                                  cond.wind_mps, source_z_sd_m=sd)
 
 
 def _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
