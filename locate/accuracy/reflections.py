@@ -39,7 +39,7 @@ import numpy as np
 from locate.physics.air import travel_time_s
 from locate.signal.delays import DelaySet, multipath_bias_s
 
-__all__ = ["GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR", "ground_bias_covariance",
+__all__ = ["estimate_ground_q", "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR", "ground_bias_covariance",
            "with_ground_reflection"]
 
 GROUND_Q_RANGE = (0.5, 1.0)
@@ -59,8 +59,75 @@ _GH_WEIGHTS = np.array([1.0, 4.0, 1.0]) / 6.0
 _MIN_SOURCE_Z_M = 0.02
 
 
+_Q_GRID = np.linspace(0.0, 1.0, 21)
+
+
+def _ground_paths(src, mics, heights, sound_speed_mps, wind_mps):
+    """Extra travel time (H, N) and amplitude ratio direct/reflected distance (H, N)."""
+    lags, ratios = [], []
+    for h in heights:
+        s = np.array([src[0], src[1], h])
+        img = np.array([src[0], src[1], -h])
+        lags.append(travel_time_s(img, mics, sound_speed_mps, wind_mps)
+                    - travel_time_s(s, mics, sound_speed_mps, wind_mps))
+        ratios.append(np.linalg.norm(mics - s, axis=1) / np.linalg.norm(mics - img, axis=1))
+    return np.array(lags), np.array(ratios)
+
+
+def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
+                      wind_mps=None, *, source_z_sd_m=0.0):
+    """Reflection coefficient of the ground seen in the mics' spectra: (q, sd) or None.
+
+    A reflection at lag Delta_u multiplies mic u's power spectrum by
+    |1 + q g_u e^{-i omega Delta_u}|^2 (g_u = direct / reflected distance): a ripple whose
+    period in frequency differs from mic to mic.  The log power spectra are fitted as
+    common source spectrum (one value per bin) + a per-mic level and slope (spreading,
+    absorption) + the ripple, over q on a grid of 0.05 and source heights within 2 sd of the
+    given one; least squares, the sd of q from the curvature of the residual sum of squares
+    (textbook regression).  None when fewer than three mics can show the ground.
+    """
+    p = delays.spectral_power
+    if p is None or p.shape[1] < 16:
+        return None
+    src = np.asarray(source_m, dtype=float).reshape(3)
+    mics = np.asarray(mic_positions_m, dtype=float)
+    ok = ((mics[:, 2] > 0) & (mics[:, 2] <= MAX_MIC_HEIGHT_M)
+          & np.all(np.isfinite(p) & (p > 0), axis=1))
+    if ok.sum() < 3:
+        return None
+    f = np.asarray(delays.spectral_freqs_hz, dtype=float)
+    om = 2 * np.pi * f
+    log_p = np.log(p[ok])
+    sd = float(source_z_sd_m)
+    heights = (np.unique(np.clip(src[2] + sd * np.linspace(-2, 2, 9), _MIN_SOURCE_Z_M, None))
+               if sd > 0 else np.array([max(src[2], _MIN_SOURCE_Z_M)]))
+    lags, ratios = _ground_paths(src, mics[ok], heights, sound_speed_mps, wind_mps)
+    fn = (f - f.mean()) / max(np.ptp(f), 1.0)
+    basis = np.stack([np.ones_like(fn), fn], axis=1)  # per-mic level and slope
+    proj = basis @ np.linalg.pinv(basis)
+
+    def rss(model):  # model (n, B)
+        r = log_p - model
+        r = r - r.mean(axis=0, keepdims=True)
+        r = r - r @ proj.T
+        return float(np.sum(r**2))
+
+    table = np.array([[rss(np.log(np.abs(1.0 + q * g[:, None] * np.exp(
+        -1j * om[None, :] * lag[:, None])) ** 2)) for q in _Q_GRID]
+        for lag, g in zip(lags, ratios, strict=True)])  # (H, Q)
+    h_best, q_best = np.unravel_index(int(np.argmin(table)), table.shape)
+    row = table[h_best]
+    n_res = log_p.size - log_p.shape[1] - 2 * log_p.shape[0]
+    sigma2 = row[q_best] / max(n_res, 1)
+    k = int(np.clip(q_best, 1, len(_Q_GRID) - 2))
+    step = _Q_GRID[1] - _Q_GRID[0]
+    curv = (row[k + 1] - 2 * row[k] + row[k - 1]) / step**2
+    q_sd = float(np.sqrt(2.0 * sigma2 / curv)) if curv > 0 else np.inf
+    return float(_Q_GRID[q_best]), max(q_sd, step)  # no finer than the grid
+
+
 def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
-                           wind_mps=None, *, source_z_sd_m=0.0, q_range=GROUND_Q_RANGE):
+                           wind_mps=None, *, source_z_sd_m=0.0, q_range=None):
     """Second moment of the ground-reflection bias of every pair, (P, P) s^2.
 
     Parameters
@@ -74,8 +141,10 @@ def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_sp
     wind_mps : array_like (3,), optional
     source_z_sd_m : float
         Standard deviation of the source height (0: the height is taken as known).
-    q_range : (float, float)
-        Range of the reflection coefficient (uniform).
+    q_range : (float, float), optional
+        Range of the reflection coefficient (uniform).  Default: the coefficient seen in the
+        mics' spectra (:func:`estimate_ground_q`) +- 2 sd, within 0..1; when the spectra
+        cannot tell, :data:`GROUND_Q_RANGE`.
 
     Returns
     -------
@@ -87,6 +156,11 @@ def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_sp
     ok = (mics[:, 2] > 0) & (mics[:, 2] <= MAX_MIC_HEIGHT_M)
     if not ok.any() or not np.all(np.isfinite(src)) or delays.spectral_weight is None:
         return np.zeros((n_pairs, n_pairs))
+    if q_range is None:  # from the spectra, else the plausible range
+        est = estimate_ground_q(delays, src, mics, sound_speed_mps, wind_mps,
+                                source_z_sd_m=source_z_sd_m)
+        q_range = GROUND_Q_RANGE if est is None or not np.isfinite(est[1]) else (
+            max(0.0, est[0] - 2.0 * est[1]), min(1.0, est[0] + 2.0 * est[1]))
     lo, hi = q_range
     q_nodes = lo + (np.arange(4) + 0.5) / 4 * (hi - lo)
     sd = float(source_z_sd_m)

@@ -44,11 +44,15 @@ from locate.errors import NothingFoundError, OptionError
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
               help="Also draw each pair's correlation and residual (diagnostics figure).")
 @click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
+@click.option("--source-z-sd", "source_z_sd_m", type=click.FloatRange(min=0.0), default=None,
+              help="Uncertainty (one standard deviation, m) of --source-z; default 0.5 m for a "
+                   "given height, 0.6 m for the assumed 1 m.  0: the height is exact.")
 @field_options
 @click.pass_context
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
-        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
+        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None,
+        source_z_sd_m=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.fix.air_solve import fit_entry
@@ -65,6 +69,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         scan_events,
     )
 
+    from locate.workflows.fixing import resolve_source_height
+
+    source_z_m, source_z_sd_m, z_basis = resolve_source_height(source_z_m, source_z_sd_m, dims)
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
     from locate.cli.sweep import check_sweep_args, run_sweep
@@ -109,7 +116,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
             try:
                 entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
                                             source_z_m=source_z_m, reject=not no_reject,
-                                            keep_curves=panels_path is not None, t_s=t)
+                                            keep_curves=panels_path is not None, t_s=t,
+                                            source_z_sd_m=source_z_sd_m)
                 if solve_air:
                     fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
                               solve_wind=solve_wind)
@@ -129,7 +137,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
             warn(w)
         raise NothingFoundError("no span gave a usable fix (see the warnings above)")
     result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
-                        source_z_m=source_z_m)
+                        source_z_m=source_z_m,
+                        extra={"source_z_sd_m": source_z_sd_m, "source_z_basis": z_basis}
+                        if dims == 2 else None)
     print_fixes(ctx, site, cond, result)
     for line in air_summary(result):
         echo(ctx, line)

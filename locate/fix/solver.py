@@ -182,6 +182,14 @@ def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VAL
         counts = np.bincount(delays.pairs[idx].ravel(), minlength=n_mics)
         i, j = delays.pairs[idx[k]]
         outlier = mag[k] > max(4.0, 4.0 * np.median(mag))
+        if not outlier:
+            # correlated pair errors (a reflection term) spread one gross error over the
+            # standardised residuals: leave each pair out in turn and take the one whose
+            # absence explains most of the misfit (at least half of it, and 16 = 4 sd squared)
+            k, gain = _best_pair_to_drop(delays, idx, n_mics, chi2, counts)
+            if k is not None:
+                i, j = delays.pairs[idx[k]]
+                outlier = gain > max(16.0, 0.5 * chi2)
         if not outlier or counts[i] <= 2 or counts[j] <= 2:
             inflation = chi2 / dof
             cov = cov * inflation
@@ -190,6 +198,22 @@ def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VAL
         dropped.append(int(idx[k]))
     out = (tau, cov, connected, dropped)
     return out + (inflation,) if details else out
+
+
+def _best_pair_to_drop(delays, idx, n_mics, chi2, counts):
+    """(position in ``idx``, chi-square drop) of the pair whose exclusion lowers the closure
+    misfit most, among pairs whose mics keep at least two other pairs; (None, 0) if none."""
+    best, gain = None, 0.0
+    for r, k in enumerate(idx):
+        i, j = delays.pairs[k]
+        if counts[i] <= 2 or counts[j] <= 2:
+            continue
+        res = _closure_fit(delays, idx[idx != k], n_mics)
+        if res is None or res[5] <= 0 or not res[2][delays.pairs[idx]].all():
+            continue
+        if chi2 - res[4] > gain:
+            best, gain = r, chi2 - res[4]
+    return best, gain
 
 
 def _closure_fit(delays, idx, n_mics):

@@ -108,6 +108,7 @@ class DelaySet:
     warnings: list = field(default_factory=list)
     spectral_freqs_hz: np.ndarray | None = None
     spectral_weight: np.ndarray | None = None
+    spectral_power: np.ndarray | None = None
     bias_covariance_s2: np.ndarray | None = None
 
     def with_bias(self, bias_covariance_s2) -> DelaySet:
@@ -140,6 +141,7 @@ class DelaySet:
             curves=None if self.curves is None else [self.curves[k] for k in idx],
             warnings=list(self.warnings), spectral_freqs_hz=self.spectral_freqs_hz,
             spectral_weight=None if self.spectral_weight is None else self.spectral_weight[idx],
+            spectral_power=self.spectral_power,
             bias_covariance_s2=None if self.bias_covariance_s2 is None
             else self.bias_covariance_s2[np.ix_(idx, idx)],
         )
@@ -438,7 +440,7 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         if np.all(np.abs(step) < 1e-12):
             break
     delay = lag0 + d
-    spec_f, spec_w = _binned_weights(freqs[kb], c)
+    spec_f, spec_w, spec_p = _binned_weights(freqs[kb], c, np.abs(spec[:, kb]) ** 2)
 
     cov = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask)
     sd = np.sqrt(np.diag(cov))
@@ -472,31 +474,32 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         second_ratio=second, quality=tuple(quality), t_s=float(t_s),
         duration_s=n_samp / fs, band_hz=lo_hi, sample_rate_hz=fs, max_lag_s=max_lag_s,
         curves=curves, spectral_freqs_hz=spec_f, spectral_weight=spec_w,
+        spectral_power=spec_p,
     )
 
 
 _SPECTRAL_BINS = 1024  # most frequency bins kept for the multipath-bias model
 
 
-def _binned_weights(freqs_hz, c):
-    """The fine-delay weights c_k of every pair summed into at most ``_SPECTRAL_BINS`` bins.
+def _binned_weights(freqs_hz, c, power):
+    """The fine-delay weights c_k of every pair summed, and each mic's smoothed power averaged,
+    into at most ``_SPECTRAL_BINS`` bins.
 
-    Returns (bin centre frequencies (B,), weights (P, B)); the bias model of
-    :func:`multipath_bias_s` needs only sums of c_k times smooth functions of frequency.
+    Returns (bin centre frequencies (B,), weights (P, B), power (N, B)); the reflection model
+    (:func:`multipath_bias_s`, :mod:`locate.accuracy.reflections`) needs only sums of c_k
+    times smooth functions of frequency and the ripple of each mic's spectrum.
     """
     if freqs_hz.size == 0:
-        return np.zeros(0), np.zeros((c.shape[0], 0))
+        return np.zeros(0), np.zeros((c.shape[0], 0)), np.zeros((power.shape[0], 0))
     n_bins = min(_SPECTRAL_BINS, freqs_hz.size)
     edges = np.linspace(freqs_hz[0], freqs_hz[-1] * (1 + 1e-12), n_bins + 1)
     which = np.clip(np.searchsorted(edges, freqs_hz, side="right") - 1, 0, n_bins - 1)
-    w = np.zeros((c.shape[0], n_bins))
-    fsum = np.zeros(n_bins)
-    np.add.at(fsum, which, freqs_hz)
+    fsum = np.bincount(which, weights=freqs_hz, minlength=n_bins)
     count = np.bincount(which, minlength=n_bins)
-    for p in range(c.shape[0]):
-        w[p] = np.bincount(which, weights=c[p], minlength=n_bins)
+    w = np.stack([np.bincount(which, weights=row, minlength=n_bins) for row in c])
+    pw = np.stack([np.bincount(which, weights=row, minlength=n_bins) for row in power])
     keep = count > 0
-    return fsum[keep] / count[keep], w[:, keep]
+    return fsum[keep] / count[keep], w[:, keep], pw[:, keep] / count[keep]
 
 
 def multipath_bias_s(delays: DelaySet, lag_s, gain):

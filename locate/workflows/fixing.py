@@ -21,7 +21,7 @@ from locate.signal.echoes import onset_mismatch
 from locate.signal.event_scan import scan_recordings
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
-           "plan_spans"]
+           "plan_spans", "resolve_source_height", "reflection_uncertainty"]
 
 MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
 
@@ -114,6 +114,39 @@ def search_lags_s(site, cond, pairs):
     margin = 5e-4 + 3.0 * (clock_sd[pairs[:, 0]] + clock_sd[pairs[:, 1]])
     return geometric_max_lag_s(site.positions_m, pairs, cond.sound_speed_mps,
                                wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
+
+
+ASSUMED_SOURCE_Z_M = 1.0
+"""Source height of a 2-D fix when none is given: a source between the ground and 2 m
+(people, vehicles, machinery, dropped objects: common practice)."""
+ASSUMED_SOURCE_Z_SD_M = 0.6
+"""Its standard deviation (0-2 m uniform has 0.58 m)."""
+GIVEN_SOURCE_Z_SD_M = 0.5
+"""Standard deviation of a source height given without one (a height judged by eye)."""
+
+
+def resolve_source_height(source_z_m, source_z_sd_m=None, dims=2):
+    """(height, sd, basis) of a 2-D fix from the command-line values.
+
+    ``source_z_m`` may carry its own sd (``locate.cli.common.Height``, from ``1.0+-0.5``);
+    a plain 0.0 is the option's default (not given): :data:`ASSUMED_SOURCE_Z_M` with
+    :data:`ASSUMED_SOURCE_Z_SD_M`, basis ``"assumed"``.  A height given without an sd takes
+    :data:`GIVEN_SOURCE_Z_SD_M`, basis ``"given"``.  3-D fixes solve the height: sd 0.
+    """
+    own_sd = getattr(source_z_m, "sd", None)
+    given = own_sd is not None or type(source_z_m) is not float or float(source_z_m) != 0.0
+    if dims == 3:
+        return float(source_z_m), 0.0, "solved"
+    if not given and source_z_sd_m is None:
+        return ASSUMED_SOURCE_Z_M, ASSUMED_SOURCE_Z_SD_M, "assumed"
+    z = float(source_z_m) if given else ASSUMED_SOURCE_Z_M
+    sd = own_sd if own_sd is not None else source_z_sd_m
+    if sd is None:
+        sd = GIVEN_SOURCE_Z_SD_M
+    if not (np.isfinite(sd) and sd >= 0):
+        raise OptionError(f"source height uncertainty {sd!r} must be finite and >= 0",
+                          field="--source-z-sd")
+    return z, float(sd), "given" if given else "assumed"
 
 
 def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
