@@ -39,8 +39,8 @@ import numpy as np
 from locate.physics.air import travel_time_s
 from locate.signal.delays import DelaySet, multipath_bias_s
 
-__all__ = ["estimate_ground_q", "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR", "ground_bias_covariance",
-           "with_ground_reflection"]
+__all__ = ["estimate_ground_q", "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR",
+           "ground_bias_covariance", "with_ground_reflection"]
 
 GROUND_Q_RANGE = (0.5, 1.0)
 """Plausible range of the ground's reflection coefficient (hard to moderately soft ground)."""
@@ -76,15 +76,17 @@ def _ground_paths(src, mics, heights, sound_speed_mps, wind_mps):
 
 def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
                       wind_mps=None, *, source_z_sd_m=0.0):
-    """Reflection coefficient of the ground seen in the mics' spectra: (q, sd) or None.
+    """Range (lo, hi) of the ground's reflection coefficient seen in the mics' spectra, or None.
 
     A reflection at lag Delta_u multiplies mic u's power spectrum by
     |1 + q g_u e^{-i omega Delta_u}|^2 (g_u = direct / reflected distance): a ripple whose
     period in frequency differs from mic to mic.  The log power spectra are fitted as
-    common source spectrum (one value per bin) + a per-mic level and slope (spreading,
-    absorption) + the ripple, over q on a grid of 0.05 and source heights within 2 sd of the
-    given one; least squares, the sd of q from the curvature of the residual sum of squares
-    (textbook regression).  None when fewer than three mics can show the ground.
+    common source spectrum (one value per bin) + a per-mic level (spreading) + the ripple
+    (a per-mic slope would absorb the ripple of a reflection within the peak width), over q on a grid of 0.05 and source heights within 2 sd of the
+    given one, by least squares; the range holds every q whose residual sum of squares is
+    within 9 residual variances of the best (a 3-sd likelihood interval, textbook
+    regression), widened by one grid step.  None when fewer than three mics can show the
+    ground.
     """
     p = delays.spectral_power
     if p is None or p.shape[1] < 16:
@@ -102,8 +104,7 @@ def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
     heights = (np.unique(np.clip(src[2] + sd * np.linspace(-2, 2, 9), _MIN_SOURCE_Z_M, None))
                if sd > 0 else np.array([max(src[2], _MIN_SOURCE_Z_M)]))
     lags, ratios = _ground_paths(src, mics[ok], heights, sound_speed_mps, wind_mps)
-    fn = (f - f.mean()) / max(np.ptp(f), 1.0)
-    basis = np.stack([np.ones_like(fn), fn], axis=1)  # per-mic level and slope
+    basis = np.ones((f.size, 1))  # per-mic level (spreading)
     proj = basis @ np.linalg.pinv(basis)
 
     def rss(model):  # model (n, B)
@@ -115,15 +116,15 @@ def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
     table = np.array([[rss(np.log(np.abs(1.0 + q * g[:, None] * np.exp(
         -1j * om[None, :] * lag[:, None])) ** 2)) for q in _Q_GRID]
         for lag, g in zip(lags, ratios, strict=True)])  # (H, Q)
-    h_best, q_best = np.unravel_index(int(np.argmin(table)), table.shape)
-    row = table[h_best]
-    n_res = log_p.size - log_p.shape[1] - 2 * log_p.shape[0]
-    sigma2 = row[q_best] / max(n_res, 1)
-    k = int(np.clip(q_best, 1, len(_Q_GRID) - 2))
+    best = float(np.min(table))
+    n_res = log_p.size - log_p.shape[1] - basis.shape[1] * log_p.shape[0]
+    sigma2 = best / max(n_res, 1)
+    # every q that fits within 3 sd at some height (rss rise <= 9 sigma^2; textbook
+    # likelihood interval), widened by one grid step
+    fits = np.flatnonzero(np.min(table, axis=0) <= best + 9.0 * sigma2)
     step = _Q_GRID[1] - _Q_GRID[0]
-    curv = (row[k + 1] - 2 * row[k] + row[k - 1]) / step**2
-    q_sd = float(np.sqrt(2.0 * sigma2 / curv)) if curv > 0 else np.inf
-    return float(_Q_GRID[q_best]), max(q_sd, step)  # no finer than the grid
+    return (max(0.0, float(_Q_GRID[fits.min()]) - step),
+            min(1.0, float(_Q_GRID[fits.max()]) + step))
 
 
 def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
@@ -157,10 +158,8 @@ def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_sp
     if not ok.any() or not np.all(np.isfinite(src)) or delays.spectral_weight is None:
         return np.zeros((n_pairs, n_pairs))
     if q_range is None:  # from the spectra, else the plausible range
-        est = estimate_ground_q(delays, src, mics, sound_speed_mps, wind_mps,
-                                source_z_sd_m=source_z_sd_m)
-        q_range = GROUND_Q_RANGE if est is None or not np.isfinite(est[1]) else (
-            max(0.0, est[0] - 2.0 * est[1]), min(1.0, est[0] + 2.0 * est[1]))
+        q_range = estimate_ground_q(delays, src, mics, sound_speed_mps, wind_mps,
+                                    source_z_sd_m=source_z_sd_m) or GROUND_Q_RANGE
     lo, hi = q_range
     q_nodes = lo + (np.arange(4) + 0.5) / 4 * (hi - lo)
     sd = float(source_z_sd_m)

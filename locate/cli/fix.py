@@ -66,10 +66,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         fix_span,
         plan_spans,
         require_events,
+        resolve_source_height,
         scan_events,
     )
-
-    from locate.workflows.fixing import resolve_source_height
 
     source_z_m, source_z_sd_m, z_basis = resolve_source_height(source_z_m, source_z_sd_m, dims)
     band_hz = parse_band(band)

@@ -440,9 +440,14 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         if np.all(np.abs(step) < 1e-12):
             break
     delay = lag0 + d
-    spec_f, spec_w, spec_p = _binned_weights(freqs[kb], c, np.abs(spec[:, kb]) ** 2)
-
-    cov = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask)
+    cov, nsr = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft,
+                                 mask)
+    # each mic's power without its noise (signal share 1 / (1 + noise-to-signal ratio)), so
+    # that the notches of a reflection are not filled by the noise floor
+    power = np.abs(spec[:, kb]) ** 2
+    if nsr is not None and nsr.shape == power.shape:
+        power = power / (1.0 + nsr)
+    spec_f, spec_w, spec_p = _binned_weights(freqs[kb], c, power)
     sd = np.sqrt(np.diag(cov))
 
     quality = []
@@ -541,7 +546,8 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain):
 
 
 def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):
-    """Covariance of the fine delays from the linearised phase-error model.
+    """Covariance of the fine delays from the linearised phase-error model, and the per-mic
+    noise-to-signal ratio of every weighted bin (N, K_w) it was built on.
 
     The phase error of pair (i, j) in bin k is e_i - e_j + n_ij with var(e_u) = a_u / 2 and
     var(n_ij) = a_i a_j / 2 per independent bin, a_u the noise-to-signal ratio of mic u.
@@ -555,7 +561,7 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
     cov = np.zeros((n_pairs, n_pairs))
     usable = d_norm > 0
     if not usable.any():
-        return np.diag(np.full(n_pairs, np.inf))
+        return np.diag(np.full(n_pairs, np.inf)), None
     # Per-mic signal spectrum from pairwise coherent cross-power (least squares in log domain).
     bins = np.flatnonzero(mask & np.any(w > 0, axis=0))
     log_cross = np.log(np.maximum(np.abs(s_cross[:, bins]), 1e-300))
@@ -605,4 +611,4 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
         cov[bad, :] = 0.0
         cov[:, bad] = 0.0
         cov[bad, bad] = np.inf
-    return cov
+    return cov, a
