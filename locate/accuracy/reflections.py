@@ -83,9 +83,9 @@ def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
     period in frequency differs from mic to mic.  The log power spectra are fitted as
     common source spectrum (one value per bin) + a per-mic level (spreading) + the ripple
     (a per-mic slope would absorb the ripple of a reflection within the peak width), over q
-    on a grid of 0.05 and source heights within 2 sd of the given one, by least squares; the range holds every q whose residual sum of squares is
-    within 9 residual variances of the best (a 3-sd likelihood interval, textbook
-    regression), widened by one grid step.  None when fewer than three mics can show the
+    on a grid of 0.05 and source heights within 2 sd of the given one, by least squares.
+    The range holds every q whose residual sum of squares is within 9 residual variances of
+    the best (a 3-sd likelihood interval, textbook regression), widened by one grid step.  None when fewer than three mics can show the
     ground.
     """
     p = delays.spectral_power
