@@ -85,8 +85,8 @@ def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
     (a per-mic slope would absorb the ripple of a reflection within the peak width), over q
     on a grid of 0.05 and source heights within 2 sd of the given one, by least squares.
     The range holds every q whose residual sum of squares is within 9 residual variances of
-    the best (a 3-sd likelihood interval, textbook regression), widened by one grid step.  None when fewer than three mics can show the
-    ground.
+    the best (a 3-sd likelihood interval, textbook regression), widened by one grid step.
+    None when fewer than three mics can show the ground.
     """
     p = delays.spectral_power
     if p is None or p.shape[1] < 16:
