@@ -104,20 +104,18 @@ def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
     heights = (np.unique(np.clip(src[2] + sd * np.linspace(-2, 2, 9), _MIN_SOURCE_Z_M, None))
                if sd > 0 else np.array([max(src[2], _MIN_SOURCE_Z_M)]))
     lags, ratios = _ground_paths(src, mics[ok], heights, sound_speed_mps, wind_mps)
-    basis = np.ones((f.size, 1))  # per-mic level (spreading)
-    proj = basis @ np.linalg.pinv(basis)
 
-    def rss(model):  # model (n, B)
+    def rss(model):  # model (n, B); common spectrum per bin and level per mic removed
         r = log_p - model
         r = r - r.mean(axis=0, keepdims=True)
-        r = r - r @ proj.T
+        r = r - r.mean(axis=1, keepdims=True)
         return float(np.sum(r**2))
 
     table = np.array([[rss(np.log(np.abs(1.0 + q * g[:, None] * np.exp(
         -1j * om[None, :] * lag[:, None])) ** 2)) for q in _Q_GRID]
         for lag, g in zip(lags, ratios, strict=True)])  # (H, Q)
     best = float(np.min(table))
-    n_res = log_p.size - log_p.shape[1] - basis.shape[1] * log_p.shape[0]
+    n_res = log_p.size - log_p.shape[1] - log_p.shape[0]
     sigma2 = best / max(n_res, 1)
     # every q that fits within 3 sd at some height (rss rise <= 9 sigma^2; textbook
     # likelihood interval), widened by one grid step
