@@ -61,6 +61,7 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     from locate.results.documents import check_output_path
     from locate.signal.event_choice import choose_events
     from locate.workflows.fixing import (
+        air_fit_extra,
         conditions_for,
         fix_result,
         fix_span,
@@ -119,7 +120,9 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
                                             source_z_sd_m=source_z_sd_m)
                 if solve_air:
                     fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
-                              solve_wind=solve_wind)
+                              solve_wind=solve_wind, extra_covariance_s2=air_fit_extra(
+                                  site, fx, ds, cond, dims=dims, source_z_sd_m=source_z_sd_m,
+                                  solve_wind=solve_wind))
             except NothingFoundError as exc:
                 warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
                 bar.update(1)

@@ -21,7 +21,7 @@ from locate.signal.echoes import onset_mismatch
 from locate.signal.event_scan import scan_recordings
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
-           "plan_spans", "resolve_source_height", "reflection_uncertainty"]
+           "plan_spans", "resolve_source_height", "reflection_uncertainty", "air_fit_extra"]
 
 MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
 
@@ -237,6 +237,21 @@ def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
         first.covariance_m2[2, 2], 0.0)) if np.isfinite(first.covariance_m2[2, 2]) else 0.0)
     return with_ground_reflection(delays, first.position_m, positions_m, cond.sound_speed_mps,
                                   cond.wind_mps, source_z_sd_m=sd)
+
+
+def air_fit_extra(site, fix, delays, cond, *, dims=2, source_z_sd_m=0.0, solve_wind=False):
+    """Delay covariance of the declared uncertainties that ``--solve-air`` does not solve
+    (survey, clocks, source height; the wind too unless it is solved), at the fixed-air fix;
+    None when none is declared."""
+    from locate.accuracy.inputs import declared_sds, has_nuisance, with_source_height
+    from locate.accuracy.propagation import nuisance_delay_covariance
+
+    sds = with_source_height(declared_sds(site), source_z_sd_m if dims == 2 else 0.0)
+    if not has_nuisance(sds):
+        return None
+    keep = ["mic_positions", "clocks", "source_height"] + ([] if solve_wind else ["wind"])
+    return nuisance_delay_covariance(fix.position_m, site.positions_m, delays.pairs,
+                                     cond.sound_speed_mps, cond.wind_mps, sds, components=keep)
 
 
 def _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
