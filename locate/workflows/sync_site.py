@@ -6,7 +6,9 @@ the recordings, and the new site file (the estimation itself is in :mod:`locate.
 * :func:`calibrate` reads each reference span, measures its delays, turns them into clock
   corrections and fits offsets (and, with two events, drifts);
 * :func:`synced_site_raw` returns the site's raw dict with ``offset_s``, ``drift_ppm`` and
-  ``clock_sd_s`` filled in, paths rebased for the new file's folder.
+  ``clock_sd_s`` filled in, paths rebased for the new file's folder;
+  :func:`synced_site_text` writes those into the input file's text in place (tomlkit), keeping
+  the user's comments, order and formatting.
 """
 
 from __future__ import annotations
@@ -20,9 +22,11 @@ import numpy as np
 
 from locate.errors import OptionError
 from locate.fix import air_solve as _airfit
+from locate.signal.delays import all_pairs
 from locate.sync.clocks import ClockFit, clock_corrections, fit_clocks, reference_delays
 
-__all__ = ["parse_point", "calibrate", "synced_site_raw", "sound_speed_sd_mps", "summary_lines",
+__all__ = ["parse_point", "calibrate", "synced_site_raw", "synced_site_text",
+           "sound_speed_sd_mps", "summary_lines",
            "sync_report", "MAX_REFERENCE_DISTANCE_M"]
 
 MAX_REFERENCE_DISTANCE_M = 2000.0
@@ -165,10 +169,17 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
     sd_c = sound_speed_sd_mps(site)
     pos_sd = np.array([m.position_sd_m or 0.0 for m in site.mics])
     measured, reports, ref = [], [], None
+    from locate.accuracy.reflections import with_ground_reflection
+    from locate.workflows.fixing import search_lags_s
+
     for (a, b), point in zip(spans, points_m, strict=True):
         signals, residual = rec.read(a, b)
         ev = reference_delays(signals, rec.sample_rate_hz, residual, t0_s=a,
-                              band_hz=band_hz, mic_names=names)
+                              band_hz=band_hz, mic_names=names,
+                              max_lag_s=search_lags_s(site, cond, all_pairs(len(names))))
+        # the same delay model as fix: the ground reflection's bias (the point is known)
+        ev.delays = with_ground_reflection(ev.delays, point, pos, cond.sound_speed_mps,
+                                           cond.wind_mps)
         delta, cov, r, dropped = clock_corrections(
             ev.delays, point, pos, cond.sound_speed_mps, wind_mps=cond.wind_mps,
             sound_speed_sd_mps=sd_c, position_sd_m=pos_sd, point_sd_m=point_sd_m)
@@ -240,6 +251,55 @@ def synced_site_raw(site, fit: ClockFit, out_path) -> dict:
         if np.isfinite(sd):
             m["clock_sd_s"] = float(f"{sd:.3g}")
     return raw
+
+
+def _update_in_place(node, new):
+    """Set in the tomlkit container ``node`` every value of the plain ``new`` that differs,
+    recursing into tables and arrays of tables; untouched keys keep their comments, order and
+    formatting.  False when the structures do not match (the caller then writes afresh)."""
+    if isinstance(new, dict):
+        if not hasattr(node, "keys"):
+            return False
+        for key, value in new.items():
+            if key in node and isinstance(value, dict | list) and not _scalar_list(value):
+                if not _update_in_place(node[key], value):
+                    return False
+            elif key not in node or _plain(node[key]) != value:
+                node[key] = value
+        return True
+    if isinstance(new, list):
+        if not isinstance(node, list) or len(node) != len(new):
+            return False
+        return all(_update_in_place(a, b) for a, b in zip(node, new, strict=True))
+    return False
+
+
+def _scalar_list(value):
+    return isinstance(value, list) and not any(isinstance(v, dict) for v in value)
+
+
+def _plain(item):
+    unwrap = getattr(item, "unwrap", None)
+    return unwrap() if callable(unwrap) else item
+
+
+def synced_site_text(site, fit: ClockFit, out_path) -> str:
+    """The new site file's text: the input file with ``offset_s``, ``drift_ppm`` and
+    ``clock_sd_s`` (and rebased paths) edited in place by the round-trip TOML library
+    ``tomlkit``, so the user's comments, order and formatting survive.  Falls back to a fresh
+    dump (:func:`locate.io.site.dump_site_toml`) when the file cannot be edited so."""
+    from locate.io.site import dump_site_toml
+
+    raw = synced_site_raw(site, fit, out_path)
+    try:
+        import tomlkit
+
+        doc = tomlkit.parse(Path(site.path).read_text(encoding="utf-8"))
+        if _update_in_place(doc, raw):
+            return tomlkit.dumps(doc)
+    except Exception:  # noqa: BLE001 - any trouble with the round trip: write afresh
+        pass
+    return dump_site_toml(raw)
 
 
 # ------------------------------------------------------------------------- reporting
