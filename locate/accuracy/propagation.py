@@ -48,7 +48,8 @@ def nuisance_jacobians(source_m, mic_positions_m, pairs, sound_speed_mps, wind_m
         component -> ``(G, sd)`` with G of shape (P, K) (seconds per unit of the nuisance)
         and sd of shape (K,): ``mic_positions`` (K = 3N, columns x1 y1 z1 x2 ...),
         ``clocks`` (K = number of clock groups), ``sound_speed`` (K = 1), ``wind`` (K = 2),
-        ``source_height`` (K = 1: the given height of a 2-D fix, sd ``source_height_m``).
+        ``source_height`` (K = 2: the given height of a 2-D fix, sd ``source_height_m``,
+        as the mean square of the delay change over a Gauss-Hermite rule; sds 1).
     """
     src = np.asarray(source_m, dtype=float).reshape(3)
     mics = np.asarray(mic_positions_m, dtype=float)
@@ -71,11 +72,20 @@ def nuisance_jacobians(source_m, mic_positions_m, pairs, sound_speed_mps, wind_m
     g_w = np.stack([(predict_delays(src, mics, pairs, c, w + _DW_STEP_MPS * e)
                      - predict_delays(src, mics, pairs, c, w - _DW_STEP_MPS * e))
                     / (2 * _DW_STEP_MPS) for e in np.eye(3)[:2]], axis=1)
-    # source height of a 2-D fix (given, not solved): d t / d z_source
-    g_src = travel_time_gradient(src[None, :], mics, c, w)[:, 2]
-    g_z = (g_src[pairs[:, 1]] - g_src[pairs[:, 0]])[:, None]
+    # Source height of a 2-D fix (given, not solved).  Near the mics' height the delays
+    # depend on it to second order only (a zero first derivative), so its term is the mean
+    # square of the delay change over the three-point Gauss-Hermite rule (z0 -+ sqrt(3) sd,
+    # weights 1/6, 2/3, 1/6; heights kept >= 0): columns sqrt(w_k) (d(z_k) - d(z0)), sd 1.
+    sd_z = float(sds.get("source_height_m", 0.0) or 0.0)
+    d0 = predict_delays(src, mics, pairs, c, w)
+    cols = []
+    for t, wt in ((-np.sqrt(3.0), 1.0 / 6.0), (np.sqrt(3.0), 1.0 / 6.0)):
+        s_k = src.copy()
+        s_k[2] = max(src[2] + t * sd_z, 0.0)
+        cols.append(np.sqrt(wt) * (predict_delays(s_k, mics, pairs, c, w) - d0))
+    g_z = np.stack(cols, axis=1)
     return {
-        "source_height": (g_z, np.array([float(sds.get("source_height_m", 0.0) or 0.0)])),
+        "source_height": (g_z, np.full(2, 1.0 if sd_z > 0 else 0.0)),
         "mic_positions": (g_pos, sd_pos),
         "clocks": (g_clk, sd_clk),
         "sound_speed": (g_c, np.array([sds["sound_speed_mps"]])),

@@ -180,11 +180,20 @@ def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_sp
             weights.append(wh / len(q_nodes))
     b = multipath_bias_s(delays, np.array(lags), np.array(gains))  # (S, P)
     b = np.where(np.isfinite(b), b, 0.0)
-    m = (b * np.asarray(weights)[:, None]).T @ b
-    # the first-order model misses part of each pair's bias (a strong reflection is not a
-    # small perturbation; real grounds are not one Q): that part does not follow the modelled
-    # pattern across pairs, so it enters as independent per-pair variance
-    m = m + MODEL_ERROR**2 * np.diag(np.diag(m))
+    wts = np.asarray(weights)
+    m = (b * wts[:, None]).T @ b
+    # The first-order model misses part of the bias (a strong reflection is not a small
+    # perturbation; real grounds are not one Q).  That part follows the mics, not the modelled
+    # pattern: MODEL_ERROR of each mic's own arrival bias (least-squares split of the pair
+    # biases into per-mic ones, minimum norm), independent between mics and between pairs.
+    inc = np.zeros((n_pairs, len(mics)))
+    inc[np.arange(n_pairs), delays.pairs[:, 1]] = 1.0
+    inc[np.arange(n_pairs), delays.pairs[:, 0]] = -1.0
+    beta = b @ np.linalg.pinv(inc).T  # (S, N)
+    beta = beta - beta.mean(axis=1, keepdims=True)
+    beta2 = wts @ beta**2  # (N,) mean square per mic
+    per_mic = (inc**2) @ beta2  # (P,) beta_i^2 + beta_j^2
+    m = m + MODEL_ERROR**2 * (np.diag(np.diag(m)) + np.diag(per_mic))
     return 0.5 * (m + m.T)
 
 

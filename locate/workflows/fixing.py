@@ -190,16 +190,17 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
 
     sds = declared_sds(site)
     sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0)
+    models = model_error_sds(site, sds, dims)
     delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
                                     source_z_sd_m=source_z_sd_m, mic_names=names)
     if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
         extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
                                                  source_z_m=source_z_m, reject=reject,
-                                                 mic_names=names)
+                                                 mic_names=names, model_sds=models)
     extra = extra_covariance(delays, cond)
     fix = locate_source(positions, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
                         dims=dims, source_z_m=source_z_m, reject=reject, mic_names=names,
-                        extra_covariance_s2=extra)
+                        extra_covariance_s2=extra, model_sds=models)
     if len(amb) > len(delays.pairs) // 2:
         fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
                             "do not rely on it without a broadband sound")
@@ -215,6 +216,22 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
     return entry, fix, delays, entry["warnings"]
+
+
+def model_error_sds(site, sds, dims=2):
+    """Model errors the integrity test weighs against a bad mic: the source height's sd (2-D)
+    and the sound speed's - the declared one, else that of the taped-survey default air
+    temperature sd (2 degC: a temperature not measured on site, docs/uncertainty.md)."""
+    from locate.accuracy.inputs import TAPED_SURVEY_DEFAULTS, sound_speed_slope_mps_per_c
+
+    sd_c = float(sds.get("sound_speed_mps", 0.0) or 0.0)
+    if sd_c <= 0:
+        air = site.air
+        sd_c = abs(sound_speed_slope_mps_per_c(air.temperature_c, air.relative_humidity,
+                                               air.pressure_kpa)) * TAPED_SURVEY_DEFAULTS[
+            "temperature_sd_c"]
+    return {"source_z_m": float(sds.get("source_height_m", 0.0) or 0.0) if dims == 2 else 0.0,
+            "sound_speed_mps": sd_c}
 
 
 def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
