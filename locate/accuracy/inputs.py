@@ -17,6 +17,8 @@ __all__ = [
     "nuisance_sds",
     "declared_sds",
     "has_nuisance",
+    "timing_only",
+    "TIMING_ONLY",
     "with_source_height",
     "sound_speed_slope_mps_per_c",
 ]
@@ -165,6 +167,22 @@ def declared_sds(site):
                        wind_sd_mps=w_sd, temperature_sd_c=t_sd)
     out["defaults"] = sorted(defaults)
     return out
+
+
+TIMING_ONLY = ("timing-only uncertainty: nothing was declared about the mic survey, the "
+               "clocks or the air, so they are taken as exact and the ellipse shows the "
+               "correlation timing alone")
+"""The one sentence every command (and the report, in its own words) gives when nothing but
+the timing enters an uncertainty (docs/uncertainty.md, rule 2)."""
+
+
+def timing_only(sds) -> bool:
+    """True when no survey, clock or air uncertainty is declared (the source height's, which
+    a 2-D fix always assumes, does not count)."""
+    if sds is None:
+        return True
+    d = sds["declared"]
+    return not any(d.get(k) for k in ("mic_positions", "clocks", "sound_speed", "wind"))
 
 
 def has_nuisance(sds) -> bool:

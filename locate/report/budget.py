@@ -85,9 +85,23 @@ def budget_sections(result):
         mics = [{"name": m, "share": rf.percent(v, 1), "gain": rf.percent(gains.get(m), 1)}
                 for m, v in (b.get("mic_position_shares") or {}).items()]
         out.append({"label": result.get("_label", ""), "fix": str(k), "rows": rows,
-                    "hint": b.get("hint", ""), "note": b.get("note", ""),
+                    "hint": b.get("hint", ""), "note": _plain_note(b),
                     "method": b.get("method", ""), "mics": mics,
                     "gains": any(rf.finite(g) and float(g) > 0 for g in gains.values()),
                     "assumed": assumed_text(b),
                     "dominant": COMPONENT_NAMES.get(b.get("dominant"), b.get("dominant"))})
     return out
+
+
+def _plain_note(b):
+    """The budget's note for a client: no site-file field or table names."""
+    note = b.get("note", "") or ""
+    declared = b.get("declared") or {}
+    if not any(declared.get(k) for k in ("mic_positions", "clocks", "sound_speed", "wind")):
+        return ("Timing-only uncertainty: nothing was stated about how well the microphone "
+                "positions, the recorder clocks or the air are known, so they were taken as "
+                "exact and the ellipse shows the timing of the sound alone")
+    if not declared.get("mic_positions"):
+        return ("The microphone positions were taken as exact (how well they were surveyed "
+                "was not stated)")
+    return note

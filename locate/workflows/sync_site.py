@@ -205,6 +205,10 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
     cover = np.stack([(rec.start_s - rec.offsets_s) * scale,
                       (rec.stop_s - rec.offsets_s) * scale], axis=1)
     fit = fit_clocks(measured, rec.offsets_s, rec.drift_ppm, site_offset, cover, reference=ref)
+    if sd_c <= 0 and not np.any(pos_sd > 0) and not point_sd_m:
+        fit.warnings.append("timing-only uncertainty: nothing was declared about the mic "
+                            "survey, the air or the reference point, so the offsets' "
+                            "uncertainties cover the correlation timing alone")
     deaf = [names[k] for k in range(len(names)) if not np.all(np.isfinite(fit.correction_s[:, k]))]
     if deaf:
         fit.warnings.append("no clock correction for mic(s) " + ", ".join(deaf)
