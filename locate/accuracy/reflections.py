@@ -40,7 +40,7 @@ from locate.physics.air import travel_time_s
 from locate.signal.delays import DelaySet, multipath_bias_s
 
 __all__ = ["estimate_ground_q", "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR",
-           "ground_bias_covariance", "with_ground_reflection"]
+           "ground_bias_covariance", "with_ground_reflection", "ground_echo_pairs"]
 
 GROUND_Q_RANGE = (0.5, 1.0)
 """Plausible range of the ground's reflection coefficient (hard to moderately soft ground)."""
@@ -204,3 +204,37 @@ def with_ground_reflection(delays: DelaySet, source_m, mic_positions_m, sound_sp
     m = ground_bias_covariance(delays, source_m, mic_positions_m, sound_speed_mps, wind_mps,
                                source_z_sd_m=source_z_sd_m)
     return delays.with_bias(m)
+
+
+def ground_echo_pairs(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
+                      wind_mps=None, *, source_z_sd_m=0.0):
+    """Pairs whose next correlation peak is the ground reflection's, (P,) bool.
+
+    The correlation of (direct + reflected at mic i) with (direct + reflected at mic j) peaks
+    at the delay d and, from the cross terms, at d + Delta_j (direct at i with the reflection
+    at j) and d - Delta_i (image method, textbook).  A second peak within two samples of one
+    of those, for a source height within 2 sd of the given one, is the ground's and not an
+    ambiguity of the direct sound.  (Had the highest peak been a cross term, the direct one
+    would sit at d - Delta_j or d + Delta_i: not recognised, the pair stays ambiguous.)
+    """
+    n_pairs = len(delays.pairs)
+    out = np.zeros(n_pairs, bool)
+    if delays.second_lag_s is None:
+        return out
+    src = np.asarray(source_m, dtype=float).reshape(3)
+    mics = np.asarray(mic_positions_m, dtype=float)
+    ok = (mics[:, 2] > 0) & (mics[:, 2] <= MAX_MIC_HEIGHT_M)
+    sd = float(source_z_sd_m)
+    heights = (np.clip(src[2] + sd * np.linspace(-2, 2, 9), _MIN_SOURCE_Z_M, None) if sd > 0
+               else np.array([max(src[2], _MIN_SOURCE_Z_M)]))
+    lags, _ = _ground_paths(src, mics, heights, sound_speed_mps, wind_mps)  # (H, N)
+    tol = 2.0 / float(delays.sample_rate_hz)
+    ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]
+    d, second = np.asarray(delays.delay_s, float), np.asarray(delays.second_lag_s, float)
+    for k in range(n_pairs):
+        i, j = ii[k], jj[k]
+        if not (ok[i] or ok[j]) or not np.isfinite(d[k]):
+            continue
+        cand = np.concatenate([d[k] + lags[:, j] * ok[j], d[k] - lags[:, i] * ok[i]])
+        out[k] = bool(np.any(np.abs(cand - second[k]) <= tol))
+    return out

@@ -110,6 +110,7 @@ class DelaySet:
     spectral_weight: np.ndarray | None = None
     spectral_power: np.ndarray | None = None
     bias_covariance_s2: np.ndarray | None = None
+    second_lag_s: np.ndarray | None = None
 
     def with_bias(self, bias_covariance_s2) -> DelaySet:
         """The same set with a (P, P) second moment of systematic delay errors (reflections)
@@ -144,6 +145,7 @@ class DelaySet:
             spectral_power=self.spectral_power,
             bias_covariance_s2=None if self.bias_covariance_s2 is None
             else self.bias_covariance_s2[np.ix_(idx, idx)],
+            second_lag_s=None if self.second_lag_s is None else self.second_lag_s[idx],
         )
 
     def to_dicts(self, mic_names) -> list[dict]:
@@ -306,9 +308,11 @@ def _coarse_peaks(r, max_lag_samp, fs, band_hz):
     locmax[:, 1:-1] = (seg[:, 1:-1] > seg[:, :-2]) & (seg[:, 1:-1] >= seg[:, 2:])
     cand = np.where(locmax & inside & away, seg, -np.inf)
     second = cand.max(axis=1)
+    second_lag_s = lags[np.argmax(cand, axis=1)] / fs
     second_ratio = np.where(np.isfinite(second) & (peak > 0), second / np.maximum(peak, 1e-12),
                             0.0)
-    return lag0_s, peak, score, np.clip(second_ratio, 0.0, None), seg, lags, inside
+    return (lag0_s, peak, score, np.clip(second_ratio, 0.0, None), seg, lags, inside,
+            second_lag_s)
 
 
 def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=None,
@@ -371,7 +375,7 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     mask = _band_mask(freqs, band_hz, fs)
     if not mask.any():
         raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
-    (lag0, peak, score, second, seg, lags, inside), lo_hi = phat_peaks(mask)
+    (lag0, peak, score, second, seg, lags, inside, second_lag), lo_hi = phat_peaks(mask)
 
     # Coherence after removing the coarse lag (frequency smoothing, Daniell estimator).
     width = int(np.ceil(_COHERENCE_DOF * nfft / n_samp))
@@ -407,7 +411,8 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         r2 = sfft.irfft(v[None, :] * scot, nfft, axis=-1)
         norm2 = sfft.irfft(v[None, :] * np.abs(scot), nfft, axis=-1)[:, 0]
         r2 = r2 / np.maximum(norm2, 1e-300)[:, None]
-        lag2, _, score, second, _, _, _ = _coarse_peaks(r2, max_lag_samp, fs, lo_hi)
+        lag2, _, score, second, _, _, _, second_lag = _coarse_peaks(r2, max_lag_samp, fs,
+                                                                    lo_hi)
         moved = np.abs(lag2 - lag0) > 0.5 / fs
         if moved.any():
             rot_m = cross[moved] * np.exp(1j * omega[None, :] * lag2[moved, None])
@@ -461,10 +466,11 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     if offsets_s is not None:
         off = np.asarray(offsets_s, dtype=float)
         delay = delay + off[jj] - off[ii]
+        second_lag = second_lag + off[jj] - off[ii]
 
     curves = None
     if keep_curves:  # GCC-PHAT over the final band, for the diagnostics figure
-        (_, _, _, _, seg, lags, inside), _ = phat_peaks(mask)
+        (_, _, _, _, seg, lags, inside, _), _ = phat_peaks(mask)
         curves = []
         step = max(1, int(np.ceil(seg.shape[1] / 1000)))
         near = int(np.ceil(1e-3 * fs))  # every sample within 1 ms of the delay
@@ -479,7 +485,7 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         second_ratio=second, quality=tuple(quality), t_s=float(t_s),
         duration_s=n_samp / fs, band_hz=lo_hi, sample_rate_hz=fs, max_lag_s=max_lag_s,
         curves=curves, spectral_freqs_hz=spec_f, spectral_weight=spec_w,
-        spectral_power=spec_p,
+        spectral_power=spec_p, second_lag_s=second_lag,
     )
 
 

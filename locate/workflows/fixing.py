@@ -175,6 +175,10 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
                              keep_curves=keep_curves)
     delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
                              keep_curves)
+    # the ground reflection's bias in every pair's uncertainty; its peak is no ambiguity
+    delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
+                                    source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
+                                    mic_names=names)
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
     amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
@@ -191,8 +195,6 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     sds = declared_sds(site)
     sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0)
     models = model_error_sds(site, sds, dims)
-    delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
-                                    source_z_sd_m=source_z_sd_m, mic_names=names)
     if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
         extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
                                                  source_z_m=source_z_m, reject=reject,
@@ -239,7 +241,7 @@ def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
     """``delays`` with the ground-reflection bias term in their covariance
     (:mod:`locate.accuracy.reflections`), evaluated at a first, timing-only fix; unchanged when
     no first fix can be made."""
-    from locate.accuracy.reflections import with_ground_reflection
+    from locate.accuracy.reflections import ground_echo_pairs, with_ground_reflection
     from locate.errors import TdoaError
 
     try:
@@ -252,8 +254,15 @@ def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
         return delays
     sd = float(source_z_sd_m) if dims == 2 else float(np.sqrt(max(
         first.covariance_m2[2, 2], 0.0)) if np.isfinite(first.covariance_m2[2, 2]) else 0.0)
-    return with_ground_reflection(delays, first.position_m, positions_m, cond.sound_speed_mps,
-                                  cond.wind_mps, source_z_sd_m=sd)
+    out = with_ground_reflection(delays, first.position_m, positions_m, cond.sound_speed_mps,
+                                 cond.wind_mps, source_z_sd_m=sd)
+    echo = ground_echo_pairs(out, first.position_m, positions_m, cond.sound_speed_mps,
+                             cond.wind_mps, source_z_sd_m=sd)
+    amb = np.array([q == "ambiguous" for q in out.quality]) & echo
+    if amb.any():  # the next peak is the ground reflection's, not a second direct path
+        out = replace(out, quality=tuple("good" if a else q
+                                         for q, a in zip(out.quality, amb, strict=True)))
+    return out
 
 
 def air_fit_extra(site, fix, delays, cond, *, dims=2, source_z_sd_m=0.0, solve_wind=False):

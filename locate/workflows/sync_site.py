@@ -163,6 +163,27 @@ def calibrate(site, recordings, cond, spans, points_m, *, band_hz=None, point_sd
     return fit, reports
 
 
+def _regrade_ground_echoes(ev, point, pos, cond, names):
+    """As ``fix``: a pair whose next peak is the ground reflection's is not ambiguous."""
+    from dataclasses import replace
+
+    from locate.accuracy.reflections import ground_echo_pairs
+
+    echo = ground_echo_pairs(ev.delays, point, pos, cond.sound_speed_mps, cond.wind_mps)
+    amb = np.array([q == "ambiguous" for q in ev.delays.quality])
+    if not (amb & echo).any():
+        return
+    ev.delays = replace(ev.delays, quality=tuple(
+        "good" if a else q for q, a in zip(ev.delays.quality, amb & echo, strict=True)))
+    head = "ambiguous correlation of the reference sound"
+    left = [f"{names[i]}-{names[j]}" for (i, j), a in zip(ev.delays.pairs, amb & ~echo,
+                                                          strict=True) if a]
+    ev.warnings = [w for w in ev.warnings if not w.startswith(head)]
+    if left:
+        ev.warnings.append(head + " (several near-equal peaks: an echo?) for pair(s) "
+                           + ", ".join(left))
+
+
 def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m):
     names = site.mic_names
     pos = site.positions_m
@@ -180,6 +201,7 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
         # the same delay model as fix: the ground reflection's bias (the point is known)
         ev.delays = with_ground_reflection(ev.delays, point, pos, cond.sound_speed_mps,
                                            cond.wind_mps)
+        _regrade_ground_echoes(ev, point, pos, cond, names)
         delta, cov, r, dropped = clock_corrections(
             ev.delays, point, pos, cond.sound_speed_mps, wind_mps=cond.wind_mps,
             sound_speed_sd_mps=sd_c, position_sd_m=pos_sd, point_sd_m=point_sd_m)
