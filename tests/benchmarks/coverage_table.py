@@ -100,7 +100,9 @@ def trial(family, rng):
             written, pairs, c, margin_s=5e-4))
         d = reflection_uncertainty(d, written, cond, source_z_m=ASSUMED_SOURCE_Z_M,
                                    source_z_sd_m=ASSUMED_SOURCE_Z_SD_M)
-        fix, _ = fix_with_budget(written, d, c, sds=sds, source_z_m=ASSUMED_SOURCE_Z_M, dims=2)
+        models = {"source_z_m": ASSUMED_SOURCE_Z_SD_M, "sound_speed_mps": sds["sound_speed_mps"]}
+        fix, _ = fix_with_budget(written, d, c, sds=sds, source_z_m=ASSUMED_SOURCE_Z_M, dims=2,
+                                 model_sds=models)
     except TdoaError:
         return None
     cov = np.asarray(fix.covariance_m2, float)[:2, :2]
