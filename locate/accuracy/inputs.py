@@ -190,9 +190,11 @@ def has_nuisance(sds) -> bool:
     return sds is not None and any(sds["declared"].values())
 
 
-def with_source_height(sds, sd_m):
-    """``sds`` with the sd of a 2-D fix's given source height (0: the height is exact)."""
+def with_source_height(sds, sd_m, ground_z_m=0.0):
+    """``sds`` with the sd of a 2-D fix's given source height (0: the height is exact) and
+    the ground's z in the site's frame (heights are kept above it; None: not known)."""
     out = dict(sds)
     out["source_height_m"] = float(sd_m)
+    out["ground_z_m"] = ground_z_m
     out["declared"] = {**sds["declared"], "source_height": float(sd_m) > 0}
     return out

@@ -77,11 +77,12 @@ def nuisance_jacobians(source_m, mic_positions_m, pairs, sound_speed_mps, wind_m
     # square of the delay change over the three-point Gauss-Hermite rule (z0 -+ sqrt(3) sd,
     # weights 1/6, 2/3, 1/6; heights kept >= 0): columns sqrt(w_k) (d(z_k) - d(z0)), sd 1.
     sd_z = float(sds.get("source_height_m", 0.0) or 0.0)
+    ground = sds.get("ground_z_m", 0.0)  # None: no ground known (a WGS84 frame)
     d0 = predict_delays(src, mics, pairs, c, w)
     cols = []
     for t, wt in ((-np.sqrt(3.0), 1.0 / 6.0), (np.sqrt(3.0), 1.0 / 6.0)):
         s_k = src.copy()
-        s_k[2] = max(src[2] + t * sd_z, 0.0)
+        s_k[2] = src[2] + t * sd_z if ground is None else max(src[2] + t * sd_z, ground)
         cols.append(np.sqrt(wt) * (predict_delays(s_k, mics, pairs, c, w) - d0))
     g_z = np.stack(cols, axis=1)
     return {

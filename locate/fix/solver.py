@@ -459,8 +459,9 @@ def _model_explanation(pos, tau, cov, used, sound_speed_mps, wind_mps, dims, sou
     sd_c = float(model_sds.get("sound_speed_mps", 0.0) or 0.0)
     trials = []
     if dims == 2 and sd_z > 0:
-        trials += [("source height", max(source_z_m + sd_z * t, 0.0), sound_speed_mps)
-                   for t in grid]
+        ground = model_sds.get("ground_z_m", 0.0)
+        trials += [("source height", source_z_m + sd_z * t if ground is None
+                    else max(source_z_m + sd_z * t, ground), sound_speed_mps) for t in grid]
     if sd_c > 0:
         trials += [("sound speed", source_z_m, sound_speed_mps + sd_c * t) for t in grid]
     for what, z, c in trials:

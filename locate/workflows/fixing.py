@@ -176,9 +176,11 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
                              keep_curves)
     # the ground reflection's bias in every pair's uncertainty; its peak is no ambiguity
-    delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
-                                    source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
-                                    mic_names=names)
+    if ground_datum_m(site) is not None:
+        delays = reflection_uncertainty(delays, positions, cond, dims=dims,
+                                        source_z_m=source_z_m,
+                                        source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
+                                        mic_names=names)
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
     amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
@@ -193,7 +195,7 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     from locate.accuracy.inputs import with_source_height
 
     sds = declared_sds(site)
-    sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0)
+    sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0, ground_datum_m(site))
     models = model_error_sds(site, sds, dims)
     if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
         extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
@@ -233,7 +235,14 @@ def model_error_sds(site, sds, dims=2):
                                                air.pressure_kpa)) * TAPED_SURVEY_DEFAULTS[
             "temperature_sd_c"]
     return {"source_z_m": float(sds.get("source_height_m", 0.0) or 0.0) if dims == 2 else 0.0,
-            "sound_speed_mps": sd_c}
+            "sound_speed_mps": sd_c, "ground_z_m": ground_datum_m(site)}
+
+
+def ground_datum_m(site):
+    """z of the ground in the site's frame: 0 for a local site (its z is the height above the
+    ground, docs/site-file.md); None for a WGS84 site, whose z is an ellipsoidal height: the
+    ground under the mics is not known there and the ground reflection is not modelled."""
+    return 0.0 if getattr(site, "coordinates", "local") == "local" else None
 
 
 def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
@@ -272,7 +281,8 @@ def air_fit_extra(site, fix, delays, cond, *, dims=2, source_z_sd_m=0.0, solve_w
     from locate.accuracy.inputs import declared_sds, has_nuisance, with_source_height
     from locate.accuracy.propagation import nuisance_delay_covariance
 
-    sds = with_source_height(declared_sds(site), source_z_sd_m if dims == 2 else 0.0)
+    sds = with_source_height(declared_sds(site), source_z_sd_m if dims == 2 else 0.0,
+                             ground_datum_m(site))
     if not has_nuisance(sds):
         return None
     keep = ["mic_positions", "clocks", "source_height"] + ([] if solve_wind else ["wind"])

@@ -191,7 +191,7 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
     pos_sd = np.array([m.position_sd_m or 0.0 for m in site.mics])
     measured, reports, ref = [], [], None
     from locate.accuracy.reflections import with_ground_reflection
-    from locate.workflows.fixing import search_lags_s
+    from locate.workflows.fixing import ground_datum_m, search_lags_s
 
     for (a, b), point in zip(spans, points_m, strict=True):
         signals, residual = rec.read(a, b)
@@ -199,9 +199,10 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
                               band_hz=band_hz, mic_names=names,
                               max_lag_s=search_lags_s(site, cond, all_pairs(len(names))))
         # the same delay model as fix: the ground reflection's bias (the point is known)
-        ev.delays = with_ground_reflection(ev.delays, point, pos, cond.sound_speed_mps,
-                                           cond.wind_mps)
-        _regrade_ground_echoes(ev, point, pos, cond, names)
+        if ground_datum_m(site) is not None:
+            ev.delays = with_ground_reflection(ev.delays, point, pos, cond.sound_speed_mps,
+                                               cond.wind_mps)
+            _regrade_ground_echoes(ev, point, pos, cond, names)
         delta, cov, r, dropped = clock_corrections(
             ev.delays, point, pos, cond.sound_speed_mps, wind_mps=cond.wind_mps,
             sound_speed_sd_mps=sd_c, position_sd_m=pos_sd, point_sd_m=point_sd_m)
