@@ -55,12 +55,14 @@ def _band(band_hz):
 
 
 def locate(site, *, start_s=None, stop_s=None, window_s=None, band_hz=None, dims=2,
-           source_z_m=0.0, sound_speed_mps=None, threshold_db=10.0, reject=True,
-           solve_air=False, solve_wind=False) -> dict:
+           source_z_m=None, source_z_sd_m=None, sound_speed_mps=None, threshold_db=10.0,
+           reject=True, solve_air=False, solve_wind=False) -> dict:
     """Locate a stationary source, as ``tdoa fix`` does.
 
     Without a span every detected event is fixed; with ``start_s``/``stop_s`` one fix of the
-    span; with ``window_s`` too, one fix per window.
+    span; with ``window_s`` too, one fix per window.  ``source_z_m`` (2-D fixes) is the
+    source height with its uncertainty ``source_z_sd_m``; without it the command's default
+    (1 m +- 0.6 m, "assumed") is used; given without an sd it carries 0.5 m.
 
     Returns
     -------
@@ -77,10 +79,17 @@ def locate(site, *, start_s=None, stop_s=None, window_s=None, band_hz=None, dims
     """
     if (start_s is None) != (stop_s is None):
         raise OptionError("give both start_s and stop_s, or neither", field="start_s")
+    from locate.workflows.fixing import resolve_source_height
+
+    z = 0.0 if source_z_m is None else float(source_z_m)
+    if source_z_m is not None and z == 0.0 and source_z_sd_m is None:
+        source_z_sd_m = 0.5  # a given 0 m (resolve_source_height reads a bare 0.0 as unset)
+    z, z_sd, basis = resolve_source_height(z, source_z_sd_m, dims)
     s = _site(site, dims)
     return locate_recordings(s, open_recordings(s), start_s=start_s, stop_s=stop_s,
                              window_s=window_s, band_hz=_band(band_hz), dims=dims,
-                             source_z_m=source_z_m, sound_speed_mps=sound_speed_mps,
+                             source_z_m=z, source_z_sd_m=z_sd, source_z_basis=basis,
+                             sound_speed_mps=sound_speed_mps,
                              threshold_db=threshold_db, reject=reject, solve_air=solve_air,
                              solve_wind=solve_wind)
 

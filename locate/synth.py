@@ -469,7 +469,7 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
                     temperature_c=20.0, relative_humidity=50.0, pressure_kpa=101.325,
                     wind_mps=None, sound_speed_mps=None, snr_db=None, noise_rms=None,
                     ground_reflection=None, absorption=True, clock_offsets_s=None,
-                    clock_drift_ppm=None, rng=None):
+                    clock_drift_ppm=None, rng=None, walls=()):
     """Record stationary emissions at the mics.
 
     Parameters
@@ -492,6 +492,9 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
         Clock faults (module docstring); drift is evaluated at the exact sample times.
     rng : numpy.random.Generator, optional
         Waveforms are drawn first (in event order), then the noise; default ``default_rng(0)``.
+    walls : sequence of (point_m (3,), normal (3,), coefficient)
+        Reflecting planes (a building face): the first-order image source mirrored across each
+        plane (image method, textbook), heard only by mics on the source's side of it.
 
     Returns
     -------
@@ -524,7 +527,19 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
             r_i = np.linalg.norm(mics - img, axis=1)
             lag = air.travel_time_s(img, mics, c, wv) - tau_d
             image_arr[e] = arrivals[e] + lag
-        n_x = x.size + int(np.ceil(lag.max() * fs))
+        echoes = []  # (coefficient, distance (N,), lag (N,)) of each wall's image
+        for point, normal, coef in walls:
+            p0 = np.asarray(point, float).reshape(3)
+            nv = np.asarray(normal, float).reshape(3)
+            nv = nv / np.linalg.norm(nv)
+            side = (src - p0) @ nv
+            w_img = src - 2.0 * side * nv
+            seen = np.sign((mics - p0) @ nv) == np.sign(side)
+            w_lag = air.travel_time_s(w_img, mics, c, wv) - tau_d
+            echoes.append((float(coef) * seen, np.linalg.norm(mics - w_img, axis=1),
+                           np.where(seen, w_lag, 0.0)))
+        lag_max = max([float(lag.max())] + [float(e[2].max()) for e in echoes])
+        n_x = x.size + int(np.ceil(lag_max * fs))
         pad = 32 + _HALF_TAPS + int(np.ceil(np.max(np.abs(drift)) * n_x))
         n_buf = sfft.next_fast_len(n_x + 2 * pad, real=True)
         buf = np.zeros(n_buf)
@@ -542,6 +557,10 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
             g_i = (_absorb_gain(f, r_i[:, None], temperature_c, relative_humidity, pressure_kpa)
                    if absorption else 1.0) / r_i[:, None]
             y = y + float(ground_reflection) * spec * g_i * np.exp(-2j * np.pi * f * lag[:, None])
+        for coef, r_w, w_lag in echoes:
+            g_w = (_absorb_gain(f, r_w[:, None], temperature_c, relative_humidity, pressure_kpa)
+                   if absorption else 1.0) / r_w[:, None]
+            y = y + coef[:, None] * spec * g_w * np.exp(-2j * np.pi * f * w_lag[:, None])
         rec = (arrivals[e] - off) * (1.0 + drift)  # clock time of u = 0 at each mic
         n0 = np.floor(rec * fs).astype(np.int64) - pad
         if np.all(drift == 0):

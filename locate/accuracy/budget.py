@@ -45,10 +45,12 @@ import numpy as np
 
 from locate.accuracy.inputs import (
     TAPED_SURVEY_DEFAULTS,
+    TIMING_ONLY,
     declared_sds,
     has_nuisance,
     nuisance_sds,
     sound_speed_slope_mps_per_c,
+    timing_only,
 )
 from locate.accuracy.monte_carlo import MC_AGREEMENT, axes_disagreement, monte_carlo_covariance
 from locate.accuracy.next_mic import GDOP_LIMIT, geometry_check, suggest_mic
@@ -102,9 +104,12 @@ _HINTS = {
     "sound_speed": "measure the air temperature",
     "clocks": "synchronise the recorder clocks",
     "wind": "measure the wind speed and direction",
+    "reflections": "the ground reflection limits the timing: mics mounted on the ground "
+                   "(boundary plates) avoid it",
+    "source_height": "find out how high the source was (its height is only assumed)",
 }
-_NOT_DECLARED = ("survey uncertainty not declared: mic positions, clocks and air are treated as "
-                 "exact (declare them in the site file, e.g. a [survey] table)")
+_NOT_DECLARED = ("survey uncertainty not declared: " + TIMING_ONLY
+                 + " (declare them in the site file, e.g. a [survey] table)")
 
 
 def _r(v, nd=4):
@@ -205,7 +210,9 @@ def uncertainty_budget(fix, delays, mic_positions_m, sound_speed_mps, *, sds, wi
         hint = _HINTS[dominant].format(mic=worst_mic)
     notes = []
     if not declared["mic_positions"]:
-        notes.append(_NOT_DECLARED)
+        notes.append(_NOT_DECLARED if timing_only(sds) else
+                     "survey uncertainty not declared: the mic positions are treated as exact "
+                     "(declare them in the site file, e.g. a [survey] table)")
     if sds["defaults"]:
         notes.append("taped-survey defaults used for " + ", ".join(sds["defaults"]))
     if np.any(np.asarray(sds["clock_s"]) > 0) and len(np.unique(sds["clock_group"])) == 1:
@@ -370,7 +377,8 @@ def extra_covariance_hook(mic_positions_m, sds, *, locate=locate_source, passes=
 
 
 _LABELS = {"timing": "timing", "mic_positions": "mic positions", "sound_speed": "sound speed",
-           "clocks": "clocks", "wind": "wind", "unexplained": "unexplained misfit"}
+           "clocks": "clocks", "wind": "wind", "unexplained": "unexplained misfit",
+           "reflections": "ground reflection", "source_height": "source height"}
 
 
 def budget_summary(budget) -> str:
@@ -381,5 +389,6 @@ def budget_summary(budget) -> str:
              if v is not None and v >= 0.005]
     line = "budget: " + ", ".join(parts) + " - " + budget["hint"]
     if not budget["declared"].get("mic_positions", True):
-        line += " (survey uncertainty not declared)"
+        line += (" (survey uncertainty not declared: timing-only, mic positions, clocks and air "
+                 "taken as exact)")
     return line

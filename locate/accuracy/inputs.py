@@ -17,6 +17,9 @@ __all__ = [
     "nuisance_sds",
     "declared_sds",
     "has_nuisance",
+    "timing_only",
+    "TIMING_ONLY",
+    "with_source_height",
     "sound_speed_slope_mps_per_c",
 ]
 
@@ -36,7 +39,7 @@ is assumed: undeclared uncertainties are zero."""
 
 def nuisance_sds(n_mics, *, position_sd_m=0.0, height_sd_m=None, clock_sd_s=0.0,
                  clock_group=None, sound_speed_sd_mps=0.0, wind_sd_mps=0.0,
-                 temperature_sd_c=0.0):
+                 temperature_sd_c=0.0, source_height_sd_m=0.0):
     """Declared standard deviations in the form the budget functions take.
 
     Parameters
@@ -57,6 +60,8 @@ def nuisance_sds(n_mics, *, position_sd_m=0.0, height_sd_m=None, clock_sd_s=0.0,
         sd of each horizontal wind component, m/s.
     temperature_sd_c : float
         Kept for the report only.
+    source_height_sd_m : float
+        sd of the given source height of a 2-D fix, metres.
 
     Returns
     -------
@@ -82,7 +87,9 @@ def nuisance_sds(n_mics, *, position_sd_m=0.0, height_sd_m=None, clock_sd_s=0.0,
         "declared": {"mic_positions": bool(np.any(pos > 0) or np.any(hgt > 0)),
                      "clocks": bool(np.any(clk > 0)),
                      "sound_speed": float(sound_speed_sd_mps) > 0,
-                     "wind": float(wind_sd_mps) > 0},
+                     "wind": float(wind_sd_mps) > 0,
+                     "source_height": float(source_height_sd_m) > 0},
+        "source_height_m": float(source_height_sd_m),
         "defaults": [],
     }
 
@@ -162,6 +169,32 @@ def declared_sds(site):
     return out
 
 
+TIMING_ONLY = ("timing-only uncertainty: nothing was declared about the mic survey, the "
+               "clocks or the air, so they are taken as exact and the ellipse shows the "
+               "correlation timing alone")
+"""The one sentence every command (and the report, in its own words) gives when nothing but
+the timing enters an uncertainty (docs/uncertainty.md, rule 2)."""
+
+
+def timing_only(sds) -> bool:
+    """True when no survey, clock or air uncertainty is declared (the source height's, which
+    a 2-D fix always assumes, does not count)."""
+    if sds is None:
+        return True
+    d = sds["declared"]
+    return not any(d.get(k) for k in ("mic_positions", "clocks", "sound_speed", "wind"))
+
+
 def has_nuisance(sds) -> bool:
     """True when any declared nuisance sd is non-zero."""
     return sds is not None and any(sds["declared"].values())
+
+
+def with_source_height(sds, sd_m, ground_z_m=0.0):
+    """``sds`` with the sd of a 2-D fix's given source height (0: the height is exact) and
+    the ground's z in the site's frame (heights are kept above it; None: not known)."""
+    out = dict(sds)
+    out["source_height_m"] = float(sd_m)
+    out["ground_z_m"] = ground_z_m
+    out["declared"] = {**sds["declared"], "source_height": float(sd_m) > 0}
+    return out

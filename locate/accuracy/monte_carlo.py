@@ -85,7 +85,9 @@ def draw_delays(source_m, mic_positions_m, pairs, timing_covariance_s2, sound_sp
     c = float(sound_speed_mps) + rng.standard_normal(m) * sds["sound_speed_mps"]
     dw = np.zeros((m, 3))
     dw[:, :2] = rng.standard_normal((m, 2)) * sds["wind_mps"]
-    t = travel_time_s(src[None, None, :], true_mics, c[:, None], (w + dw)[:, None, :]) + clock
+    srcs = np.repeat(src[None, :], m, axis=0)
+    srcs[:, 2] += rng.standard_normal(m) * float(sds.get("source_height_m", 0.0) or 0.0)
+    t = travel_time_s(srcs[:, None, :], true_mics, c[:, None], (w + dw)[:, None, :]) + clock
     noise = rng.standard_normal((m, len(pairs))) @ _sqrt_psd(
         np.nan_to_num(np.asarray(timing_covariance_s2, dtype=float))).T
     return t[:, pairs[:, 1]] - t[:, pairs[:, 0]] + noise

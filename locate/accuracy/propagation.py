@@ -21,7 +21,8 @@ from locate.physics.air import travel_time_gradient
 __all__ = ["COMPONENTS", "nuisance_jacobians", "nuisance_delay_covariance",
            "component_covariances", "ellipse_area_m2"]
 
-COMPONENTS = ("timing", "mic_positions", "sound_speed", "clocks", "wind")
+COMPONENTS = ("timing", "reflections", "mic_positions", "sound_speed", "clocks", "wind",
+              "source_height")
 """Budget components, in the order they are reported."""
 
 _DC_STEP_MPS = 0.01  # central-difference steps (delays are smooth in c and w)
@@ -46,7 +47,9 @@ def nuisance_jacobians(source_m, mic_positions_m, pairs, sound_speed_mps, wind_m
     dict
         component -> ``(G, sd)`` with G of shape (P, K) (seconds per unit of the nuisance)
         and sd of shape (K,): ``mic_positions`` (K = 3N, columns x1 y1 z1 x2 ...),
-        ``clocks`` (K = number of clock groups), ``sound_speed`` (K = 1), ``wind`` (K = 2).
+        ``clocks`` (K = number of clock groups), ``sound_speed`` (K = 1), ``wind`` (K = 2),
+        ``source_height`` (K = 2: the given height of a 2-D fix, sd ``source_height_m``,
+        as the mean square of the delay change over a Gauss-Hermite rule; sds 1).
     """
     src = np.asarray(source_m, dtype=float).reshape(3)
     mics = np.asarray(mic_positions_m, dtype=float)
@@ -69,7 +72,21 @@ def nuisance_jacobians(source_m, mic_positions_m, pairs, sound_speed_mps, wind_m
     g_w = np.stack([(predict_delays(src, mics, pairs, c, w + _DW_STEP_MPS * e)
                      - predict_delays(src, mics, pairs, c, w - _DW_STEP_MPS * e))
                     / (2 * _DW_STEP_MPS) for e in np.eye(3)[:2]], axis=1)
+    # Source height of a 2-D fix (given, not solved).  Near the mics' height the delays
+    # depend on it to second order only (a zero first derivative), so its term is the mean
+    # square of the delay change over the three-point Gauss-Hermite rule (z0 -+ sqrt(3) sd,
+    # weights 1/6, 2/3, 1/6; heights kept >= 0): columns sqrt(w_k) (d(z_k) - d(z0)), sd 1.
+    sd_z = float(sds.get("source_height_m", 0.0) or 0.0)
+    ground = sds.get("ground_z_m", 0.0)  # None: no ground known (a WGS84 frame)
+    d0 = predict_delays(src, mics, pairs, c, w)
+    cols = []
+    for t, wt in ((-np.sqrt(3.0), 1.0 / 6.0), (np.sqrt(3.0), 1.0 / 6.0)):
+        s_k = src.copy()
+        s_k[2] = src[2] + t * sd_z if ground is None else max(src[2] + t * sd_z, ground)
+        cols.append(np.sqrt(wt) * (predict_delays(s_k, mics, pairs, c, w) - d0))
+    g_z = np.stack(cols, axis=1)
     return {
+        "source_height": (g_z, np.full(2, 1.0 if sd_z > 0 else 0.0)),
         "mic_positions": (g_pos, sd_pos),
         "clocks": (g_clk, sd_clk),
         "sound_speed": (g_c, np.array([sds["sound_speed_mps"]])),
@@ -148,7 +165,10 @@ def component_covariances(source_m, mic_positions_m, delays, sound_speed_mps, *,
     idx = _usable_pairs(delays, used, dropped_pairs)
     pairs = np.asarray(delays.pairs, dtype=int)[idx]
     jac = nuisance_jacobians(src, mics, pairs, sound_speed_mps, wind_mps, sds)
-    q = {"timing": np.asarray(delays.covariance_s2, dtype=float)[np.ix_(idx, idx)]}
+    cov = np.asarray(delays.covariance_s2, dtype=float)[np.ix_(idx, idx)]
+    bias = getattr(delays, "bias_covariance_s2", None)
+    bias = np.zeros_like(cov) if bias is None else np.asarray(bias, float)[np.ix_(idx, idx)]
+    q = {"timing": cov - bias, "reflections": bias}
     for name, (g, sd) in jac.items():
         q[name] = (g * sd**2) @ g.T
     q_total = sum(q.values())

@@ -218,11 +218,47 @@ def span_options(f):
     return f
 
 
+class Height(float):
+    """A source height (float, metres) with its standard deviation ``sd`` (None: not given)."""
+
+    sd = None
+
+
+class _HeightType(click.ParamType):
+    """``Z`` or ``Z+-SD`` (also ``Z±SD``), metres."""
+
+    name = "Z[+-SD]"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, float | int):
+            return value
+        text = str(value).strip().replace("±", "+-")
+        z_text, _, sd_text = text.partition("+-")
+        try:
+            h = Height(float(z_text))
+            if sd_text:
+                h.sd = float(sd_text)
+        except ValueError:
+            self.fail(f"{value!r} is not a height: give metres, e.g. 1.0 or 1.0+-0.5", param,
+                      ctx)
+        if not math.isfinite(h) or (h.sd is not None
+                                    and not (math.isfinite(h.sd) and h.sd >= 0)):
+            self.fail(f"{value!r}: the height and its uncertainty must be finite, the "
+                      "uncertainty >= 0", param, ctx)
+        return h
+
+
+HEIGHT = _HeightType()
+
+
 def geometry_options(f):
     f = click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True,
                      help="2: horizontal fix at a given source height; 3: full 3-D fix.")(f)
-    f = click.option("--source-z", "source_z_m", type=FINITE, default=0.0, show_default=True,
-                     help="Source height for 2-D fixes, metres (same datum as the mics).")(f)
+    f = click.option("--source-z", "source_z_m", type=HEIGHT, default=0.0,
+                     help="Source height for 2-D fixes, metres above the ground (same datum as "
+                          "the mics), optionally with its uncertainty: 1.0 or 1.0+-0.5.  fix: "
+                          "default 1 m +- 0.6 m (a source between the ground and 2 m); "
+                          "track: default 0.")(f)
     f = click.option("--sound-speed", "sound_speed_mps", type=FINITE, default=None,
                      help="Override the sound speed from the site's air, m/s.")(f)
     return f
@@ -289,7 +325,10 @@ def print_fixes(ctx, site, cond, result):
     for k, f in enumerate(result["fixes"], 1):
         x, y, z = f["position_m"]
         e = f["ellipse95"]
-        height = f"z {z:.2f} m (solved)" if f["dims"] == 3 else f"z {z:.2f} m (given)"
+        sd_z = result.get("source_z_sd_m")
+        height = (f"z {z:.2f} m (solved)" if f["dims"] == 3 else
+                  f"z {z:.2f} m ± {sd_z:.2f} m ({result.get('source_z_basis', 'given')})"
+                  if sd_z else f"z {z:.2f} m (given)")
         when = f"{f['t_s']:.3f} s" + (f" ({f['t_utc']})" if f.get("t_utc") else "")
         echo(ctx, f"#{k} heard at {when}  ->  x {x:.2f} m, y {y:.2f} m, {height}")
         echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} x "

@@ -60,21 +60,25 @@ from locate.errors import NothingFoundError, OptionError
               help="With --chunk: run the chunks on this Dask scheduler (tcp://host:port); "
                    "its workers must see the files at the same paths.")
 @timeline_option
+@click.option("--source-z-sd", "source_z_sd_m", type=click.FloatRange(min=0.0), default=None,
+              help="Uncertainty (one standard deviation, m) of --source-z; default 0.5 m for a "
+                   "given height, 0.6 m for the assumed 1 m.  0: the height is exact.")
 @field_options
 @click.pass_context
 @transactional
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
         chunk_s=None, chunk_overlap_s=30.0, scheduler=None, timeline_path=None,
-        geojson_path=None,
-        solve_air=False, solve_wind=False, events_choice=None):
+        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None,
+        source_z_sd_m=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.fix.air_solve import summary_lines as air_summary
     from locate.io.audio import open_recordings
-    from locate.workflows.fixing import conditions_for
+    from locate.workflows.fixing import conditions_for, resolve_source_height
     from locate.workflows.locating import locate_recordings
 
+    source_z_m, source_z_sd_m, z_basis = resolve_source_height(source_z_m, source_z_sd_m, dims)
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
     from locate.cli.sweep import check_sweep_args, run_sweep
@@ -135,7 +139,8 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     try:
         result = locate_recordings(
             site, rec, start_s=start_s, stop_s=stop_s, window_s=window_s, band_hz=band_hz,
-            dims=dims, source_z_m=source_z_m, sound_speed_mps=sound_speed_mps,
+            dims=dims, source_z_m=source_z_m, source_z_sd_m=source_z_sd_m,
+            source_z_basis=z_basis, sound_speed_mps=sound_speed_mps,
             threshold_db=threshold_db, reject=not no_reject,
             keep_curves=panels_path is not None, solve_air=solve_air, solve_wind=solve_wind,
             events_choice=choice,

@@ -52,7 +52,6 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
     known point; writes a new site file with offset_s filled in."""
     from locate.common import OutputSet
     from locate.io.audio import open_recordings
-    from locate.io.site import dump_site_toml
     from locate.results.documents import write_atomic, write_json
     from locate.workflows.fixing import conditions_for
     from locate.workflows.sync_site import (
@@ -60,7 +59,7 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
         parse_point,
         summary_lines,
         sync_report,
-        synced_site_raw,
+        synced_site_text,
     )
 
     band_hz = parse_band(band)
@@ -87,7 +86,7 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site)
     fit, reports = calibrate(site, rec, cond, spans, points, band_hz=band_hz, point_sd_m=at_sd_m)
-    write_atomic(out_path, dump_site_toml(synced_site_raw(site, fit, out_path)))
+    write_atomic(out_path, synced_site_text(site, fit, out_path))
     staged = OutputSet.current().staged(out_path)
     load(staged or out_path)  # the new file must read back (before it is put in place)
     for line in summary_lines(site, fit):

@@ -102,6 +102,7 @@ class AirFit:
     speed_disagreement_sigma: float
     dims: int = 2
     warnings: list = field(default_factory=list)
+    floored: bool = False
 
     def to_dict(self, mic_names=None) -> dict:
         """The ``"air_fit"`` entry of a fix in the result JSON."""
@@ -118,6 +119,7 @@ class AirFit:
             "wind_mps": [round(float(v), 4) for v in self.wind_mps],
             "chi2": self.chi2, "dof": self.dof, "p_value": self.p_value,
             "residual_rms_s": self.residual_rms_s, "covariance_inflation": self.inflation,
+            "ellipse_kept_at_least_fixed_air": bool(self.floored),
         }
         if self.wind_cov_m2ps2 is not None:
             d["wind_cov_m2ps2"] = self.wind_cov_m2ps2.tolist()
@@ -249,7 +251,8 @@ def _fit(mics, tau, cov, used_idx, start, dims, source_z_m, solve_wind, wind0):
 
 
 def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wind_mps=None,
-              solve_wind=False, dims=2, source_z_m=0.0, exclude=None, mic_names=None) -> AirFit:
+              solve_wind=False, dims=2, source_z_m=0.0, exclude=None, mic_names=None,
+              extra_covariance_s2=None, floor_covariance_m2=None) -> AirFit:
     """Position, effective sound speed (and horizontal wind) from one event's delays.
 
     Parameters
@@ -273,6 +276,17 @@ def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wi
         Mics to leave out if the fit with every connected mic is inconsistent (e.g. those the
         fixed-air integrity test rejected).
     mic_names : sequence of str, optional
+    extra_covariance_s2 : array_like, shape (P, P), optional
+        Declared uncertainties other than the sound speed (and the wind, when it is solved)
+        propagated to the delays (survey, clocks, source height): added to the delay
+        covariance as in :func:`locate.fix.solver.locate_source`, so that solving the air
+        keeps every declared uncertainty in the ellipse.
+    floor_covariance_m2 : array_like, shape (3, 3), optional
+        The fixed-air fix's covariance.  Solving for more unknowns cannot make the position
+        better known (an extra unknown never adds information: the Fisher information of
+        the position with a nuisance parameter is the Schur complement, textbook estimation
+        theory), so the reported covariance is at least this one in every direction (its
+        positive difference is added).
 
     Returns
     -------
@@ -287,7 +301,15 @@ def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wi
     mics = np.asarray(mic_positions_m, dtype=float)
     n = len(mics)
     names = list(mic_names) if mic_names is not None else [f"M{k + 1}" for k in range(n)]
-    tau, cov, connected, _ = arrival_times(delays, n)
+    tau, cov, connected, dropped, closure = arrival_times(delays, n, details=True)
+    if extra_covariance_s2 is not None:  # as locate_source: measurement misfit scaled, then
+        from locate.signal.delays import DelaySet  # the declared part added
+
+        full = DelaySet(**{**delays.__dict__, "covariance_s2": delays.covariance_s2 * closure
+                           + np.asarray(extra_covariance_s2, dtype=float)})
+        keep = np.ones(len(delays.pairs), bool)
+        keep[dropped] = False
+        tau, cov, connected, _ = arrival_times(full.subset(keep), n, closure_p_value=0.0)
     k_unknown = n_unknowns(dims, solve_wind)
     used_idx = np.flatnonzero(connected)
     if used_idx.size < k_unknown + 1:
@@ -330,6 +352,18 @@ def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wi
     p, c, w = model.unpack(x)
     covp = np.zeros((3, 3))
     covp[:dims, :dims] = pcov[:dims, :dims]
+    floored = False
+    if floor_covariance_m2 is not None:
+        fl = np.asarray(floor_covariance_m2, float)[:dims, :dims]
+        if np.all(np.isfinite(fl)) and np.all(np.isfinite(covp)):
+            vals, vecs = np.linalg.eigh(0.5 * ((fl - covp[:dims, :dims])
+                                               + (fl - covp[:dims, :dims]).T))
+            if vals.max() > 1e-9 * max(np.trace(fl), 1e-300):
+                covp[:dims, :dims] += (vecs * np.clip(vals, 0.0, None)) @ vecs.T
+                floored = True
+        elif not np.all(np.isfinite(fl)):
+            covp[:dims, :dims] = fl
+            floored = True
     sd_c = float(np.sqrt(max(pcov[dims, dims], 0.0)))
     wind_cov = pcov[dims + 1:, dims + 1:] if solve_wind else None
     c_site = float(sound_speed_mps)
@@ -365,17 +399,22 @@ def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wi
                   p_value=p_value, residual_rms_s=float(np.sqrt(np.mean(resid**2))),
                   inflation=float(inflation), site_sound_speed_mps=c_site,
                   site_sound_speed_sd_mps=sd_site, implied_temperature_c=t_imp,
-                  speed_disagreement_sigma=float(z_sig), dims=dims, warnings=warnings)
+                  speed_disagreement_sigma=float(z_sig), dims=dims, warnings=warnings,
+                  floored=floored)
 
 
 # ----------------------------------------------------------------------------- result entries
 
-def fit_entry(entry, fx, delays, site, cond, *, dims=2, source_z_m=0.0, solve_wind=False):
+def fit_entry(entry, fx, delays, site, cond, *, dims=2, source_z_m=0.0, solve_wind=False,
+              extra_covariance_s2=None):
     """Solve the air for one fix and update its result entry (in place; also returned).
 
     The entry's position, covariance, ellipses and fit statistics become those of the joint
     fit; the fixed-air values move to ``entry["fixed_air"]``; ``entry["air_fit"]`` holds
     :meth:`AirFit.to_dict`; the fit's warnings are appended to ``entry["warnings"]``.
+    ``extra_covariance_s2``: the declared uncertainties other than the solved ones, propagated
+    to the delays (:func:`locate.workflows.fixing.air_fit_extra`).  The ellipse never comes
+    out smaller than the fixed-air one (``floor_covariance_m2`` of :func:`solve_air`).
     """
     from locate.geometry.ellipses import ellipse
 
@@ -384,7 +423,8 @@ def fit_entry(entry, fx, delays, site, cond, *, dims=2, source_z_m=0.0, solve_wi
     fit = solve_air(site.positions_m, delays, start_m=fx.position_m,
                     sound_speed_mps=cond.sound_speed_mps, air=site.air, wind_mps=cond.wind_mps,
                     solve_wind=solve_wind, dims=dims, source_z_m=source_z_m, exclude=rejected,
-                    mic_names=names)
+                    mic_names=names, extra_covariance_s2=extra_covariance_s2,
+                    floor_covariance_m2=fx.covariance_m2)
     entry["fixed_air"] = {k: entry.get(k) for k in ("position_m", "covariance_m2", "ellipse95",
                                                      "residual_rms_s", "chi2", "dof", "p_value",
                                                      "used_mics", "rejected_mics")}

@@ -28,7 +28,7 @@ import numpy as np
 from scipy import stats
 
 from locate.errors import ConvergenceError, NothingFoundError
-from locate.fix.integrity import assess_fix
+from locate.fix.integrity import _endfire_pairs, assess_fix
 from locate.physics.air import travel_time_gradient, travel_time_s
 from locate.signal.delays import DelaySet
 
@@ -182,6 +182,14 @@ def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VAL
         counts = np.bincount(delays.pairs[idx].ravel(), minlength=n_mics)
         i, j = delays.pairs[idx[k]]
         outlier = mag[k] > max(4.0, 4.0 * np.median(mag))
+        if not outlier:
+            # correlated pair errors (a reflection term) spread one gross error over the
+            # standardised residuals: leave each pair out in turn and take the one whose
+            # absence explains most of the misfit (at least half of it, and 16 = 4 sd squared)
+            k, gain = _best_pair_to_drop(delays, idx, n_mics, chi2, counts)
+            if k is not None:
+                i, j = delays.pairs[idx[k]]
+                outlier = gain > max(16.0, 0.5 * chi2)
         if not outlier or counts[i] <= 2 or counts[j] <= 2:
             inflation = chi2 / dof
             cov = cov * inflation
@@ -190,6 +198,22 @@ def arrival_times(delays: DelaySet, n_mics: int, *, closure_p_value=REJECT_P_VAL
         dropped.append(int(idx[k]))
     out = (tau, cov, connected, dropped)
     return out + (inflation,) if details else out
+
+
+def _best_pair_to_drop(delays, idx, n_mics, chi2, counts):
+    """(position in ``idx``, chi-square drop) of the pair whose exclusion lowers the closure
+    misfit most, among pairs whose mics keep at least two other pairs; (None, 0) if none."""
+    best, gain = None, 0.0
+    for r, k in enumerate(idx):
+        i, j = delays.pairs[k]
+        if counts[i] <= 2 or counts[j] <= 2:
+            continue
+        res = _closure_fit(delays, idx[idx != k], n_mics)
+        if res is None or res[5] <= 0 or not res[2][delays.pairs[idx]].all():
+            continue
+        if chi2 - res[4] > gain:
+            best, gain = r, chi2 - res[4]
+    return best, gain
 
 
 def _closure_fit(delays, idx, n_mics):
@@ -424,9 +448,37 @@ def _solve(problem: _Problem):
     return distinct
 
 
+def _model_explanation(pos, tau, cov, used, sound_speed_mps, wind_mps, dims, source_z_m, x,
+                       model_sds):
+    """Best misfit with the source height (2-D) or the sound speed moved within 3 declared
+    sds: (what, value text, chi2) or None.  A profile over a 13-point grid, each point refined
+    from ``x`` (Levenberg-Marquardt)."""
+    best = None
+    grid = np.linspace(-3.0, 3.0, 13)
+    sd_z = float(model_sds.get("source_z_m", 0.0) or 0.0)
+    sd_c = float(model_sds.get("sound_speed_mps", 0.0) or 0.0)
+    trials = []
+    if dims == 2 and sd_z > 0:
+        ground = model_sds.get("ground_z_m", 0.0)
+        trials += [("source height", source_z_m + sd_z * t if ground is None
+                    else max(source_z_m + sd_z * t, ground), sound_speed_mps) for t in grid]
+    if sd_c > 0:
+        trials += [("sound speed", source_z_m, sound_speed_mps + sd_c * t) for t in grid]
+    for what, z, c in trials:
+        try:
+            prob = _Problem(pos, tau, cov, used, c, wind_mps, dims, z)
+            _, chi2, _ = _refine(prob, x, max_iter=20)
+        except (np.linalg.LinAlgError, ValueError):
+            continue
+        if np.isfinite(chi2) and (best is None or chi2 < best[2]):
+            value = f"{z:.2f} m" if what == "source height" else f"{c:.2f} m/s"
+            best = (what, value, float(chi2))
+    return best
+
+
 def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mps=None,
                   dims=2, source_z_m=0.0, reject=True, mic_names=None,
-                  extra_covariance_s2=None, reject_p_value=REJECT_P_VALUE):
+                  extra_covariance_s2=None, reject_p_value=REJECT_P_VALUE, model_sds=None):
     """Locate a stationary source from measured pair delays.
 
     Parameters
@@ -448,6 +500,12 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
         Added to the delay covariance (e.g. survey and clock uncertainties).
     reject_p_value : float
         Integrity-test threshold.
+    model_sds : dict, optional
+        ``{"source_z_m": sd, "sound_speed_mps": sd}``: model errors the budget declares.
+        Before a mic is rejected, the misfit with the height (2-D) or the sound speed moved
+        within 3 sds is compared with the misfit without the mic; if the model error fits
+        as well (or restores consistency), no mic is rejected and the warning names the
+        likely cause.
 
     Returns
     -------
@@ -516,8 +574,28 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
             k, state = max(trials, key=lambda t: _log_p_value(t[1][3], t[1][5]))
             trial_used = trial_used[trial_used != k]
             trial_rejected.append(names[k])
-        if trial_rejected and (state[5] == 0
-                               or stats.chi2.sf(state[3], state[5]) >= reject_p_value):
+        restored = trial_rejected and (state[5] == 0
+                                       or stats.chi2.sf(state[3], state[5]) >= reject_p_value)
+        model = None
+        if trial_rejected and model_sds:
+            # one bad mic, or a model error within the declared budget (source height, sound
+            # speed)?  The model error wins whenever it fits as well: a healthy mic is never
+            # rejected for an error the budget declares.
+            model = _model_explanation(pos, tau, cov, used, sound_speed_mps, wind_mps, dims,
+                                       source_z_m, x, model_sds)
+            if model is not None and dof > 1:
+                p_model = _log_p_value(model[2], dof - 1)
+                p_mics = _log_p_value(state[3], state[5]) if state[5] > 0 else 0.0
+                if p_model >= math.log(reject_p_value) or p_model >= p_mics:
+                    restored = False
+                    what, value, _ = model
+                    warnings.append(
+                        f"the delays disagree beyond their uncertainty, but no mic is to blame: "
+                        f"they fit as well with the {what} at {value} (within the declared "
+                        f"uncertainty); likely cause: the {what}"
+                        + (" - measure the air temperature on site" if what == "sound speed"
+                           else " - give the source height if it is known"))
+        if restored:
             prob, sols, x, chi2, ok, dof = state
             used, rejected = trial_used, trial_rejected
     p_value = float(stats.chi2.sf(chi2, dof)) if dof > 0 else 1.0
@@ -543,7 +621,12 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
         warnings.append("the geometry cannot fix the source (singular information matrix)")
     cond = np.linalg.cond(info) if np.all(np.isfinite(info)) else np.inf
     if cond > 1e12:
-        warnings.append("poor geometry: the position is nearly undetermined along one axis")
+        line = _endfire_pairs(prob, prob.point(x), names)
+        warnings.append("poor geometry: the position is nearly undetermined along one axis"
+                        + (f"; the source is near the extension of the line through mics "
+                           f"{', '.join(line)} (their delay is at its largest and says little "
+                           "about the position): a mic off that line, toward the source, "
+                           "would help" if line else ""))
     # far outside the array / non-quadratic misfit: warnings and an honest ellipse
     notes, covp[:dims, :dims] = assess_fix(prob, x, chi2, covp[:dims, :dims], inflation, names)
     warnings.extend(notes)

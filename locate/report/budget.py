@@ -15,7 +15,9 @@ __all__ = ["COMPONENT_NAMES", "budget_sections", "assumed_text"]
 
 COMPONENT_NAMES = {"timing": "Timing (correlation noise)", "mic_positions": "Mic positions",
                    "sound_speed": "Sound speed (air temperature)", "clocks": "Recorder clocks",
-                   "wind": "Wind", "unexplained": "Misfit beyond the declared uncertainties"}
+                   "wind": "Wind", "unexplained": "Misfit beyond the declared uncertainties",
+                   "reflections": "Ground reflection (timing bias)",
+                   "source_height": "Source height (assumed)"}
 
 # site-file fields named in ``defaults`` -> the assumption they feed
 _DEFAULT_OF = {"position": "mic_positions", "height": "mic_positions", "temperature": "temperature",
@@ -77,15 +79,29 @@ def budget_sections(result):
                  "share": rf.percent(v, 1),
                  "area": rf.percent(area.get(c), 1) if c in area else rf.DASH,
                  "declared": "yes" if declared.get(c)
-                 else (rf.DASH if c in ("timing", "unexplained") else "no")}
+                 else (rf.DASH if c in ("timing", "unexplained", "reflections") else "no")}
                 for c, v in shares.items()]
         gains = b.get("resurvey_gain") or {}
         mics = [{"name": m, "share": rf.percent(v, 1), "gain": rf.percent(gains.get(m), 1)}
                 for m, v in (b.get("mic_position_shares") or {}).items()]
         out.append({"label": result.get("_label", ""), "fix": str(k), "rows": rows,
-                    "hint": b.get("hint", ""), "note": b.get("note", ""),
+                    "hint": b.get("hint", ""), "note": _plain_note(b),
                     "method": b.get("method", ""), "mics": mics,
                     "gains": any(rf.finite(g) and float(g) > 0 for g in gains.values()),
                     "assumed": assumed_text(b),
                     "dominant": COMPONENT_NAMES.get(b.get("dominant"), b.get("dominant"))})
     return out
+
+
+def _plain_note(b):
+    """The budget's note for a client: no site-file field or table names."""
+    note = b.get("note", "") or ""
+    declared = b.get("declared") or {}
+    if not any(declared.get(k) for k in ("mic_positions", "clocks", "sound_speed", "wind")):
+        return ("Timing-only uncertainty: nothing was stated about how well the microphone "
+                "positions, the recorder clocks or the air are known, so they were taken as "
+                "exact and the ellipse shows the timing of the sound alone")
+    if not declared.get("mic_positions"):
+        return ("The microphone positions were taken as exact (how well they were surveyed "
+                "was not stated)")
+    return note

@@ -208,7 +208,7 @@ def fix_section(result, site):
             "n": str(k), "t": rf.seconds(f.get("t_s"))
             + (f" ({f['t_utc'].replace('T', ' ')})" if f.get("t_utc") else ""),
             "x": rf.num(x, d), "y": rf.num(y, d), "z": rf.num(z, 2),
-            "z_note": "solved" if f.get("dims", result.get("dims")) == 3 else "given",
+            "z_note": _z_note(f, result),
             "lat": _latlon(g)[0], "lon": _latlon(g)[1],
             "major": rf.length(e.get("semi_major_m")), "minor": rf.length(e.get("semi_minor_m")),
             "azimuth": rf.degrees(e.get("azimuth_deg")),
@@ -367,3 +367,12 @@ def cautions_of(results, extra=()):
 # cautions saying the same thing in other words: the first of each theme is kept
 _THEMES = {"compliance": ("compliance",), "competent": ("competent",),
            "people": ("recording people", "speech")}
+
+
+def _z_note(fix, result):
+    """How the height of a fix was set, in plain words: solved, given or assumed (± sd)."""
+    if fix.get("dims", result.get("dims")) == 3:
+        return "solved"
+    basis = result.get("source_z_basis") or "given"
+    sd = result.get("source_z_sd_m")
+    return f"{basis}, ±{sd:g} m" if isinstance(sd, int | float) and sd > 0 else basis

@@ -26,7 +26,7 @@ mic j later than mic i.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import fft as sfft
@@ -37,6 +37,7 @@ __all__ = [
     "geometric_max_lag_s",
     "gcc_phat",
     "estimate_delays",
+    "multipath_bias_s",
     "WEAK_PEAK_SCORE",
     "AMBIGUOUS_RATIO",
 ]
@@ -105,6 +106,23 @@ class DelaySet:
     max_lag_s: np.ndarray
     curves: list | None = None
     warnings: list = field(default_factory=list)
+    spectral_freqs_hz: np.ndarray | None = None
+    spectral_weight: np.ndarray | None = None
+    spectral_power: np.ndarray | None = None
+    bias_covariance_s2: np.ndarray | None = None
+    second_lag_s: np.ndarray | None = None
+
+    def with_bias(self, bias_covariance_s2) -> DelaySet:
+        """The same set with a (P, P) second moment of systematic delay errors (reflections)
+        added to ``covariance_s2`` and ``sd_s``, and kept apart in ``bias_covariance_s2`` (the
+        budget reports it as its own component)."""
+        m = np.asarray(bias_covariance_s2, dtype=float)
+        m = 0.5 * (m + m.T)
+        base = self.covariance_s2 if self.bias_covariance_s2 is None else (
+            self.covariance_s2 - self.bias_covariance_s2)
+        cov = base + m
+        return replace(self, covariance_s2=cov, sd_s=np.sqrt(np.diag(cov)),
+                       bias_covariance_s2=m)
 
     @property
     def n_mics(self) -> int:
@@ -122,7 +140,12 @@ class DelaySet:
             duration_s=self.duration_s, band_hz=self.band_hz,
             sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s[idx],
             curves=None if self.curves is None else [self.curves[k] for k in idx],
-            warnings=list(self.warnings),
+            warnings=list(self.warnings), spectral_freqs_hz=self.spectral_freqs_hz,
+            spectral_weight=None if self.spectral_weight is None else self.spectral_weight[idx],
+            spectral_power=self.spectral_power,
+            bias_covariance_s2=None if self.bias_covariance_s2 is None
+            else self.bias_covariance_s2[np.ix_(idx, idx)],
+            second_lag_s=None if self.second_lag_s is None else self.second_lag_s[idx],
         )
 
     def to_dicts(self, mic_names) -> list[dict]:
@@ -285,9 +308,11 @@ def _coarse_peaks(r, max_lag_samp, fs, band_hz):
     locmax[:, 1:-1] = (seg[:, 1:-1] > seg[:, :-2]) & (seg[:, 1:-1] >= seg[:, 2:])
     cand = np.where(locmax & inside & away, seg, -np.inf)
     second = cand.max(axis=1)
+    second_lag_s = lags[np.argmax(cand, axis=1)] / fs
     second_ratio = np.where(np.isfinite(second) & (peak > 0), second / np.maximum(peak, 1e-12),
                             0.0)
-    return lag0_s, peak, score, np.clip(second_ratio, 0.0, None), seg, lags, inside
+    return (lag0_s, peak, score, np.clip(second_ratio, 0.0, None), seg, lags, inside,
+            second_lag_s)
 
 
 def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=None,
@@ -350,7 +375,7 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     mask = _band_mask(freqs, band_hz, fs)
     if not mask.any():
         raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
-    (lag0, peak, score, second, seg, lags, inside), lo_hi = phat_peaks(mask)
+    (lag0, peak, score, second, seg, lags, inside, second_lag), lo_hi = phat_peaks(mask)
 
     # Coherence after removing the coarse lag (frequency smoothing, Daniell estimator).
     width = int(np.ceil(_COHERENCE_DOF * nfft / n_samp))
@@ -386,7 +411,8 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         r2 = sfft.irfft(v[None, :] * scot, nfft, axis=-1)
         norm2 = sfft.irfft(v[None, :] * np.abs(scot), nfft, axis=-1)[:, 0]
         r2 = r2 / np.maximum(norm2, 1e-300)[:, None]
-        lag2, _, score, second, _, _, _ = _coarse_peaks(r2, max_lag_samp, fs, lo_hi)
+        lag2, _, score, second, _, _, _, second_lag = _coarse_peaks(r2, max_lag_samp, fs,
+                                                                    lo_hi)
         moved = np.abs(lag2 - lag0) > 0.5 / fs
         if moved.any():
             rot_m = cross[moved] * np.exp(1j * omega[None, :] * lag2[moved, None])
@@ -419,8 +445,14 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         if np.all(np.abs(step) < 1e-12):
             break
     delay = lag0 + d
-
-    cov = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask)
+    cov, nsr = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft,
+                                 mask)
+    # each mic's power without its noise (signal share 1 / (1 + noise-to-signal ratio)), so
+    # that the notches of a reflection are not filled by the noise floor
+    power = np.abs(spec[:, kb]) ** 2
+    if nsr is not None and nsr.shape == power.shape:
+        power = power / (1.0 + nsr)
+    spec_f, spec_w, spec_p = _binned_weights(freqs[kb], c, power)
     sd = np.sqrt(np.diag(cov))
 
     quality = []
@@ -434,10 +466,11 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     if offsets_s is not None:
         off = np.asarray(offsets_s, dtype=float)
         delay = delay + off[jj] - off[ii]
+        second_lag = second_lag + off[jj] - off[ii]
 
     curves = None
     if keep_curves:  # GCC-PHAT over the final band, for the diagnostics figure
-        (_, _, _, _, seg, lags, inside), _ = phat_peaks(mask)
+        (_, _, _, _, seg, lags, inside, _), _ = phat_peaks(mask)
         curves = []
         step = max(1, int(np.ceil(seg.shape[1] / 1000)))
         near = int(np.ceil(1e-3 * fs))  # every sample within 1 ms of the delay
@@ -451,12 +484,76 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         pairs=pairs, delay_s=delay, sd_s=sd, covariance_s2=cov, peak=peak, score=score,
         second_ratio=second, quality=tuple(quality), t_s=float(t_s),
         duration_s=n_samp / fs, band_hz=lo_hi, sample_rate_hz=fs, max_lag_s=max_lag_s,
-        curves=curves,
+        curves=curves, spectral_freqs_hz=spec_f, spectral_weight=spec_w,
+        spectral_power=spec_p, second_lag_s=second_lag,
     )
 
 
+_SPECTRAL_BINS = 1024  # most frequency bins kept for the multipath-bias model
+
+
+def _binned_weights(freqs_hz, c, power):
+    """The fine-delay weights c_k of every pair summed, and each mic's smoothed power averaged,
+    into at most ``_SPECTRAL_BINS`` bins.
+
+    Returns (bin centre frequencies (B,), weights (P, B), power (N, B)); the reflection model
+    (:func:`multipath_bias_s`, :mod:`locate.accuracy.reflections`) needs only sums of c_k
+    times smooth functions of frequency and the ripple of each mic's spectrum.
+    """
+    if freqs_hz.size == 0:
+        return np.zeros(0), np.zeros((c.shape[0], 0)), np.zeros((power.shape[0], 0))
+    n_bins = min(_SPECTRAL_BINS, freqs_hz.size)
+    edges = np.linspace(freqs_hz[0], freqs_hz[-1] * (1 + 1e-12), n_bins + 1)
+    which = np.clip(np.searchsorted(edges, freqs_hz, side="right") - 1, 0, n_bins - 1)
+    fsum = np.bincount(which, weights=freqs_hz, minlength=n_bins)
+    count = np.bincount(which, minlength=n_bins)
+    w = np.stack([np.bincount(which, weights=row, minlength=n_bins) for row in c])
+    pw = np.stack([np.bincount(which, weights=row, minlength=n_bins) for row in power])
+    keep = count > 0
+    return fsum[keep] / count[keep], w[:, keep], pw[:, keep] / count[keep]
+
+
+def multipath_bias_s(delays: DelaySet, lag_s, gain):
+    """Delay bias of every pair from a second path at each mic (ground or wall reflection).
+
+    A copy of the sound ``gain`` times as strong arriving ``lag_s`` after the direct sound at
+    mic u multiplies its spectrum by 1 + g e^{-i omega lag}: a phase error
+    phi_u = arg(1 + g e^{-i omega lag}) in every bin.  Linearising the fine-delay estimator
+    (the maximum of sum_k c_k cos(phase_k + omega_k d)) about the true delay gives the bias of
+    pair (i, j):  b = -sum_k c_k omega_k (phi_j - phi_i) / sum_k c_k omega_k^2  (the same
+    first-order expansion as the noise model; the two-path phase is textbook, e.g. the image
+    method of a reflecting plane).
+
+    Parameters
+    ----------
+    delays : DelaySet
+        With ``spectral_weight`` (from :func:`estimate_delays`).
+    lag_s, gain : array_like, shape (S, N)
+        Extra travel time and relative amplitude of the second path at each mic, for S
+        scenarios.
+
+    Returns
+    -------
+    ndarray, shape (S, P), seconds (zero when the set carries no spectral weights).
+    """
+    lag = np.atleast_2d(np.asarray(lag_s, dtype=float))
+    g = np.atleast_2d(np.asarray(gain, dtype=float))
+    n_pairs = len(delays.pairs)
+    if delays.spectral_weight is None or delays.spectral_weight.shape[1] == 0:
+        return np.zeros((lag.shape[0], n_pairs))
+    om = 2 * np.pi * np.asarray(delays.spectral_freqs_hz, dtype=float)
+    c = np.asarray(delays.spectral_weight, dtype=float)  # (P, B)
+    phi = np.angle(1.0 + g[..., None] * np.exp(-1j * om[None, None, :] * lag[..., None]))
+    ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]
+    dphi = phi[:, jj, :] - phi[:, ii, :]  # (S, P, B)
+    num = np.einsum("pb,spb->sp", c * om[None, :], dphi)
+    den = np.maximum(np.sum(c * om[None, :] ** 2, axis=1), 1e-300)
+    return -num / den[None, :]
+
+
 def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):
-    """Covariance of the fine delays from the linearised phase-error model.
+    """Covariance of the fine delays from the linearised phase-error model, and the per-mic
+    noise-to-signal ratio of every weighted bin (N, K_w) it was built on.
 
     The phase error of pair (i, j) in bin k is e_i - e_j + n_ij with var(e_u) = a_u / 2 and
     var(n_ij) = a_i a_j / 2 per independent bin, a_u the noise-to-signal ratio of mic u.
@@ -470,7 +567,7 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
     cov = np.zeros((n_pairs, n_pairs))
     usable = d_norm > 0
     if not usable.any():
-        return np.diag(np.full(n_pairs, np.inf))
+        return np.diag(np.full(n_pairs, np.inf)), None
     # Per-mic signal spectrum from pairwise coherent cross-power (least squares in log domain).
     bins = np.flatnonzero(mask & np.any(w > 0, axis=0))
     log_cross = np.log(np.maximum(np.abs(s_cross[:, bins]), 1e-300))
@@ -520,4 +617,4 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
         cov[bad, :] = 0.0
         cov[:, bad] = 0.0
         cov[bad, bad] = np.inf
-    return cov
+    return cov, a

@@ -299,7 +299,7 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
     cov = np.zeros((c_n, n_p, n_p))
     for c in np.flatnonzero(~fast):  # rare: dead pairs, two mics
         cov[c] = _delay_covariance(g.pairs, n_mics, w[c], coh[c], s_auto[c], s_cross[c], om,
-                                   n_eff, g.nfft, mask[c])
+                                   n_eff, g.nfft, mask[c])[0]
     idx = np.flatnonzero(fast)
     if idx.size == 0:
         return cov

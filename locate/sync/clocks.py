@@ -183,7 +183,7 @@ def _frame_db(x, frame):
 
 
 def reference_delays(signals, sample_rate_hz, residual_offsets_s, *, t0_s=0.0, band_hz=None,
-                     pad_s=0.05, mic_names=None) -> ReferenceEvent:
+                     pad_s=0.05, mic_names=None, max_lag_s=None) -> ReferenceEvent:
     """Delays of one reference sound inside a span that holds it at every mic.
 
     Parameters
@@ -199,6 +199,11 @@ def reference_delays(signals, sample_rate_hz, residual_offsets_s, *, t0_s=0.0, b
     pad_s : float
         Margin kept before and after the sound in the fine window.
     mic_names : sequence of str, optional
+    max_lag_s : float or array_like (P,), optional
+        Lag search half-width of the fine stage around the coarse alignment.  Give the
+        geometric one of ``tdoa fix`` (:func:`locate.signal.delays.geometric_max_lag_s`): the
+        correlation floor and the next peak are then judged over the same lags, so the pairs
+        are graded as ``fix`` grades them.  Default: 2 ms.
 
     Returns
     -------
@@ -247,7 +252,9 @@ def reference_delays(signals, sample_rate_hz, residual_offsets_s, *, t0_s=0.0, b
     w1 = min(lo_s + (b + 1) * frame + pad, hi_s)
     windows = np.stack([x[i, w0 + shift[i]: w1 + shift[i]] for i in range(n_mic)])
     offs = res + shift / fs
-    ds = estimate_delays(windows, fs, max_lag_s=_FINE_SEARCH_S + 2.0 / fs, band_hz=band_hz,
+    search = _FINE_SEARCH_S + 2.0 / fs if max_lag_s is None else np.maximum(
+        np.asarray(max_lag_s, dtype=float), _FINE_SEARCH_S + 2.0 / fs)
+    ds = estimate_delays(windows, fs, max_lag_s=search, band_hz=band_hz,
                          offsets_s=offs, t_s=t0_s + w0 / fs)
     # pairs with a mic that did not hear the sound carry no clock information
     deaf = ~heard[ds.pairs[:, 0]] | ~heard[ds.pairs[:, 1]]
@@ -256,12 +263,14 @@ def reference_delays(signals, sample_rate_hz, residual_offsets_s, *, t0_s=0.0, b
         ds.covariance_s2[:, deaf] = 0.0
         ds.covariance_s2[deaf, deaf] = np.inf
         ds.delay_s[deaf] = np.nan
-    weak = [f"{names[i]}-{names[j]}" for (i, j), q, d in zip(ds.pairs, ds.quality, deaf,
-                                                                 strict=True)
-            if q != "good" and not d]
-    if weak:
-        warnings.append("weak or ambiguous correlation of the reference sound for pair(s) "
-                        + ", ".join(weak))
+    for grade, text in (("weak", "weak correlation of the reference sound for pair(s) "),
+                        ("ambiguous", "ambiguous correlation of the reference sound (several "
+                                      "near-equal peaks: an echo?) for pair(s) ")):
+        flagged = [f"{names[i]}-{names[j]}" for (i, j), q, d in zip(ds.pairs, ds.quality, deaf,
+                                                                      strict=True)
+                   if q == grade and not d]
+        if flagged:
+            warnings.append(text + ", ".join(flagged))
     t_seen = t0_s + (0.5 * (w0 + w1) + shift) / fs + res
     return ReferenceEvent(ds, t_seen, (t0_s + w0 / fs, t0_s + w1 / fs), warnings)
 

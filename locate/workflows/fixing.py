@@ -21,7 +21,8 @@ from locate.signal.echoes import onset_mismatch
 from locate.signal.event_scan import scan_recordings
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
-           "plan_spans", "add_clock_times"]
+           "plan_spans", "add_clock_times", "resolve_source_height", "reflection_uncertainty",
+           "air_fit_extra"]
 
 MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
 
@@ -116,8 +117,42 @@ def search_lags_s(site, cond, pairs):
                                wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
 
 
+ASSUMED_SOURCE_Z_M = 1.0
+"""Source height of a 2-D fix when none is given: a source between the ground and 2 m
+(people, vehicles, machinery, dropped objects: common practice)."""
+ASSUMED_SOURCE_Z_SD_M = 0.6
+"""Its standard deviation (0-2 m uniform has 0.58 m)."""
+GIVEN_SOURCE_Z_SD_M = 0.5
+"""Standard deviation of a source height given without one (a height judged by eye)."""
+
+
+def resolve_source_height(source_z_m, source_z_sd_m=None, dims=2):
+    """(height, sd, basis) of a 2-D fix from the command-line values.
+
+    ``source_z_m`` may carry its own sd (``locate.cli.common.Height``, from ``1.0+-0.5``);
+    a plain 0.0 is the option's default (not given): :data:`ASSUMED_SOURCE_Z_M` with
+    :data:`ASSUMED_SOURCE_Z_SD_M`, basis ``"assumed"``.  A height given without an sd takes
+    :data:`GIVEN_SOURCE_Z_SD_M`, basis ``"given"``.  3-D fixes solve the height: sd 0.
+    """
+    own_sd = getattr(source_z_m, "sd", None)
+    given = own_sd is not None or type(source_z_m) is not float or float(source_z_m) != 0.0
+    if dims == 3:
+        return float(source_z_m), 0.0, "solved"
+    if not given and source_z_sd_m is None:
+        return ASSUMED_SOURCE_Z_M, ASSUMED_SOURCE_Z_SD_M, "assumed"
+    z = float(source_z_m) if given else ASSUMED_SOURCE_Z_M
+    sd = own_sd if own_sd is not None else source_z_sd_m
+    if sd is None:
+        sd = GIVEN_SOURCE_Z_SD_M
+    if not (np.isfinite(sd) and sd >= 0):
+        raise OptionError(f"source height uncertainty {sd!r} must be finite and >= 0",
+                          field="--source-z-sd")
+    return z, float(sd), "given" if given else "assumed"
+
+
 def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
-             keep_curves=False, reject=True, t_s=None, extra_covariance=None):
+             keep_curves=False, reject=True, t_s=None, extra_covariance=None,
+             source_z_sd_m=0.0):
     """Read one span, estimate delays and fix the source.
 
     Returns
@@ -146,6 +181,12 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
                              keep_curves=keep_curves)
     delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
                              keep_curves)
+    # the ground reflection's bias in every pair's uncertainty; its peak is no ambiguity
+    if ground_datum_m(site) is not None:
+        delays = reflection_uncertainty(delays, positions, cond, dims=dims,
+                                        source_z_m=source_z_m,
+                                        source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
+                                        mic_names=names)
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
     amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
@@ -157,16 +198,19 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
                         "strong echo?) for pair(s) " + ", ".join(amb)
                         + ": a broadband part of the sound or a --band around it would help")
     from locate.accuracy.budget import declared_sds, extra_covariance_hook, uncertainty_budget
+    from locate.accuracy.inputs import with_source_height
 
     sds = declared_sds(site)
+    sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0, ground_datum_m(site))
+    models = model_error_sds(site, sds, dims)
     if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
         extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
                                                  source_z_m=source_z_m, reject=reject,
-                                                 mic_names=names)
+                                                 mic_names=names, model_sds=models)
     extra = extra_covariance(delays, cond)
     fix = locate_source(positions, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
                         dims=dims, source_z_m=source_z_m, reject=reject, mic_names=names,
-                        extra_covariance_s2=extra)
+                        extra_covariance_s2=extra, model_sds=models)
     if len(amb) > len(delays.pairs) // 2:
         fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
                             "do not rely on it without a broadband sound")
@@ -212,6 +256,74 @@ def _fix_without(absent, recordings, site, cond, start_s, stop_s, *, dims, **kw)
     entry["absent_mics"] = gone
     entry["warnings"] = [note] + entry["warnings"]
     return entry, fix, delays, entry["warnings"]
+
+
+def model_error_sds(site, sds, dims=2):
+    """Model errors the integrity test weighs against a bad mic: the source height's sd (2-D)
+    and the sound speed's - the declared one, else that of the taped-survey default air
+    temperature sd (2 degC: a temperature not measured on site, docs/uncertainty.md)."""
+    from locate.accuracy.inputs import TAPED_SURVEY_DEFAULTS, sound_speed_slope_mps_per_c
+
+    sd_c = float(sds.get("sound_speed_mps", 0.0) or 0.0)
+    if sd_c <= 0:
+        air = site.air
+        sd_c = abs(sound_speed_slope_mps_per_c(air.temperature_c, air.relative_humidity,
+                                               air.pressure_kpa)) * TAPED_SURVEY_DEFAULTS[
+            "temperature_sd_c"]
+    return {"source_z_m": float(sds.get("source_height_m", 0.0) or 0.0) if dims == 2 else 0.0,
+            "sound_speed_mps": sd_c, "ground_z_m": ground_datum_m(site)}
+
+
+def ground_datum_m(site):
+    """z of the ground in the site's frame: 0 for a local site (its z is the height above the
+    ground, docs/site-file.md); None for a WGS84 site, whose z is an ellipsoidal height: the
+    ground under the mics is not known there and the ground reflection is not modelled."""
+    return 0.0 if getattr(site, "coordinates", "local") == "local" else None
+
+
+def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
+                           source_z_sd_m=0.0, mic_names=None):
+    """``delays`` with the ground-reflection bias term in their covariance
+    (:mod:`locate.accuracy.reflections`), evaluated at a first, timing-only fix; unchanged when
+    no first fix can be made."""
+    from locate.accuracy.reflections import ground_echo_pairs, with_ground_reflection
+    from locate.errors import TdoaError
+
+    try:
+        first = locate_source(positions_m, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
+                              dims=dims, source_z_m=source_z_m, reject=True,
+                              mic_names=mic_names)
+    except (TdoaError, ValueError, np.linalg.LinAlgError):
+        return delays
+    if not np.all(np.isfinite(first.position_m)):
+        return delays
+    sd = float(source_z_sd_m) if dims == 2 else float(np.sqrt(max(
+        first.covariance_m2[2, 2], 0.0)) if np.isfinite(first.covariance_m2[2, 2]) else 0.0)
+    out = with_ground_reflection(delays, first.position_m, positions_m, cond.sound_speed_mps,
+                                 cond.wind_mps, source_z_sd_m=sd)
+    echo = ground_echo_pairs(out, first.position_m, positions_m, cond.sound_speed_mps,
+                             cond.wind_mps, source_z_sd_m=sd)
+    amb = np.array([q == "ambiguous" for q in out.quality]) & echo
+    if amb.any():  # the next peak is the ground reflection's, not a second direct path
+        out = replace(out, quality=tuple("good" if a else q
+                                         for q, a in zip(out.quality, amb, strict=True)))
+    return out
+
+
+def air_fit_extra(site, fix, delays, cond, *, dims=2, source_z_sd_m=0.0, solve_wind=False):
+    """Delay covariance of the declared uncertainties that ``--solve-air`` does not solve
+    (survey, clocks, source height; the wind too unless it is solved), at the fixed-air fix;
+    None when none is declared."""
+    from locate.accuracy.inputs import declared_sds, has_nuisance, with_source_height
+    from locate.accuracy.propagation import nuisance_delay_covariance
+
+    sds = with_source_height(declared_sds(site), source_z_sd_m if dims == 2 else 0.0,
+                             ground_datum_m(site))
+    if not has_nuisance(sds):
+        return None
+    keep = ["mic_positions", "clocks", "source_height"] + ([] if solve_wind else ["wind"])
+    return nuisance_delay_covariance(fix.position_m, site.positions_m, delays.pairs,
+                                     cond.sound_speed_mps, cond.wind_mps, sds, components=keep)
 
 
 def _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,

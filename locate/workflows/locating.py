@@ -16,6 +16,7 @@ from locate.fix.air_solve import fit_entry
 from locate.signal.event_choice import choose_events
 from locate.workflows.fixing import (
     add_clock_times,
+    air_fit_extra,
     conditions_for,
     fix_result,
     fix_span,
@@ -50,7 +51,8 @@ def no_progress(label, total):
 
 
 def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=None,
-                      band_hz=None, dims=2, source_z_m=0.0, sound_speed_mps=None,
+                      band_hz=None, dims=2, source_z_m=0.0, source_z_sd_m=0.0,
+                      source_z_basis="given", sound_speed_mps=None,
                       threshold_db=10.0, reject=True, keep_curves=False, solve_air=False,
                       solve_wind=False, events_choice=None, progress=no_progress,
                       scan_s=None, own_s=None) -> dict:
@@ -69,6 +71,9 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         Analysis band; default: where the signal stands above the noise.
     dims : {2, 3}
         2: horizontal fix at height ``source_z_m``; 3: full 3-D fix.
+    source_z_sd_m, source_z_basis : float, str
+        The height's standard deviation (it enters the uncertainty budget) and where it came
+        from ("given", "assumed"); see :func:`locate.workflows.fixing.resolve_source_height`.
     sound_speed_mps : float, optional
         Override the sound speed from the site's air.
     threshold_db : float
@@ -128,13 +133,16 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
             try:
                 entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
                                             source_z_m=source_z_m, reject=reject,
-                                            keep_curves=keep_curves, t_s=t)
+                                            keep_curves=keep_curves, t_s=t,
+                                            source_z_sd_m=source_z_sd_m)
                 if solve_air and entry.get("absent_mics"):
                     entry["warnings"].append("the sound speed was not solved for this fix: "
                                              "some mics had no audio over it")
                 elif solve_air:
                     fit_entry(entry, fx, ds, site, cond, dims=dims, source_z_m=source_z_m,
-                              solve_wind=solve_wind)
+                              solve_wind=solve_wind, extra_covariance_s2=air_fit_extra(
+                                  site, fx, ds, cond, dims=dims, source_z_sd_m=source_z_sd_m,
+                                  solve_wind=solve_wind))
             except NothingFoundError as exc:
                 warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
                 bar.update(1)
@@ -149,8 +157,10 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         err = NothingFoundError("no span gave a usable fix (see the warnings above)")
         err.warnings = warnings
         raise err
+    extra = ({"source_z_sd_m": source_z_sd_m, "source_z_basis": source_z_basis}
+             if dims == 2 else None)
     return add_clock_times(fix_result(site, cond, entries, warnings=warnings, dims=dims,
-                                      source_z_m=source_z_m), rec, site)
+                                      source_z_m=source_z_m, extra=extra), rec, site)
 
 
 def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,

@@ -26,8 +26,9 @@ from locate.workflows.fixing import search_lags_s
 __all__ = ["sweep_fixes", "SWEEP_NOTE"]
 
 SWEEP_NOTE = ("windows fixed by the fast sweep (windowed delays, batched locator): no echo "
-              "check, no uncertainty budget and no pair delays kept per window; fix a single "
-              "window without --sweep for those")
+              "check, no uncertainty budget and no pair delays kept per window - the ellipses "
+              "are timing-only (no survey, clock, air, source-height or ground-reflection "
+              "uncertainty in them); fix a single window without --sweep for those")
 
 
 def _batched_fix(bf, w, names, dims):

@@ -6,7 +6,9 @@ the recordings, and the new site file (the estimation itself is in :mod:`locate.
 * :func:`calibrate` reads each reference span, measures its delays, turns them into clock
   corrections and fits offsets (and, with two events, drifts);
 * :func:`synced_site_raw` returns the site's raw dict with ``offset_s``, ``drift_ppm`` and
-  ``clock_sd_s`` filled in, paths rebased for the new file's folder.
+  ``clock_sd_s`` filled in, paths rebased for the new file's folder;
+  :func:`synced_site_text` writes those into the input file's text in place (tomlkit), keeping
+  the user's comments, order and formatting.
 """
 
 from __future__ import annotations
@@ -20,9 +22,11 @@ import numpy as np
 
 from locate.errors import OptionError
 from locate.fix import air_solve as _airfit
+from locate.signal.delays import all_pairs
 from locate.sync.clocks import ClockFit, clock_corrections, fit_clocks, reference_delays
 
-__all__ = ["parse_point", "calibrate", "synced_site_raw", "sound_speed_sd_mps", "summary_lines",
+__all__ = ["parse_point", "calibrate", "synced_site_raw", "synced_site_text",
+           "sound_speed_sd_mps", "summary_lines",
            "sync_report", "MAX_REFERENCE_DISTANCE_M"]
 
 MAX_REFERENCE_DISTANCE_M = 2000.0
@@ -159,16 +163,46 @@ def calibrate(site, recordings, cond, spans, points_m, *, band_hz=None, point_sd
     return fit, reports
 
 
+def _regrade_ground_echoes(ev, point, pos, cond, names):
+    """As ``fix``: a pair whose next peak is the ground reflection's is not ambiguous."""
+    from dataclasses import replace
+
+    from locate.accuracy.reflections import ground_echo_pairs
+
+    echo = ground_echo_pairs(ev.delays, point, pos, cond.sound_speed_mps, cond.wind_mps)
+    amb = np.array([q == "ambiguous" for q in ev.delays.quality])
+    if not (amb & echo).any():
+        return
+    ev.delays = replace(ev.delays, quality=tuple(
+        "good" if a else q for q, a in zip(ev.delays.quality, amb & echo, strict=True)))
+    head = "ambiguous correlation of the reference sound"
+    left = [f"{names[i]}-{names[j]}" for (i, j), a in zip(ev.delays.pairs, amb & ~echo,
+                                                          strict=True) if a]
+    ev.warnings = [w for w in ev.warnings if not w.startswith(head)]
+    if left:
+        ev.warnings.append(head + " (several near-equal peaks: an echo?) for pair(s) "
+                           + ", ".join(left))
+
+
 def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m):
     names = site.mic_names
     pos = site.positions_m
     sd_c = sound_speed_sd_mps(site)
     pos_sd = np.array([m.position_sd_m or 0.0 for m in site.mics])
     measured, reports, ref = [], [], None
+    from locate.accuracy.reflections import with_ground_reflection
+    from locate.workflows.fixing import ground_datum_m, search_lags_s
+
     for (a, b), point in zip(spans, points_m, strict=True):
         signals, residual = rec.read(a, b)
         ev = reference_delays(signals, rec.sample_rate_hz, residual, t0_s=a,
-                              band_hz=band_hz, mic_names=names)
+                              band_hz=band_hz, mic_names=names,
+                              max_lag_s=search_lags_s(site, cond, all_pairs(len(names))))
+        # the same delay model as fix: the ground reflection's bias (the point is known)
+        if ground_datum_m(site) is not None:
+            ev.delays = with_ground_reflection(ev.delays, point, pos, cond.sound_speed_mps,
+                                               cond.wind_mps)
+            _regrade_ground_echoes(ev, point, pos, cond, names)
         delta, cov, r, dropped = clock_corrections(
             ev.delays, point, pos, cond.sound_speed_mps, wind_mps=cond.wind_mps,
             sound_speed_sd_mps=sd_c, position_sd_m=pos_sd, point_sd_m=point_sd_m)
@@ -194,6 +228,10 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
     cover = np.stack([(rec.start_s - rec.offsets_s) * scale,
                       (rec.stop_s - rec.offsets_s) * scale], axis=1)
     fit = fit_clocks(measured, rec.offsets_s, rec.drift_ppm, site_offset, cover, reference=ref)
+    if sd_c <= 0 and not np.any(pos_sd > 0) and not point_sd_m:
+        fit.warnings.append("timing-only uncertainty: nothing was declared about the mic "
+                            "survey, the air or the reference point, so the offsets' "
+                            "uncertainties cover the correlation timing alone")
     deaf = [names[k] for k in range(len(names)) if not np.all(np.isfinite(fit.correction_s[:, k]))]
     if deaf:
         fit.warnings.append("no clock correction for mic(s) " + ", ".join(deaf)
@@ -240,6 +278,55 @@ def synced_site_raw(site, fit: ClockFit, out_path) -> dict:
         if np.isfinite(sd):
             m["clock_sd_s"] = float(f"{sd:.3g}")
     return raw
+
+
+def _update_in_place(node, new):
+    """Set in the tomlkit container ``node`` every value of the plain ``new`` that differs,
+    recursing into tables and arrays of tables; untouched keys keep their comments, order and
+    formatting.  False when the structures do not match (the caller then writes afresh)."""
+    if isinstance(new, dict):
+        if not hasattr(node, "keys"):
+            return False
+        for key, value in new.items():
+            if key in node and isinstance(value, dict | list) and not _scalar_list(value):
+                if not _update_in_place(node[key], value):
+                    return False
+            elif key not in node or _plain(node[key]) != value:
+                node[key] = value
+        return True
+    if isinstance(new, list):
+        if not isinstance(node, list) or len(node) != len(new):
+            return False
+        return all(_update_in_place(a, b) for a, b in zip(node, new, strict=True))
+    return False
+
+
+def _scalar_list(value):
+    return isinstance(value, list) and not any(isinstance(v, dict) for v in value)
+
+
+def _plain(item):
+    unwrap = getattr(item, "unwrap", None)
+    return unwrap() if callable(unwrap) else item
+
+
+def synced_site_text(site, fit: ClockFit, out_path) -> str:
+    """The new site file's text: the input file with ``offset_s``, ``drift_ppm`` and
+    ``clock_sd_s`` (and rebased paths) edited in place by the round-trip TOML library
+    ``tomlkit``, so the user's comments, order and formatting survive.  Falls back to a fresh
+    dump (:func:`locate.io.site.dump_site_toml`) when the file cannot be edited so."""
+    from locate.io.site import dump_site_toml
+
+    raw = synced_site_raw(site, fit, out_path)
+    try:
+        import tomlkit
+
+        doc = tomlkit.parse(Path(site.path).read_text(encoding="utf-8"))
+        if _update_in_place(doc, raw):
+            return tomlkit.dumps(doc)
+    except Exception:  # noqa: BLE001 - any trouble with the round trip: write afresh
+        pass
+    return dump_site_toml(raw)
 
 
 # ------------------------------------------------------------------------- reporting

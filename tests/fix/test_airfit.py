@@ -154,3 +154,26 @@ def test_too_few_mics_for_solve_wind_is_a_clear_error(tmp_path):
     assert code == 2 and stdout == ""
     assert stderr.count("\n") == 1
     assert "needs at least 6 mics" in stderr and "this site has 4" in stderr
+
+
+def test_solving_the_air_never_shrinks_the_ellipse_and_keeps_the_declared_survey(tmp_path):
+    """The bundled yard demo (5 mics, survey declared 5 cm): one more unknown (the sound
+    speed) cannot add information about the position - the Fisher information with a nuisance
+    parameter is a Schur complement, never larger (textbook estimation theory) - so each
+    95 % semi-axis with --solve-air is at least the fixed-air one, and the declared survey
+    still dominates it (the issue saw 11.5 cm shrink to 1.4 cm)."""
+    from pathlib import Path
+
+    yard = Path(__file__).resolve().parents[2] / "demo_recordings" / "yard.toml"
+    fixed, solved = tmp_path / "fixed.json", tmp_path / "solved.json"
+    for extra, out in (([], fixed), (["--solve-air"], solved)):
+        code, _, stderr = run_cli(["fix", str(yard), "--source-z", "1", "--json", out, *extra])
+        assert code == 0, stderr
+    a = json.loads(fixed.read_text())["fixes"]
+    b = json.loads(solved.read_text())["fixes"]
+    assert len(a) == len(b) == 3
+    for fa, fb in zip(a, b, strict=True):
+        for axis in ("semi_major_m", "semi_minor_m"):
+            assert fb["ellipse95"][axis] >= fa["ellipse95"][axis] * (1 - 1e-6)
+        # the 5 cm survey alone gives several cm at 95 % (common practice: 2.45 sd)
+        assert fb["ellipse95"]["semi_minor_m"] > 0.05

@@ -131,7 +131,8 @@ def test_a_tonal_source_is_flagged_ambiguous_and_not_given_a_small_ellipse(tmp_p
     tone = Waveform(kind="tone", duration_s=2.5, fundamental_hz=400.0,
                     harmonics=(1.0, 0.6, 0.3), rms_pa_at_1m=5.0)
     signals = _record(ARRAY_40M, [Emission(truth, 0.3, tone)], duration_s=3.0, snr_db=15.0)
-    code, stderr, result = _fix(tmp_path, ARRAY_40M, signals, "--from", "1.0", "--to", "1.8")
+    code, stderr, result = _fix(tmp_path, ARRAY_40M, signals, "--from", "1.0", "--to", "1.8",
+                                "--source-z", "0+-0")
     assert code == 0, stderr
     _said(["ambiguous correlation", "tonal", "a broadband part of the sound",
            "most pairs are ambiguous", "do not rely on it"], stderr, result)
