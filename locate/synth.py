@@ -469,7 +469,7 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
                     temperature_c=20.0, relative_humidity=50.0, pressure_kpa=101.325,
                     wind_mps=None, sound_speed_mps=None, snr_db=None, noise_rms=None,
                     ground_reflection=None, absorption=True, clock_offsets_s=None,
-                    clock_drift_ppm=None, rng=None):
+                    clock_drift_ppm=None, rng=None, walls=()):
     """Record stationary emissions at the mics.
 
     Parameters
@@ -492,6 +492,11 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
         Clock faults (module docstring); drift is evaluated at the exact sample times.
     rng : numpy.random.Generator, optional
         Waveforms are drawn first (in event order), then the noise; default ``default_rng(0)``.
+    walls : sequence of (point_m (3,), normal (3,), gain), optional
+        Reflecting planes (e.g. a building face): each adds the sound of the image source
+        mirrored in the plane through ``point_m`` with unit ``normal``, scaled by the
+        frequency-independent ``gain`` (textbook image method; first-order reflections only,
+        the plane taken as infinite).  Not combined with the ground image.
 
     Returns
     -------
@@ -502,6 +507,8 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
                                      pressure_kpa, wind_mps, sound_speed_mps, clock_offsets_s,
                                      clock_drift_ppm, ground_reflection)
     rng = np.random.default_rng(0) if rng is None else rng
+    walls = [(np.asarray(p, float).reshape(3), np.asarray(nv, float).reshape(3)
+              / np.linalg.norm(nv), float(g)) for p, nv, g in walls]
     events = tuple(events)
     n_mic, n_t = mics.shape[0], int(round(duration_s * fs))
     wv = None if wind_mps is None else wind
@@ -524,7 +531,13 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
             r_i = np.linalg.norm(mics - img, axis=1)
             lag = air.travel_time_s(img, mics, c, wv) - tau_d
             image_arr[e] = arrivals[e] + lag
-        n_x = x.size + int(np.ceil(lag.max() * fs))
+        mirrors = []  # (distance (N,), lag (N,), gain) of each wall image
+        for point, normal, gain in walls:
+            img = src - 2.0 * float((src - point) @ normal) * normal
+            mirrors.append((np.linalg.norm(mics - img, axis=1),
+                            air.travel_time_s(img, mics, c, wv) - tau_d, gain))
+        lag_max = max([lag.max()] + [m[1].max() for m in mirrors])
+        n_x = x.size + int(np.ceil(max(lag_max, 0.0) * fs))
         pad = 32 + _HALF_TAPS + int(np.ceil(np.max(np.abs(drift)) * n_x))
         n_buf = sfft.next_fast_len(n_x + 2 * pad, real=True)
         buf = np.zeros(n_buf)
@@ -542,6 +555,10 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
             g_i = (_absorb_gain(f, r_i[:, None], temperature_c, relative_humidity, pressure_kpa)
                    if absorption else 1.0) / r_i[:, None]
             y = y + float(ground_reflection) * spec * g_i * np.exp(-2j * np.pi * f * lag[:, None])
+        for r_w, lag_w, gain in mirrors:
+            g_w = (_absorb_gain(f, r_w[:, None], temperature_c, relative_humidity, pressure_kpa)
+                   if absorption else 1.0) / r_w[:, None]
+            y = y + gain * spec * g_w * np.exp(-2j * np.pi * f * lag_w[:, None])
         rec = (arrivals[e] - off) * (1.0 + drift)  # clock time of u = 0 at each mic
         n0 = np.floor(rec * fs).astype(np.int64) - pad
         if np.all(drift == 0):

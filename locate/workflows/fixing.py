@@ -94,7 +94,7 @@ def scan_events(recordings, positions_m, cond, *, band_hz=None, start_s=None, st
     return scan_recordings(recordings, a, b, band_hz=band_hz, threshold_db=threshold_db,
                            min_mics=min(3, recordings.n_mics),
                            max_spread_s=_array_spread_s(positions_m, cond), pad_s=0.05,
-                           progress=progress, block_s=block_s)
+                           progress=progress, block_s=block_s, whiten=True)
 
 
 def plan_spans(events, recordings, positions_m, cond):
@@ -116,9 +116,38 @@ def search_lags_s(site, cond, pairs):
                                wind_speed_mps=cond.wind_speed_mps, margin_s=margin)
 
 
+def _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz, max_lag, pairs):
+    """The bang's own delays (locate.signal.onsets): the background before the earliest
+    onset measured and removed, the onset part correlated; None without enough background."""
+    from locate.signal.onsets import MIN_BACKGROUND_S, onset_delays
+
+    onset_s = np.asarray(onset_s, float)
+    if not np.any(np.isfinite(onset_s)):
+        return None
+    first = float(np.nanmin(onset_s))
+    lo = max(recordings.start_s, first - EVENT_BACKGROUND_S)
+    if first - lo < MIN_BACKGROUND_S + 0.02:
+        return None
+    signals, residual = recordings.read(lo, stop_s)
+    fs = recordings.sample_rate_hz
+    onset_idx = (onset_s - lo) * fs
+    return onset_delays(signals, fs, onset_idx, max_lag_s=max_lag, pairs=pairs,
+                        band_hz=band_hz, t_s=lo, offsets_s=residual,
+                        spread_s=_array_spread_s(site.positions_m, cond))
+
+
+EVENT_BACKGROUND_S = 1.0
+"""Stretch before an event's earliest onset read to measure the steady background, s."""
+
+
 def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
-             keep_curves=False, reject=True, t_s=None, extra_covariance=None):
+             keep_curves=False, reject=True, t_s=None, extra_covariance=None, onset_s=None):
     """Read one span, estimate delays and fix the source.
+
+    ``onset_s`` (N,), the detected onsets of an event at each mic (NaN: not heard), selects
+    the event path: the bang's own delays with the steady background before it removed
+    (:func:`locate.signal.onsets.onset_delays`), falling back to the whole span when the
+    recording holds too little background before the event.
 
     Returns
     -------
@@ -136,11 +165,16 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     warnings = check_signals(signals, names)
     pairs = all_pairs(len(names))
     max_lag = search_lags_s(site, cond, pairs)
-    delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
-                             band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
-                             keep_curves=keep_curves)
-    delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
-                             keep_curves)
+    delays = None
+    if onset_s is not None and not keep_curves:
+        delays = _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz,
+                               max_lag, pairs)
+    if delays is None:
+        delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
+                                 band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
+                                 keep_curves=keep_curves)
+        delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz,
+                                 max_lag, keep_curves)
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
     amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
