@@ -21,6 +21,7 @@ from locate.cli.common import (
     write_fix_outputs,
 )
 from locate.cli.field import field_checks, field_options
+from locate.cli.sources import check_sources_args, run_sources, sources_options
 from locate.errors import NothingFoundError, OptionError
 
 
@@ -43,10 +44,12 @@ from locate.errors import NothingFoundError, OptionError
               help="Also draw each pair's correlation and residual (diagnostics figure).")
 @click.option("--no-reject", is_flag=True, help="Keep every mic (no integrity test).")
 @field_options
+@sources_options
 @click.pass_context
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
-        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None):
+        geojson_path=None, solve_air=False, solve_wind=False, events_choice=None, sources="1",
+        sources_map_path=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.fix.air_solve import summary_lines as air_summary
@@ -59,10 +62,12 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     check_span_args(start_s, stop_s, window_s)
     from locate.cli.sweep import check_sweep_args, run_sweep
     check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path)
+    n_sources = check_sources_args(sources, sources_map_path, start_s, window_s, sweep,
+                                   solve_air, panels_path, dims)
     site = load(site_path, dims)
     inputs = site_inputs(site)
     for p, opt in ((json_path, "--json"), (csv_path, "--csv"), (map_path, "--map"),
-                   (panels_path, "--panels")):
+                   (panels_path, "--panels"), (sources_map_path, "--sources-map")):
         check_output_path(p, inputs, option=opt)
     choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
                                      solve_wind=solve_wind, events_choice=events_choice,
@@ -70,6 +75,10 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
+    if n_sources != 1 or sources_map_path:
+        return run_sources(ctx, site, rec, cond, start_s, stop_s, n_sources, band_hz,
+                           source_z_m, sound_speed_mps, not no_reject, json_path, csv_path,
+                           geojson_path, map_path, sources_map_path)
     if sweep:
         if window_s > stop_s - start_s:
             raise OptionError(f"window {window_s:g} s is longer than the span "

@@ -74,6 +74,15 @@ class BandMap:
     tonal: bool = False
     sigma: float = 0.0  # standard deviation of an incoherent map (PEAK_SIGMAS)
     candidates: list = field(default_factory=list)
+    zoom: tuple | None = None  # (x, y, power) of every line's correlation near a tonal source
+
+    def value_at(self, xy):
+        """The map's height above its median at the grid point nearest ``xy``."""
+        ix = int(np.clip(np.rint((xy[0] - self.x_m[0]) / (self.x_m[1] - self.x_m[0])), 0,
+                         len(self.x_m) - 1))
+        iy = int(np.clip(np.rint((xy[1] - self.y_m[0]) / (self.y_m[1] - self.y_m[0])), 0,
+                         len(self.y_m) - 1))
+        return float(self.power[iy, ix] - self.floor)
 
 
 @dataclass
@@ -86,6 +95,7 @@ class SourcePeak:
     band_hz: tuple = (0.0, 0.0)
     tonal: bool = False
     candidates: list = field(default_factory=list)  # other near-equal maxima (tonal)
+    height: float = 0.0  # height above the band map's median (map units)
 
 
 def _bin_lines(freqs, power, band_mask, width_hz=25.0):
@@ -372,6 +382,10 @@ def find_sources(maps, spectra, mic_positions_m, pairs, sound_speed_mps, *, z_m,
             if top >= PEAK_SIGMAS * bm.sigma:
                 found.append((top, xy, bm))
                 bm.candidates = cands
+                gx, gy, vals = _refine(spectra, bm.band_hz, True, xy, 5.0, mic_positions_m,
+                                       pairs, sound_speed_mps, z_m, wind_mps, n=201,
+                                       envelope=False)
+                bm.zoom = (gx[0], gy[:, 0], vals)
             continue
         loc = (p == ndimage.maximum_filter(p, size=5, mode="nearest"))
         loc[:2, :] = loc[-2:, :] = False  # a maximum on the grid's edge is not a peak
@@ -395,7 +409,7 @@ def find_sources(maps, spectra, mic_positions_m, pairs, sound_speed_mps, *, z_m,
             continue
         sources.append(SourcePeak(np.array([xy[0], xy[1], z_m], float),
                                   height / max(bm.sigma, 1e-12), [bm.label], tuple(bm.band_hz),
-                                  bm.tonal))
+                                  bm.tonal, height=height))
     # refine each source in its strongest band: the envelope on a finer grid, then the
     # correlation itself (all pairs jointly pick one of a tonal sound's periodic maxima)
     label_map = {bm.label: bm for bm in maps}

@@ -18,6 +18,7 @@ from locate.errors import NothingFoundError
 from locate.fix.align import shifted_recordings
 from locate.fix.solver import locate_source, predict_delays
 from locate.fix.sources import (
+    SADDLE,
     find_sources,
     line_width_hz,
     site_grid,
@@ -45,9 +46,7 @@ delays do not correlate when steered at is a sidelobe of the others, not a sourc
 SAME_SOURCE_M = 3.0
 """Two fixes closer than this are one source seen twice."""
 
-MOVE_M = 10.0
-"""A weaker peak whose fix lands farther than this (and 3 standard deviations) from it is a
-sidelobe or an unseparated source, not a fix."""
+
 
 
 def source_maps(recordings, site, cond, start_s, stop_s, *, band_hz=None, source_z_m=0.0,
@@ -180,16 +179,10 @@ def fix_sources(recordings, site, cond, start_s, stop_s, *, sources="auto", band
                             "source's position: it could not be separated (a band or a span "
                             "where it is alone would help)")
             continue
-        major = (float(np.sqrt(np.max(np.linalg.eigvalsh(fx.covariance_m2[:2, :2]))))
-                 if np.all(np.isfinite(fx.covariance_m2)) else np.inf)
-        if moved > max(MOVE_M, 3.0 * major) and entries and False:
-            warnings.append(f"{where} stands out of the maps but its own delays do not lead "
-                            "there (a sidelobe of a stronger source, or a source that could "
-                            "not be separated)")
-            continue
-        if moved > MOVE_M:
-            fx.warnings.append(f"the fix lies {moved:.1f} m from its map peak: treat it with "
-                               "care")
+        bm = next(m for m in maps if m.label == peak.bands[0])
+        if not peak.tonal and bm.value_at(fx.position_m[:2]) < SADDLE * peak.height:
+            fx.warnings.append(f"the fix lies {moved:.1f} m from its map peak, where the "
+                               f"{bm.label} map is low: treat it with care")
         if peak.tonal:
             fx.warnings.append("a tonal source (spectral lines): its correlation repeats "
                                "every period; all pairs jointly chose this position")
@@ -222,3 +215,46 @@ def predicted_delays_of(entry, site, cond):
     pairs = all_pairs(len(site.mic_names))
     return predict_delays(np.asarray(entry["position_m"], float), site.positions_m, pairs,
                           cond.sound_speed_mps, cond.wind_mps)
+
+
+def parse_sources(value):
+    """``--sources``: a positive whole number or "auto" -> int or "auto"."""
+    from locate.errors import OptionError
+
+    text = str(value).strip().lower()
+    if text == "auto":
+        return "auto"
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise OptionError(f"sources {value!r} must be a whole number of 1 or more, or auto",
+                          field="sources")
+    return n
+
+
+def locate_sources(site, recordings, start_s, stop_s, *, sources="auto", band_hz=None, dims=2,
+                   source_z_m=0.0, sound_speed_mps=None, reject=True):
+    """What ``tdoa fix --from A --to B --sources N|auto`` does: ``(result, maps)``.
+
+    ``result`` is a ``tdoa-result/1`` document of kind ``fix`` with one entry per source
+    (``source``, ``band_hz``, ``bands``); ``maps`` the SRP-PHAT maps per band
+    (:class:`locate.fix.sources.BandMap`, for :func:`locate.draw.sources.sources_figure`).
+    """
+    from locate.workflows.fixing import conditions_for, fix_result
+
+    if dims != 2:
+        from locate.errors import OptionError
+        raise OptionError("several sources are fixed in 2-D (give --source-z)", field="dims")
+    cond = conditions_for(site, sound_speed_mps)
+    warnings = list(site.warnings) + list(recordings.warnings)
+    entries, notes, maps = fix_sources(recordings, site, cond, start_s, stop_s, sources=sources,
+                                       band_hz=band_hz, dims=dims, source_z_m=source_z_m,
+                                       reject=reject)
+    warnings.extend(notes)
+    result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
+                        source_z_m=source_z_m,
+                        extra={"sources": {"asked": sources, "found": len(entries),
+                                           "bands": [m.label for m in maps]}})
+    return result, maps
