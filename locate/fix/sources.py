@@ -168,6 +168,9 @@ class _Spectra:
     def __init__(self, signals, fs, pairs, line_freqs_hz, line_width_hz):
         x = np.asarray(signals, float)
         x = x - x.mean(axis=1, keepdims=True)
+        # Hann taper: a line's sidelobes fall as 1/k^3 instead of 1/k (a strong hum would
+        # otherwise leak into every bin of the octave bands, PHAT weighting them all alike)
+        x = x * np.hanning(x.shape[1] + 2)[1:-1]
         self.fs = float(fs)
         self.n = x.shape[1]
         self.nfft = sfft.next_fast_len(2 * self.n, real=True)
@@ -178,16 +181,19 @@ class _Spectra:
         g = np.conj(spec[self.pairs[:, 0]]) * spec[self.pairs[:, 1]]
         self.unit = g / np.maximum(np.abs(g), 1e-300)
         lines = np.zeros(self.freqs.size, bool)
+        near = np.zeros(self.freqs.size, bool)
         for f0 in np.asarray(line_freqs_hz, float):
             lines |= np.abs(self.freqs - f0) <= line_width_hz
-        self.lines = lines
+            near |= np.abs(self.freqs - f0) <= line_guard_hz(self.duration_s)
+        self.lines = lines  # the lines' main lobes: the tonal band
+        self.near = near  # ...and their leakage: left out of the broadband bands
 
     def envelope(self, band_hz, tonal, exclude_lines):
         """Hilbert envelope of each pair's band-limited PHAT correlation, (P, nfft), lags
         circular, normalised so that one coherent source gives 1."""
         lo, hi = band_hz
         m = (self.freqs >= lo) & (self.freqs <= hi)
-        m = m & self.lines if tonal else (m & ~self.lines if exclude_lines else m)
+        m = m & self.lines if tonal else (m & ~self.near if exclude_lines else m)
         k = int(m.sum())
         if k < 4:
             return None
@@ -201,7 +207,7 @@ class _Spectra:
         """The band-limited PHAT correlation itself (real), (P, nfft)."""
         lo, hi = band_hz
         m = (self.freqs >= lo) & (self.freqs <= hi)
-        m = m & self.lines if tonal else (m & ~self.lines if exclude_lines else m)
+        m = m & self.lines if tonal else (m & ~self.near if exclude_lines else m)
         k = int(m.sum())
         if k < 4:
             return None
@@ -209,14 +215,51 @@ class _Spectra:
 
 
 def line_width_hz(duration_s):
-    """Half-width of a line in the spectrum of a span: two bins of 1 / duration."""
-    return 2.0 / max(float(duration_s), 1e-3)
+    """Half-width of a line in the spectrum of a span: the Hann main lobe, 2 / duration, plus
+    a quarter bin."""
+    return 2.25 / max(float(duration_s), 1e-3)
+
+
+def line_guard_hz(duration_s):
+    """Half-width left out around a line in the broadband bands: the Hann window's sidelobes
+    fall as 1 / k^3 in bins of 1 / duration (textbook), below -60 dB from about 6 bins; at
+    least 1 Hz."""
+    return max(1.0, 6.0 / max(float(duration_s), 1e-3))
+
+
+def remove_lines(signals, sample_rate_hz, lines_hz):
+    """The signals with each line's sinusoid (frequency refined, amplitude and phase per mic
+    by least squares) subtracted: the broadband rest without the hum's leakage."""
+    x = np.array(signals, dtype=float)
+    fs = float(sample_rate_hz)
+    n = x.shape[1]
+    t = np.arange(n) / fs
+    win = np.hanning(n + 2)[1:-1]
+    nfft = sfft.next_fast_len(8 * n, real=True)
+    spec = np.mean(np.abs(sfft.rfft(x * win, nfft, axis=-1)) ** 2, axis=0)
+    freqs = sfft.rfftfreq(nfft, 1 / fs)
+    for f0 in np.asarray(lines_hz, float):
+        near = np.flatnonzero(np.abs(freqs - f0) <= 2.0 / (n / fs))
+        if near.size < 3:
+            continue
+        k = near[int(np.argmax(spec[near]))]
+        if 0 < k < len(spec) - 1:  # parabolic peak on the log spectrum
+            y0, y1, y2 = np.log(spec[k - 1:k + 2] + 1e-300)
+            den = y0 - 2 * y1 + y2
+            frac = 0.5 * (y0 - y2) / den if den < 0 else 0.0
+        else:
+            frac = 0.0
+        f = freqs[k] + frac * (freqs[1] - freqs[0])
+        basis = np.stack([np.cos(2 * np.pi * f * t), np.sin(2 * np.pi * f * t)])  # (2, n)
+        coef = np.linalg.lstsq(basis.T, x.T, rcond=None)[0]  # (2, N)
+        x -= (basis.T @ coef).T
+    return x
 
 
 def _bins(spectra, band, tonal):
     lo, hi = band
     m = (spectra.freqs >= lo) & (spectra.freqs <= hi)
-    return int(np.sum(m & spectra.lines if tonal else m & ~spectra.lines))
+    return int(np.sum(m & spectra.lines if tonal else m & ~spectra.near))
 
 
 def _saddle_separated(bm, a_xy, b_xy, height_b):
@@ -351,6 +394,7 @@ def _best_tonal(bm, spectra, mics, pairs, c, z_m, wind):
     # polish the best on a finer grid
     gx, gy, vals = _refine(spectra, bm.band_hz, True, best[1:], step / 6, mics, pairs, c, z_m,
                            wind, n=13, envelope=False)
+    vals = vals
     j = int(np.argmax(vals))
     xy = (float(gx.ravel()[j]), float(gy.ravel()[j]))
     cands = []
@@ -358,7 +402,7 @@ def _best_tonal(bm, spectra, mics, pairs, c, z_m, wind):
         if v >= 0.9 * best[0] and np.hypot(x - xy[0], y - xy[1]) > 1.0 and all(
                 np.hypot(x - a, y - b) > 1.0 for a, b in cands):
             cands.append((x, y))
-    return xy, cands
+    return xy, cands, float(np.max(vals))
 
 
 def find_sources(maps, spectra, mic_positions_m, pairs, sound_speed_mps, *, z_m,
@@ -377,9 +421,12 @@ def find_sources(maps, spectra, mic_positions_m, pairs, sound_speed_mps, *, z_m,
         if top <= 0:
             continue
         if bm.tonal:  # one tonal source: the best of the maxima once all lines are used
-            xy, cands = _best_tonal(bm, spectra, mic_positions_m, pairs, sound_speed_mps, z_m,
-                                    wind_mps)
-            if top >= PEAK_SIGMAS * bm.sigma:
+            xy, cands, best = _best_tonal(bm, spectra, mic_positions_m, pairs, sound_speed_mps,
+                                          z_m, wind_mps)
+            all_lines = (0.0, spectra.freqs[-1])
+            sigma = 1.0 / np.sqrt(2.0 * max(_bins(spectra, all_lines, True) / 2.0, 1.0)
+                                  * len(pairs))
+            if best >= PEAK_SIGMAS * sigma:
                 found.append((top, xy, bm))
                 bm.candidates = cands
                 gx, gy, vals = _refine(spectra, bm.band_hz, True, xy, 5.0, mic_positions_m,

@@ -199,6 +199,12 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     if len(amb) > len(delays.pairs) // 2:
         fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
                             "do not rely on it without a broadband sound")
+    from locate.geometry.layout import mirror_note
+
+    used_names = [n for n, u in zip(names, fix.used) if u]
+    mirror = mirror_note(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
+    if mirror:
+        fix.warnings.append(mirror)
     echo = onset_mismatch(signals, recordings.sample_rate_hz, positions, fix.position_m,
                           cond.sound_speed_mps, names, wind_mps=cond.wind_mps, used=fix.used)
     if echo:

@@ -20,11 +20,14 @@ from locate.fix.solver import locate_source, predict_delays
 from locate.fix.sources import (
     SADDLE,
     find_sources,
+    line_guard_hz,
     line_width_hz,
+    remove_lines,
     site_grid,
     spectral_lines,
     srp_maps,
 )
+from locate.geometry.layout import mirror_note
 from locate.physics.air import travel_time_s
 from locate.results.documents import fix_to_dict
 from locate.signal.delays import all_pairs, estimate_delays
@@ -64,12 +67,15 @@ def source_maps(recordings, site, cond, start_s, stop_s, *, band_hz=None, source
 
 
 def _masked(signals, fs, band_hz, lines_hz, tonal):
-    """The signals with only the band's bins kept: its lines alone (tonal) or without them."""
+    """The signals with only the band's bins kept: its lines alone (tonal), or without them
+    (their sinusoids subtracted first, so that no leakage is left)."""
+    if not tonal and len(lines_hz):
+        signals = remove_lines(signals, fs, lines_hz)
     n = signals.shape[1]
     nfft = sfft.next_fast_len(n, real=True)
     f = sfft.rfftfreq(nfft, 1 / fs)
     on_line = np.zeros(f.size, bool)
-    width = line_width_hz(n / fs)
+    width = line_width_hz(n / fs) if tonal else line_guard_hz(n / fs)
     for f0 in lines_hz:
         on_line |= np.abs(f - f0) <= width
     keep = (f >= band_hz[0]) & (f <= band_hz[1])
@@ -183,6 +189,10 @@ def fix_sources(recordings, site, cond, start_s, stop_s, *, sources="auto", band
         if not peak.tonal and bm.value_at(fx.position_m[:2]) < SADDLE * peak.height:
             fx.warnings.append(f"the fix lies {moved:.1f} m from its map peak, where the "
                                f"{bm.label} map is low: treat it with care")
+        mirror = mirror_note(pos[np.asarray(fx.used, bool)], fx.position_m,
+                             [n for n, u in zip(names, fx.used) if u])
+        if mirror:
+            fx.warnings.append(mirror)
         if peak.tonal:
             fx.warnings.append("a tonal source (spectral lines): its correlation repeats "
                                "every period; all pairs jointly chose this position")
