@@ -46,3 +46,27 @@ def mirror_note(positions_m, point_m, names_used=None):
     return (f"the mics used{who} lie nearly on one line: a source at its mirror image across "
             f"the line, ({mirror[0]:.1f}, {mirror[1]:.1f}) m, gives nearly the same delays; "
             "the side of the line rests on small departures from it (move a mic off the line)")
+
+
+ENDFIRE_DEG = 10.0
+"""A source within this angle of the extension of a two-mic line is "near the extension"."""
+
+
+def endfire_pairs(positions_m, point_m, names, *, deg=ENDFIRE_DEG):
+    """Names "A-B" of the mic pairs whose line, extended beyond the pair, passes within
+    ``deg`` of ``point_m`` (seen from the pair's midpoint; horizontal).  There the pair's delay
+    is at its largest possible value and says almost nothing about the position (textbook:
+    the hyperbola degenerates to the baseline's extension)."""
+    pos = np.asarray(positions_m, float)[:, :2]
+    pt = np.asarray(point_m, float)[:2]
+    out = []
+    for a in range(len(pos)):
+        for b in range(a + 1, len(pos)):
+            base = pos[b] - pos[a]
+            s = pt - 0.5 * (pos[a] + pos[b])
+            nb, ns = np.linalg.norm(base), np.linalg.norm(s)
+            if nb <= 0 or ns <= 0.5 * nb:
+                continue
+            if abs(float(base @ s)) / (nb * ns) >= np.cos(np.radians(deg)):
+                out.append(f"{names[a]}-{names[b]}")
+    return out

@@ -199,12 +199,20 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     if len(amb) > len(delays.pairs) // 2:
         fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
                             "do not rely on it without a broadband sound")
-    from locate.geometry.layout import mirror_note
+    from locate.geometry.layout import endfire_pairs, mirror_note
 
     used_names = [n for n, u in zip(names, fix.used) if u]
     mirror = mirror_note(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
     if mirror:
         fix.warnings.append(mirror)
+    if (any("nearly undetermined" in w for w in fix.warnings)
+            and not any("near the extension" in w for w in fix.warnings)):
+        ends = endfire_pairs(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
+        if ends:  # say why, as the linearity check does
+            fix.warnings.append(f"the source is near the extension of the line through mics "
+                                f"{', '.join(ends)} (their delay is at its largest and says "
+                                "little about the position): a mic off that line, toward the "
+                                "source, would help")
     echo = onset_mismatch(signals, recordings.sample_rate_hz, positions, fix.position_m,
                           cond.sound_speed_mps, names, wind_mps=cond.wind_mps, used=fix.used)
     if echo:
