@@ -505,6 +505,8 @@ def simulate_events(mic_positions_m, events, *, sample_rate_hz=48000.0, duration
                                      pressure_kpa, wind_mps, sound_speed_mps, clock_offsets_s,
                                      clock_drift_ppm, ground_reflection)
     rng = np.random.default_rng(0) if rng is None else rng
+    walls = [(np.asarray(p, float).reshape(3), np.asarray(nv, float).reshape(3)
+              / np.linalg.norm(nv), float(g)) for p, nv, g in walls]
     events = tuple(events)
     n_mic, n_t = mics.shape[0], int(round(duration_s * fs))
     wv = None if wind_mps is None else wind

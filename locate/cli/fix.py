@@ -29,6 +29,7 @@ from locate.cli.common import (
     write_fix_outputs,
 )
 from locate.cli.field import field_checks, field_options
+from locate.cli.sources import check_sources_args, run_sources, sources_options
 from locate.errors import NothingFoundError, OptionError
 
 
@@ -64,13 +65,14 @@ from locate.errors import NothingFoundError, OptionError
               help="Uncertainty (one standard deviation, m) of --source-z; default 0.5 m for a "
                    "given height, 0.6 m for the assumed 1 m.  0: the height is exact.")
 @field_options
+@sources_options
 @click.pass_context
 @transactional
 def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps, json_path,
         csv_path, map_path, window_s, hop_s, sweep, threshold_db, panels_path, no_reject,
         chunk_s=None, chunk_overlap_s=30.0, scheduler=None, timeline_path=None,
         geojson_path=None, solve_air=False, solve_wind=False, events_choice=None,
-        source_z_sd_m=None):
+        source_z_sd_m=None, sources="1", sources_map_path=None):
     """Locate a stationary source: each detected event, one span (--from/--to), or
     sliding windows (--window)."""
     from locate.fix.air_solve import summary_lines as air_summary
@@ -83,11 +85,13 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     check_span_args(start_s, stop_s, window_s)
     from locate.cli.sweep import check_sweep_args, run_sweep
     check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path)
+    n_sources = check_sources_args(sources, sources_map_path, start_s, window_s, sweep,
+                                   solve_air, panels_path, dims)
     site = load(site_path, dims)
     inputs = site_inputs(site)
     check_outputs({"--json": json_path, "--csv": csv_path, "--map": map_path,
                    "--panels": panels_path, "--geojson": geojson_path,
-                   "--timeline": timeline_path}, inputs)
+                   "--timeline": timeline_path, "--sources-map": sources_map_path}, inputs)
     if map_path:
         check_sketch(site)
     choice, solve_air = field_checks(site, inputs, geojson_path=geojson_path, solve_air=solve_air,
@@ -97,6 +101,10 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
     start_s, stop_s = resolve_span(rec, start_s, stop_s, window_s)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
+    if n_sources != 1 or sources_map_path:
+        return run_sources(ctx, site, rec, cond, start_s, stop_s, n_sources, band_hz,
+                           source_z_m, sound_speed_mps, not no_reject, json_path, csv_path,
+                           geojson_path, map_path, sources_map_path)
     if sweep:
         if window_s > stop_s - start_s:
             raise OptionError(f"window {window_s:g} s is longer than the span "

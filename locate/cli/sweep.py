@@ -30,7 +30,7 @@ def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, d
     """``fix --window W --sweep``: every window at once (locate.workflows.sweep), summary on
     screen."""
     from locate.workflows.fixing import add_clock_times, fix_result
-    from locate.workflows.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines
+    from locate.workflows.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines, sweep_verdict
 
     hop_s = window_s if hop_s is None else hop_s
     n_windows = int((stop_s - start_s - window_s) // hop_s) + 1
@@ -43,13 +43,14 @@ def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, d
         for w in warnings:
             warn(w)
         raise NothingFoundError("no window gave a usable fix (see the warnings above)")
-    result = fix_result(site, cond, entries, warnings=warnings + [SWEEP_NOTE], dims=dims,
-                        source_z_m=source_z_m)
+    verdict = sweep_verdict(entries)
+    result = fix_result(site, cond, entries, warnings=verdict + warnings + [SWEEP_NOTE],
+                        dims=dims, source_z_m=source_z_m)
     add_clock_times(result, rec, site)
     lines, window_warnings = sweep_summary_lines(entries, window_s, hop_s, length=fmt_length)
     for line in lines:
         echo(ctx, line)
-    for w in window_warnings + result["warnings"]:
+    for w in window_warnings + [w for w in result["warnings"] if w not in verdict]:
         warn(w)
     write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_path,
                       compact=True)  # thousands of windows: compact JSON

@@ -43,6 +43,10 @@ the ellipse understates the uncertainty."""
 ENDFIRE_DEG = 10.0
 """A source within this angle of the extension of a two-mic line is 'near the extension'."""
 
+FAR_NOTE_APERTURES = 100.0
+"""Beyond this many apertures a distance is not printed as a figure: the delays cannot tell it
+from infinity, so "beyond about 552268051 m" would be a number without meaning."""
+
 _INFINITY_APERTURES = 1e7  # "infinite" range for the far-field test, in apertures
 _HARD_LIMIT_APERTURES = 1e4  # beyond this the position is never a measurement
 _MAX_ENLARGE = 1e4  # largest variance factor the linearity check applies
@@ -197,10 +201,14 @@ def assess_fix(problem, x, chi2_min, covariance, inflation, names):
         if range_m > _HARD_LIMIT_APERTURES * aperture or not rise >= stats.chi2.ppf(0.95, 1):
             nearest = _nearest_fitting_range(problem, bearing, elevation, chi2_min, scale,
                                              aperture)
+            far = FAR_NOTE_APERTURES * aperture
+            where = (f"at any distance beyond about {nearest:.0f} m" if nearest <= far else
+                     f"far away (beyond {far:.0f} m, over {FAR_NOTE_APERTURES:.0f} times the "
+                     "array's width)")
             message = (f"the delays give a bearing but no range: a source toward "
-                       f"{bearing_deg:.0f} deg at any distance beyond about {nearest:.0f} m "
-                       f"fits them (the array is {aperture:.0f} m wide); mics spread wider or "
-                       "nearer the source would give a position")
+                       f"{bearing_deg:.0f} deg {where} fits them (the array is "
+                       f"{aperture:.0f} m wide); mics spread wider or nearer the source would "
+                       "give a position")
             if range_m > _HARD_LIMIT_APERTURES * aperture:
                 raise NothingFoundError(message)  # a position out there is no measurement
             return [message], np.full_like(np.asarray(covariance, float), np.inf)

@@ -25,7 +25,14 @@ import warnings
 import numpy as np
 from scipy import fft as sfft
 
-from locate.signal.events import FRAME_S, Event, frame_energy_db
+from locate.signal.events import (
+    FRAME_S,
+    ONSET_GATE_DB,
+    Event,
+    frame_energy_db,
+    whitened_energy_db,
+    whitening_window,
+)
 
 __all__ = ["EventStream", "stream_frame_energy", "scan_recordings"]
 
@@ -50,8 +57,9 @@ class EventStream:
 
     def __init__(self, n_mics, *, frame_s=FRAME_S, t0_s=0.0, threshold_db=10.0, min_mics=3,
                  max_spread_s=0.5, min_gap_s=0.3, background_s=5.0, pad_s=0.05,
-                 min_duration_s=0.0):
+                 min_duration_s=0.0, peak_db=None):
         self.n_mics = int(n_mics)
+        self.peak_db = None if peak_db is None else float(peak_db)
         self.frame_s, self.t0_s = float(frame_s), float(t0_s)
         self.threshold_db, self.pad_s = float(threshold_db), float(pad_s)
         self.min_mics = min(int(min_mics), self.n_mics)
@@ -168,7 +176,7 @@ class EventStream:
         level = float(np.max(np.where(act, abv, -np.inf)))
         loud = int(np.argmax(np.max(np.where(act, abv, -np.inf), axis=1)))
         duration = float(offset[loud] - onset[loud])
-        if duration < self.min_duration_s:
+        if duration < self.min_duration_s or (self.peak_db is not None and level < self.peak_db):
             return
         self.events.append(Event(
             t_start_s=float(max(np.nanmin(onset) - self.pad_s, self.t0_s)),
@@ -177,18 +185,22 @@ class EventStream:
 
 
 def stream_frame_energy(recordings, start_s, stop_s, *, frame_s=FRAME_S, band_hz=None,
-                        block_s=10.0, pad_s=0.5):
+                        block_s=10.0, pad_s=0.5, whiten=False):
     """Yield ``(seconds covered, energy (N, F))`` over ``[start_s, stop_s)`` block by block.
 
     Frames are ``round(frame_s * fs)`` samples on a grid from ``start_s``.  With a band, each
     block is read with ``pad_s`` more audio on each side (where all mics have it), band-passed
     as a whole (FFT mask) and only the frames of the block itself are kept, so block edges
-    leave no filter transients.  Memory: one padded block.
+    leave no filter transients.  With ``whiten`` the envelope is
+    :func:`locate.signal.events.whitened_energy_db` of each padded block (its background
+    spectrum from the block and its padding).  Memory: one padded block.
     """
     fs = recordings.sample_rate_hz
     frame = max(int(round(frame_s * fs)), 1)
     block = max(int(block_s * fs) // frame, 1) * frame
-    pad = int(np.ceil(pad_s * fs)) if band_hz is not None else 0
+    pad = int(np.ceil(pad_s * fs)) if band_hz is not None or whiten else 0
+    if whiten:
+        pad = max(pad, whitening_window(fs))
     n0, n_stop = int(round(start_s * fs)), int(round(stop_s * fs))
     lo_all = int(np.ceil(recordings.start_s * fs))
     hi_all = int(np.floor(recordings.stop_s * fs))
@@ -200,6 +212,12 @@ def stream_frame_energy(recordings, start_s, stop_s, *, frame_s=FRAME_S, band_hz
         # gaps_ok: a deployment's uncovered frames are blanked below, not read as signal
         raw, _ = recordings.read(a / fs, b / fs, out=raw, scratch=scratch, gaps_ok=True)
         sig = raw
+        if whiten:
+            n_fr = (k_end - k) // frame
+            yield (k_end - k) / fs, whitened_energy_db(sig, fs, frame=frame, n_frames=n_fr,
+                                                       history=k - a, band_hz=band_hz)
+            k = k_end
+            continue
         if band_hz is not None:
             sig = _band(sig, fs, band_hz)
         e = frame_energy_db(sig[:, k - a:k_end - a], fs, frame_s=frame / fs)
@@ -231,7 +249,8 @@ def _band(sig, fs, band_hz):
 
 
 def scan_recordings(recordings, start_s, stop_s, *, band_hz=None, threshold_db=10.0,
-                    min_mics=3, max_spread_s=0.5, progress=None, block_s=10.0, **detect):
+                    min_mics=3, max_spread_s=0.5, progress=None, block_s=10.0, whiten=False,
+                    **detect):
     """Detect events over a span of the recordings in bounded memory.
 
     Parameters
@@ -244,6 +263,10 @@ def scan_recordings(recordings, start_s, stop_s, *, band_hz=None, threshold_db=1
     progress : callable, optional
         Called with the seconds scanned after each block.
     block_s : float
+    whiten : bool
+        Detect on the pre-whitened envelope (:func:`locate.signal.events.whitened_energy_db`):
+        a mic hears the event from ``threshold_db - ONSET_GATE_DB`` and the event must reach
+        ``threshold_db`` in its loudest mic.
 
     Returns
     -------
@@ -251,11 +274,14 @@ def scan_recordings(recordings, start_s, stop_s, *, band_hz=None, threshold_db=1
     """
     fs = recordings.sample_rate_hz
     frame = max(int(round(FRAME_S * fs)), 1)
+    if whiten:
+        detect.setdefault("peak_db", threshold_db)
+        threshold_db = threshold_db - ONSET_GATE_DB
     stream = EventStream(recordings.n_mics, frame_s=frame / fs, t0_s=float(start_s),
                          threshold_db=threshold_db, min_mics=min_mics,
                          max_spread_s=max_spread_s, **detect)
     for seconds, e in stream_frame_energy(recordings, start_s, stop_s, frame_s=frame / fs,
-                                          band_hz=band_hz, block_s=block_s):
+                                          band_hz=band_hz, block_s=block_s, whiten=whiten):
         stream.add(e)
         if progress is not None:
             progress(seconds)

@@ -95,7 +95,7 @@ def scan_events(recordings, positions_m, cond, *, band_hz=None, start_s=None, st
     return scan_recordings(recordings, a, b, band_hz=band_hz, threshold_db=threshold_db,
                            min_mics=min(3, recordings.n_mics),
                            max_spread_s=_array_spread_s(positions_m, cond), pad_s=0.05,
-                           progress=progress, block_s=block_s)
+                           progress=progress, block_s=block_s, whiten=True)
 
 
 def plan_spans(events, recordings, positions_m, cond):
@@ -150,10 +150,39 @@ def resolve_source_height(source_z_m, source_z_sd_m=None, dims=2):
     return z, float(sd), "given" if given else "assumed"
 
 
+def _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz, max_lag, pairs):
+    """The bang's own delays (locate.signal.onsets): the background before the earliest
+    onset measured and removed, the onset part correlated; None without enough background."""
+    from locate.signal.onsets import MIN_BACKGROUND_S, onset_delays
+
+    onset_s = np.asarray(onset_s, float)
+    if not np.any(np.isfinite(onset_s)):
+        return None
+    first = float(np.nanmin(onset_s))
+    lo = max(recordings.start_s, first - EVENT_BACKGROUND_S)
+    if first - lo < MIN_BACKGROUND_S + 0.02:
+        return None
+    signals, residual = recordings.read(lo, stop_s)
+    fs = recordings.sample_rate_hz
+    onset_idx = (onset_s - lo) * fs
+    return onset_delays(signals, fs, onset_idx, max_lag_s=max_lag, pairs=pairs,
+                        band_hz=band_hz, t_s=lo, offsets_s=residual,
+                        spread_s=_array_spread_s(site.positions_m, cond))
+
+
+EVENT_BACKGROUND_S = 1.0
+"""Stretch before an event's earliest onset read to measure the steady background, s."""
+
+
 def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, source_z_m=0.0,
              keep_curves=False, reject=True, t_s=None, extra_covariance=None,
-             source_z_sd_m=0.0):
+             source_z_sd_m=0.0, onset_s=None):
     """Read one span, estimate delays and fix the source.
+
+    ``onset_s`` (N,), the detected onsets of an event at each mic (NaN: not heard), selects
+    the event path: the bang's own delays with the steady background before it removed
+    (:func:`locate.signal.onsets.onset_delays`), falling back to the whole span when the
+    recording holds too little background before the event.
 
     Returns
     -------
@@ -176,11 +205,16 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     warnings = check_signals(signals, names)
     pairs = all_pairs(len(names))
     max_lag = search_lags_s(site, cond, pairs)
-    delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
-                             band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
-                             keep_curves=keep_curves)
-    delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz, max_lag,
-                             keep_curves)
+    delays = None
+    if onset_s is not None and not keep_curves:
+        delays = _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz,
+                               max_lag, pairs)
+    if delays is None:
+        delays = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
+                                 band_hz=band_hz, pairs=pairs, offsets_s=residual, t_s=start_s,
+                                 keep_curves=keep_curves)
+        delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz,
+                                 max_lag, keep_curves)
     # the ground reflection's bias in every pair's uncertainty; its peak is no ambiguity
     if ground_datum_m(site) is not None:
         delays = reflection_uncertainty(delays, positions, cond, dims=dims,
@@ -214,6 +248,20 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     if len(amb) > len(delays.pairs) // 2:
         fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
                             "do not rely on it without a broadband sound")
+    from locate.geometry.layout import endfire_pairs, mirror_note
+
+    used_names = [n for n, u in zip(names, fix.used) if u]
+    mirror = mirror_note(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
+    if mirror:
+        fix.warnings.append(mirror)
+    if (any("nearly undetermined" in w for w in fix.warnings)
+            and not any("near the extension" in w for w in fix.warnings)):
+        ends = endfire_pairs(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
+        if ends:  # say why, as the linearity check does
+            fix.warnings.append(f"the source is near the extension of the line through mics "
+                                f"{', '.join(ends)} (their delay is at its largest and says "
+                                "little about the position): a mic off that line, toward the "
+                                "source, would help")
     echo = onset_mismatch(signals, recordings.sample_rate_hz, positions, fix.position_m,
                           cond.sound_speed_mps, names, wind_mps=cond.wind_mps, used=fix.used)
     if echo:

@@ -118,6 +118,7 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         warnings.extend(notes)
         spans = plan_spans(events, rec, site.positions_m, cond)
         times = [float(np.nanmin(ev.onset_s)) for ev in events]
+        onsets = [ev.onset_s for ev in events]
     elif window_s is not None:
         if window_s > stop_s - start_s:
             raise OptionError(f"window {window_s:g} s is longer than the span "
@@ -125,16 +126,18 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         edges = np.arange(start_s, stop_s - window_s + 1e-9, window_s)
         spans = [(float(a), float(a + window_s)) for a in edges]
         times = [a for a, _ in spans]
+        onsets = [None] * len(spans)
     else:
         spans, times = [(start_s, stop_s)], [start_s]
+        onsets = [None]
     entries = []
     with progress("Locating", len(spans)) as bar:
-        for (a, b), t in zip(spans, times):
+        for (a, b), t, on in zip(spans, times, onsets):
             try:
                 entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
                                             source_z_m=source_z_m, reject=reject,
                                             keep_curves=keep_curves, t_s=t,
-                                            source_z_sd_m=source_z_sd_m)
+                                            source_z_sd_m=source_z_sd_m, onset_s=on)
                 if solve_air and entry.get("absent_mics"):
                     entry["warnings"].append("the sound speed was not solved for this fix: "
                                              "some mics had no audio over it")

@@ -23,7 +23,11 @@ from locate.signal.delays import all_pairs, estimate_delays
 from locate.signal.windowed import recording_window_delays
 from locate.workflows.fixing import search_lags_s
 
-__all__ = ["sweep_fixes", "SWEEP_NOTE"]
+__all__ = ["sweep_fixes", "SWEEP_NOTE", "AMBIGUOUS_VERDICT", "sweep_verdict"]
+
+AMBIGUOUS_VERDICT = ("most pairs are ambiguous: this position may be one of several; do not "
+                     "rely on it without a broadband sound")
+"""The verdict of a window whose pairs are mostly ambiguous (as a single fix says it)."""
 
 SWEEP_NOTE = ("windows fixed by the fast sweep (windowed delays, batched locator): no echo "
               "check, no uncertainty budget and no pair delays kept per window - the ellipses "
@@ -122,8 +126,10 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
                 continue
             t0 = float(wd.t_s[w])
             entry = fix_to_dict(fx, wd.window(w), names, t_s=t0, span_s=(t0, t0 + window_s))
+            verdict = ([AMBIGUOUS_VERDICT] if sum(q == "ambiguous" for q in wd.quality[w])
+                       > len(pairs) // 2 else [])
             entry["warnings"] = list(dict.fromkeys(
-                _quality_notes(wd.quality[w], pairs, names) + list(fx.warnings)))
+                verdict + _quality_notes(wd.quality[w], pairs, names) + list(fx.warnings)))
             entry["uncertainty_budget"] = None
             entry["delays"] = []  # per-pair delays of every window: too many to keep
             entries.append(entry)
@@ -132,6 +138,18 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
     notes = [f"{missing} window(s) gave no position (no usable delays or geometry)"] \
         if missing else []
     return entries, notes
+
+
+def sweep_verdict(entries):
+    """The sweep's own "do not rely" warning when windows carry :data:`AMBIGUOUS_VERDICT`
+    (empty list otherwise)."""
+    n_bad = sum(AMBIGUOUS_VERDICT in e["warnings"] for e in entries)
+    if not n_bad:
+        return []
+    return [f"{n_bad} of {len(entries)} window(s): most pairs are ambiguous (a tonal or "
+            "periodic sound): their positions, and the median of them, may be one of several; "
+            "do not rely on them without a broadband sound (tdoa fix --sources auto resolves "
+            "tonal sounds with all pairs jointly where the geometry allows)"]
 
 
 def sweep_summary_lines(entries, window_s, hop_s, max_warnings=5,
@@ -154,9 +172,12 @@ def sweep_summary_lines(entries, window_s, hop_s, max_warnings=5,
     minor = np.array([e["ellipse95"]["semi_minor_m"] or np.nan for e in entries], float)
     n_rej = sum(bool(e["rejected_mics"]) for e in entries)
     t0, t1 = entries[0]["span_s"][0], entries[-1]["span_s"][1]
+    verdict = sweep_verdict(entries)
+    unreliable = sum(AMBIGUOUS_VERDICT in e["warnings"] for e in entries) * 2 >= len(entries)
     lines = [f"{len(entries)} window(s) of {window_s:g} s every {hop_s:g} s, "
              f"{t0:.2f}..{t1:.2f} s",
-             f"   median position x {med[0]:.2f} m, y {med[1]:.2f} m, z {med[2]:.2f} m; "
+             ("   NOT RELIABLE (most pairs ambiguous): " if unreliable else "   ")
+             + f"median position x {med[0]:.2f} m, y {med[1]:.2f} m, z {med[2]:.2f} m; "
              f"95 % of the fixes within {length(np.quantile(dist, 0.95))} of it",
              f"   median 95 % ellipse {length(np.nanmedian(major))} x "
              f"{length(np.nanmedian(minor))} "
@@ -165,4 +186,4 @@ def sweep_summary_lines(entries, window_s, hop_s, max_warnings=5,
     if len(warns) > max_warnings:
         warns = warns[:max_warnings] + [f"... and {len(warns) - max_warnings} more window "
                                         "warning(s) in the result JSON"]
-    return lines, warns
+    return lines, verdict + warns
