@@ -63,6 +63,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
 
 def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
            sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
+    from locate.accuracy.inputs import declared_sds
     from locate.io.audio import open_recordings
     from locate.results.documents import check_output_path, write_json
     from locate.track.tracker import track_recording, track_to_dict
@@ -99,14 +100,18 @@ def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_
                 bar.update(step)
                 state["done"] += step
 
+        sds = declared_sds(site)
         res = track_recording(signals, rec.sample_rate_hz, site.positions_m,
                               cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
                               hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,
                               wind_mps=cond.wind_mps, model=model, segment_s=segment_s,
                               expected_speed_mps=speed_guess_mps, points_m=np.array(points),
-                              bearing_from_m=bearing_from, tone_hz=tone_hz, progress=progress)
+                              bearing_from_m=bearing_from, tone_hz=tone_hz,
+                              nuisance_sds=sds, progress=progress)
     doc = track_to_dict(res, site.mic_names, point_names=names)
     warnings = list(rec.warnings) + list(res.warnings)
+    if res.uncertainty.get("timing_only"):
+        warnings.append("track uncertainties are " + res.uncertainty["note"])
     result = fix_result(site, cond, [], kind="track", warnings=warnings, dims=dims,
                         source_z_m=source_z_m,
                         extra={"track": doc, "span_s": [start_s, stop_s]})

@@ -354,11 +354,20 @@ def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, soun
     cum = _normalised(curves)
     centre = mics.mean(axis=0)
     ap = max(float(np.max(np.linalg.norm(mics - centre, axis=1))), 1.0)
-    t_cpa = np.linspace(t_c[0], t_c[-1], 9)
     heading = np.deg2rad(np.arange(0.0, 360.0, 15.0))
-    speed = expected_speed_mps * np.array([0.6, 1.0, 1.6])
-    miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
-    height = [source_z_m] if dims == 2 else list(centre[2] + ap * np.array([0.5, 1.2, 2.5]))
+    # speeds from a third to three times the guess, physical ones only (below 0.9 c)
+    speed = expected_speed_mps * np.array([0.35, 0.6, 1.0, 1.6, 2.8])
+    speed = np.unique(np.clip(speed, 0.5, 0.9 * sound_speed_mps))
+    if dims == 2:
+        miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
+        height = [source_z_m]
+    else:  # aircraft: up to ~20 apertures away and high up
+        miss = ap * np.array([-12.0, -4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0, 12.0])
+        height = list(centre[2] + ap * np.array([0.5, 1.2, 2.5, 6.0, 15.0]))
+    # closest-approach (emission) times: the heard span moved back by the travel time from
+    # the farthest grid paths (retarded-time lags of seconds for distant sources)
+    far = float(np.hypot(np.max(np.abs(miss)), np.max(np.abs(np.array(height) - centre[2]))))
+    t_cpa = np.linspace(t_c[0] - far / sound_speed_mps, t_c[-1], 9 if far < 2000 else 13)
     g = np.array(np.meshgrid(t_cpa, heading, speed, miss, height, indexing="ij")).reshape(5, -1)
     d_hat = np.stack([np.sin(g[1]), np.cos(g[1]), 0 * g[1]], -1)
     n_hat = np.stack([np.cos(g[1]), -np.sin(g[1]), 0 * g[1]], -1)

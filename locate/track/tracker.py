@@ -26,6 +26,7 @@ from locate.errors import NothingFoundError, OptionError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
 from locate.track import delays as track_delays
+from locate.track import budget as track_budget
 from locate.track import doppler
 from locate.track import models as track_models
 from locate.track import start as track_start
@@ -303,7 +304,7 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                     window_s=None, hop_s=None, band_hz=None, dims=2, source_z_m=0.0,
                     wind_mps=None, model="straight", segment_s=None, expected_speed_mps=20.0,
                     reference_mic=0, points_m=None, bearing_from_m=None, tone_hz=None,
-                    passes=4, allow_stationary=False, progress=None):
+                    passes=4, allow_stationary=False, nuisance_sds=None, progress=None):
     """Reconstruct a moving source's track from synchronised recordings.
 
     Parameters
@@ -337,6 +338,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         Warped refinement passes at most.
     allow_stationary : bool
         Return a stationary-looking result instead of raising.
+    nuisance_sds : dict, optional
+        Declared survey, clock, sound-speed and wind sds
+        (:func:`locate.accuracy.inputs.declared_sds`); they enter the points, heading and
+        speed (:mod:`locate.track.budget`).  None or nothing declared: timing only, and the
+        result says so.
     progress : callable(done, total), optional
 
     Returns
@@ -509,8 +515,24 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     fit = dataclasses.replace(fit, covariance=fit.covariance * overlap_factor(window_s, hop_s),
                               covariance_scale=fit.covariance_scale
                               * overlap_factor(window_s, hop_s))
-    result = describe_fit(fit, mics, c, wind_mps, bearing_from_m=bearing_from_m,
-                          points_m=points_m, model=chosen.model)
+    describe_kw = dict(bearing_from_m=bearing_from_m, points_m=points_m, model=chosen.model)
+    if track_budget.has_declared(nuisance_sds):
+        bud = track_budget.track_budget(fit, meas[1], meas[2], mics, pairs, c, wind_mps,
+                                        nuisance_sds)
+        timing_cov = describe_fit(fit, mics, c, wind_mps, **describe_kw).covariance_m2
+        fit = dataclasses.replace(fit, covariance=fit.covariance + bud["theta_cov"])
+        result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
+        result.covariance_m2 = timing_cov + bud["point_cov"]
+        shares = {k: round(v, 4) for k, v in bud["components"].items()}
+        result.uncertainty = {
+            "declared": True, "timing_only": False, "components_share": shares,
+            "note": "includes the declared " + ", ".join(
+                f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
+                for k, v in shares.items()) + " uncertainties (first-order propagation)"}
+    else:
+        result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
+        result.uncertainty = {"declared": False, "timing_only": True,
+                              "note": track_budget.TIMING_ONLY_NOTE}
     eps, cov_w, ok_w, warp_used = meas
     wpar = _par_of(warp_used, dims, source_z_m)
     pred_w = predict_delays(wpar, wpar.theta(warp_used), centres, mics, pairs, c, wind_mps,
@@ -635,6 +657,7 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
         "misfit_bad_window_fraction": result.misfit.get("bad_window_fraction"),
         "model_adequate": result.adequate, "flagged": not result.adequate,
         "turns": result.turns, "uncertainty": result.uncertainty,
+        "uncertainty_note": result.uncertainty.get("note"),
         "velocity_mps": result.velocity_mps.tolist(), "model": result.model,
         "segments": result.segments, "closest_approach": closest,
         "bearing_from_m": result.bearing_from_m.tolist(),
