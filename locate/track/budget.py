@@ -117,8 +117,6 @@ def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed
     jw = np.einsum("wqp,wpn->wqn", m_w, jac).reshape(-1, par.n_params)
     solve = np.linalg.pinv(jw.T @ jw) @ jw.T  # (n, W*P)
     n_w = len(t_h)
-    t_e0 = fit.t_emit_s
-    p0 = fit.path.position_m(t_e0)
     theta_cov = np.zeros((par.n_params, par.n_params))
     point_cov = np.zeros((n_w, 3, 3))
     by = {}

@@ -25,8 +25,8 @@ import numpy as np
 from locate.errors import NothingFoundError, OptionError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
-from locate.track import delays as track_delays
 from locate.track import budget as track_budget
+from locate.track import delays as track_delays
 from locate.track import doppler
 from locate.track import models as track_models
 from locate.track import start as track_start
