@@ -16,9 +16,10 @@ that any candidate kept (a window one model rejects as an outlier still counts a
 BIC wins; the straight model is kept unless another beats it.
 
 Adequacy (the stated test): the chosen model explains the windows when its reduced
-chi-square ``chi2 / dof`` is below :data:`MISFIT_LIMIT` and no more than
+chi-square ``chi2 / dof`` is below :data:`MISFIT_LIMIT`, no more than
 :data:`BAD_WINDOW_FRACTION` of the kept windows exceed the 99.9 % point of their chi-square
-distribution (scipy.stats.chi2).  Otherwise the track is flagged and every point's covariance
+distribution (scipy.stats.chi2), and it keeps at least :data:`MIN_KEPT_FRACTION` of all
+windows.  Otherwise the track is flagged and every point's covariance
 grows by the covariance of its own window's fix plus the square of the displacement that
 window asks for (:func:`window_displacements`): the model error, measured at that point.
 """
@@ -33,7 +34,7 @@ from scipy import stats
 
 from locate.errors import ConvergenceError, NothingFoundError
 from locate.physics import air
-from locate.track.pathfit import PathFit, fit_path
+from locate.track.pathfit import PathFit, fit_path, max_speed_mps
 
 __all__ = ["MODELS", "MISFIT_LIMIT", "BAD_WINDOW_FRACTION", "Candidate", "bic", "adequacy",
            "choose_model", "window_displacements", "turns"]
@@ -43,6 +44,9 @@ MISFIT_LIMIT = 2.0
 """Largest reduced chi-square of an adequate model (delay covariances are estimates; a factor
 of about two is within what they may be off by on real recordings; common practice)."""
 BAD_WINDOW_FRACTION = 0.1
+MIN_KEPT_FRACTION = 0.7
+"""A model that keeps (explains, or has usable delays in) fewer of the windows than this does
+not describe the pass: windows it drops are windows it cannot account for."""
 _MAX_TURNS = 6
 _SMOOTH_INTERVALS = (1, 2, 3)
 
@@ -90,18 +94,20 @@ def adequacy(fit: PathFit) -> dict:
     red = fit.chi2 / fit.dof if fit.dof > 0 else float("nan")
     bad = used & (p < 1e-3)
     frac = float(bad.sum() / max(used.sum(), 1))
-    ok = bool(np.isfinite(red) and red <= MISFIT_LIMIT and frac <= BAD_WINDOW_FRACTION)
+    kept = float(used.mean()) if used.size else 0.0
+    ok = bool(np.isfinite(red) and red <= MISFIT_LIMIT and frac <= BAD_WINDOW_FRACTION
+              and kept >= MIN_KEPT_FRACTION)
     return {"chi2_reduced": float(red), "window_chi2_reduced": red_w, "window_p": p,
-            "bad_window_fraction": frac, "adequate": ok}
+            "bad_window_fraction": frac, "kept_fraction": kept, "adequate": ok}
 
 
-def _fit(model, knots, degree, data, initial, max_nfev=200):
+def _fit(model, knots, degree, data, initial, max_nfev=200, reject=True):
     t_c, eps, cov, ok, warp, mics, pairs, c, kw = data
     try:
         f = fit_path(t_c, eps, cov, mics, pairs, c, usable=ok, warp=warp, initial=initial,
                      knots_s=knots, degree=degree, model="segments" if degree == 1 else "smooth",
-                     max_nfev=max_nfev, **kw)
-        if not np.all(np.isfinite(f.theta)):
+                     max_nfev=max_nfev, reject=reject, **kw)
+        if not np.all(np.isfinite(f.theta)) or max_speed_mps(f.par, f.theta) >= 0.95 * c:
             return None
     except (ConvergenceError, NothingFoundError, np.linalg.LinAlgError):
         return None
@@ -144,7 +150,7 @@ def _greedy_segments(base: Candidate, data, union, log_n, t_emit, seed=None):
     dims = base.fit.par.dims
     for _ in range(_MAX_TURNS):
         knots = best.fit.par.knot_times_s
-        grid = np.linspace(lo, hi, 14)[1:-1]
+        grid = np.linspace(lo, hi, 11)[1:-1]
         step = grid[1] - grid[0]
         gap = 2.0 * np.median(np.diff(te))
         trials = []
@@ -152,7 +158,9 @@ def _greedy_segments(base: Candidate, data, union, log_n, t_emit, seed=None):
             if np.min(np.abs(knots - t)) < max(gap, 0.25 * step):
                 continue
             k2 = np.sort(np.append(knots, t))
-            cand = _fit("segments", k2, 1, data, best.fit.path, max_nfev=40)
+            # a few Gauss-Newton steps rank the knot times (the current path is exactly
+            # representable with the extra knot, so they start from it)
+            cand = _fit("segments", k2, 1, data, best.fit.path, max_nfev=4, reject=False)
             if cand is not None:
                 trials.append((window_misfit(cand.fit, union), t))
         if not trials:
@@ -160,7 +168,7 @@ def _greedy_segments(base: Candidate, data, union, log_n, t_emit, seed=None):
         trials.sort()
         t0 = trials[0][1]
         # refine the knot time around the best grid point (golden-free: a few local trials)
-        local = [t0 + f * step for f in (-0.5, -0.25, 0.0, 0.25, 0.5)]
+        local = [t0 + f * step for f in (-0.4, 0.0, 0.4)]
         refined = []
         for t in local:
             if not lo < t < hi or np.min(np.abs(knots - t)) < gap:
@@ -206,6 +214,20 @@ def choose_model(requested, straight: PathFit, data, *, segment_s=None, seed=Non
     union = straight.window_dof >= straight.par.dims + 1
     log_n = np.log(max(int(np.sum(straight.window_dof[union])), 1))
     lo, hi = straight.par.knot_times_s[0], straight.par.knot_times_s[-1]
+    if requested in ("auto", "smooth"):
+        for k in _SMOOTH_INTERVALS:
+            c = _fit("smooth", np.linspace(lo, hi, k + 1), 2, data, straight.path)
+            if c is not None:
+                cands.append(c)
+    if requested == "auto":
+        # Occam first: when the simplest candidates already explain the windows, the search
+        # for turns is skipped
+        for c in cands:
+            union = union | c.fit.used
+        bic(cands, union)
+        best = min(cands, key=lambda c: c.bic)
+        if adequacy(best.fit)["adequate"]:
+            return best, cands
     if requested in ("auto", "segments"):
         if segment_s is not None:
             n_seg = int(np.clip(round((hi - lo) / segment_s), 1, max(1, union.sum() // 3)))
@@ -216,11 +238,6 @@ def choose_model(requested, straight: PathFit, data, *, segment_s=None, seed=Non
             cands.append(_greedy_segments(base, data, union, log_n, t_emit,
                                           seed if seed is not None
                                           and seed.model == "segments" else None))
-    if requested in ("auto", "smooth"):
-        for k in _SMOOTH_INTERVALS:
-            c = _fit("smooth", np.linspace(lo, hi, k + 1), 2, data, straight.path)
-            if c is not None:
-                cands.append(c)
     for c in cands:
         union = union | c.fit.used
     bic(cands, union)
@@ -272,7 +289,7 @@ def inflate(covariance_m2, shift_m, window_cov_m2, window_chi2_reduced):
             + np.einsum("wi,wj->wij", shift_m, shift_m))
 
 
-def turns(fit: PathFit, min_change_deg=10.0):
+def turns(fit: PathFit, min_change_deg=10.0, merge_s=1.0):
     """Inner knots of a piecewise-straight fit where the heading changes, with the change."""
     par = fit.par
     if par.degree != 1 or par.n_knots < 3:
@@ -287,9 +304,26 @@ def turns(fit: PathFit, min_change_deg=10.0):
         change = float((a_out - a_in + 180.0) % 360.0 - 180.0)
         out.append({"t_s": float(kt[k]), "heading_change_deg": change,
                     "speed_before_mps": float(np.linalg.norm(v_in)),
-                    "speed_after_mps": float(np.linalg.norm(v_out)),
-                    "is_turn": bool(abs(change) >= min_change_deg)})
-    return out
+                    "speed_after_mps": float(np.linalg.norm(v_out))})
+    # knots closer than merge_s with changes of one sense are one manoeuvre: its time is the
+    # change-weighted mean of theirs
+    merged = []
+    for t in out:
+        last = merged[-1] if merged else None
+        if (last is not None and t["t_s"] - last["t_last_s"] < merge_s
+                and np.sign(t["heading_change_deg"]) == np.sign(last["heading_change_deg"])):
+            w0, w1 = abs(last["heading_change_deg"]), abs(t["heading_change_deg"])
+            last["t_s"] = (last["t_s"] * w0 + t["t_s"] * w1) / max(w0 + w1, 1e-12)
+            last["heading_change_deg"] += t["heading_change_deg"]
+            last["speed_after_mps"] = t["speed_after_mps"]
+            last["t_last_s"] = t["t_s"]
+            last["knots_s"].append(t["t_s"])
+        else:
+            merged.append(dict(t, t_last_s=t["t_s"], knots_s=[t["t_s"]]))
+    for m in merged:
+        m.pop("t_last_s")
+        m["is_turn"] = bool(abs(m["heading_change_deg"]) >= min_change_deg)
+    return merged
 
 
 def replace_covariance(fit: PathFit, factor: float) -> PathFit:
@@ -301,4 +335,45 @@ def prune(chosen: Candidate, data, windows) -> Candidate:
     """Backward elimination of the inner knots of a piecewise-straight choice on ``windows``."""
     log_n = np.log(max(int(np.sum(chosen.fit.window_dof[windows])), 1))
     best, _ = _prune(chosen, data, windows, log_n)
+    return best
+
+
+def polish_knots(chosen: Candidate, data, windows, max_evals=10) -> Candidate:
+    """Move each inner knot of a piecewise-straight choice to the time that fits best.
+
+    One bounded scalar search per knot (scipy.optimize.minimize_scalar, Brent's bounded
+    method) of the chi-square over ``windows``, each window's term capped at ten times its
+    99.99 % point so that a window no path explains does not steer the knot.
+    """
+    from scipy import optimize
+
+    best = chosen
+    dof = np.maximum(best.fit.window_dof, 1)
+    cap = 10.0 * stats.chi2.isf(1e-4, dof)
+
+    def score(cand):
+        return float(np.sum(np.minimum(cand.fit.window_chi2, cap)[windows]))
+
+    for k in range(1, best.fit.par.n_knots - 1):
+        kt = best.fit.par.knot_times_s
+        gap = 0.1 * min(kt[k] - kt[k - 1], kt[k + 1] - kt[k])
+        lo, hi = kt[k - 1] + gap, kt[k + 1] - gap
+        cache = {}
+
+        def f(t, kt=kt, k=k, cache=cache):
+            k2 = kt.copy()
+            k2[k] = t
+            cand = _fit("segments", k2, 1, data, best.fit.path, reject=False)
+            cache[t] = cand
+            return np.inf if cand is None else score(cand)
+
+        sol = optimize.minimize_scalar(f, bounds=(lo, hi), method="bounded",
+                                       options={"xatol": 0.02, "maxiter": max_evals})
+        base = score(best)
+        if cache.get(sol.x) is not None and sol.fun < base:
+            k2 = kt.copy()
+            k2[k] = sol.x
+            new = _fit("segments", k2, 1, data, cache[sol.x].fit.path)
+            if new is not None:
+                best = new
     return best

@@ -32,6 +32,7 @@ Sources
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -138,25 +139,33 @@ def spline_basis(breaks_s, degree, t_s, derivative=0):
     t_s : array_like, shape (...)
     derivative : {0, 1, 2}
     """
-    from scipy.interpolate import BSpline
-
     br = np.asarray(breaks_s, dtype=float)
     k = int(degree)
-    knots = np.concatenate([np.full(k, br[0]), br, np.full(k, br[-1])])
     n = br.size - 1 + k
-    spl = BSpline(knots, np.eye(n), k, extrapolate=True)
+    spl = _splines(tuple(br.tolist()), k)
     t = np.asarray(t_s, dtype=float)
     flat = t.reshape(-1)
     lo, hi = br[0], br[-1]
     tc = np.clip(flat, lo, hi)
     if derivative == 0:
-        out = spl(tc) + (flat - tc)[:, None] * spl.derivative(1)(tc)
+        out = spl[0](tc) + (flat - tc)[:, None] * spl[1](tc)
     elif derivative == 1:
-        out = spl.derivative(1)(tc)
+        out = spl[1](tc)
     else:
         inside = ((flat >= lo) & (flat <= hi))[:, None]
-        out = np.where(inside, spl.derivative(2)(tc), 0.0) if k >= 2 else np.zeros((flat.size, n))
+        out = np.where(inside, spl[2](tc), 0.0) if k >= 2 else np.zeros((flat.size, n))
     return out.reshape(t.shape + (n,))
+
+
+@functools.lru_cache(maxsize=64)
+def _splines(breaks, k):
+    """The basis B-splines of a clamped knot vector and their first two derivatives."""
+    from scipy.interpolate import BSpline
+
+    br = np.asarray(breaks, dtype=float)
+    knots = np.concatenate([np.full(k, br[0]), br, np.full(k, br[-1])])
+    spl = BSpline(knots, np.eye(br.size - 1 + k), k, extrapolate=True)
+    return spl, spl.derivative(1), (spl.derivative(2) if k >= 2 else None)
 
 
 @dataclass(frozen=True)

@@ -37,7 +37,8 @@ from locate.physics import air
 from locate.track.motion import Path, emission_time_s
 from locate.track.retarded import Parametrisation, predict_delays
 
-__all__ = ["PathFit", "fit_path", "whitening", "stationary_fixes", "initial_path", "knot_times"]
+__all__ = ["PathFit", "fit_path", "whitening", "stationary_fixes", "initial_path", "knot_times",
+           "max_speed_mps"]
 
 DEGREE = {"straight": 1, "segments": 1, "smooth": 2}
 """B-spline degree of each motion model (1: piecewise straight; 2: constant acceleration per
@@ -135,6 +136,15 @@ def whitening(covariance_s2, usable=None):
         m[w][np.ix_(np.arange(linv.shape[0]), idx)] = linv
         rank[w] = linv.shape[0]
     return m, rank
+
+
+def max_speed_mps(par, theta) -> float:
+    """Largest speed of a path over its knot span (the velocity is piecewise constant for
+    degree 1 and piecewise linear for degree 2, so the knots and segment middles bound it)."""
+    kt = np.asarray(par.knot_times_s, float)
+    t = np.concatenate([kt, 0.5 * (kt[1:] + kt[:-1])])
+    v = np.einsum("win,n->wi", par.basis(t, 1), np.asarray(theta, float))
+    return float(np.max(np.linalg.norm(v, axis=1)))
 
 
 def knot_times(t_emit_lo_s, t_emit_hi_s, model, n_windows, segment_s=None):
@@ -386,6 +396,8 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
         sel = np.flatnonzero(used)
 
         def fun(th, sel=sel):
+            if max_speed_mps(par, th) >= 0.95 * sound_speed_mps:  # unphysical trial step
+                return np.full(len(sel) * whiten.shape[1] + len(reg), 1e6)
             try:
                 pred, _, _ = predict_delays(par, th, t_h[sel], mics, pairs, sound_speed_mps,
                                             wind_mps, jacobian=False, **kw)
@@ -411,15 +423,18 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
         wchi2 = np.sum(wres**2, axis=1)
         if not reject or robust:
             break
+        # the outlier set is chosen afresh from every fit (a window dropped against an early
+        # path comes back when the refitted path explains it)
         limit = stats.chi2.isf(_REJECT_P, np.maximum(rank, 1))
-        bad = used & (wchi2 > limit)
-        if not bad.any():
-            break
-        n_max = int(_MAX_REJECT_FRACTION * len(t_h)) - int((~used & (rank >= dims + 1)).sum())
-        if n_max <= 0:
-            break
+        able = rank >= dims + 1
+        bad = able & (wchi2 > limit)
+        n_max = int(_MAX_REJECT_FRACTION * len(t_h))
         worst = np.argsort(-np.where(bad, wchi2 / limit, -np.inf))[: min(n_max, bad.sum())]
-        used[worst] = False
+        new_used = able.copy()
+        new_used[worst] = False
+        if np.array_equal(new_used, used):
+            break
+        used = new_used
     n_rej = int(((rank >= dims + 1) & ~used).sum())
     if n_rej:
         warnings.append(f"{n_rej} of {len(t_h)} windows dropped as outliers (chi-square)")

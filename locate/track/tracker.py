@@ -476,7 +476,7 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         structure = None
         wide = min(0.05, window_s / 4.0)
         n_tol = 0
-        for rnd in range(8):
+        for rnd in range(5):
             # tolerant rounds (drift-tolerant peaks over a wide search, robust fits) while the
             # chosen path still leaves windows unexplained; then fine rounds
             tol = n_tol < 4 and (rnd == 0 or chosen.fit.used.mean() < 0.9
@@ -506,6 +506,15 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             # last: drop the knots the final delays do not need (backward elimination)
             data = (centres,) + meas + (mics, pairs, c, fit_kw)
             chosen = track_models.prune(chosen, data, chosen.fit.used)
+            able = chosen.fit.window_dof >= dims + 1
+            chosen = track_models.polish_knots(chosen, data, able)
+            # and the delays measured once more along the polished path
+            warp = chosen.fit.path
+            meas = measure(warp, False, next_lag(chosen.fit))
+            fit = fit_path(centres, meas[0], meas[1], mics, pairs, c, usable=meas[2],
+                           warp=warp, initial=warp, knots_s=chosen.fit.par.knot_times_s,
+                           degree=1, **fit_kw)
+            chosen = track_models.Candidate(chosen.model, fit)
         fit = chosen.fit
     # Overlapping windows share samples, so their delay errors are correlated (for a
     # rectangular window the correlation of windows k hops apart is 1 - k hop / window); the
@@ -601,7 +610,8 @@ def _assess(result: TrackResult, chosen, candidates, requested, meas, mics, pair
     result.warnings.append(
         f"the {chosen.model} model does not explain the windows (reduced chi-square "
         f"{adq['chi2_reduced']:.1f}, limit {track_models.MISFIT_LIMIT:g}; "
-        f"{100 * adq['bad_window_fraction']:.0f} % of windows beyond their 99.9 % limit): the "
+        f"{100 * adq['bad_window_fraction']:.0f} % of windows beyond their 99.9 % limit, "
+        f"{100 * adq['kept_fraction']:.0f} % of windows kept): the "
         "track is flagged and its ellipses, heading and speed uncertainties are widened to "
         "cover the model error")
 
