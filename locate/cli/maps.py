@@ -87,6 +87,10 @@ def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
+    if speed_guess_mps >= cond.sound_speed_mps:
+        raise OptionError(f"--speed-guess {speed_guess_mps:g} m/s is not below the sound speed "
+                          f"({cond.sound_speed_mps:.0f} m/s): a single emission time needs a "
+                          "subsonic source", field="--speed-guess")
     signals, _ = rec.read(start_s, stop_s)
     points = [m.position_m for m in site.mics] + [r.position_m for r in site.receivers]
     names = site.mic_names + [r.name for r in site.receivers]

@@ -360,10 +360,10 @@ def polish_knots(chosen: Candidate, data, windows, max_evals=10) -> Candidate:
         lo, hi = kt[k - 1] + gap, kt[k + 1] - gap
         cache = {}
 
-        def f(t, kt=kt, k=k, cache=cache):
+        def f(t, kt=kt, k=k, cache=cache, start=best.fit.path):
             k2 = kt.copy()
             k2[k] = t
-            cand = _fit("segments", k2, 1, data, best.fit.path, reject=False)
+            cand = _fit("segments", k2, 1, data, start, reject=False)
             cache[t] = cand
             return np.inf if cand is None else score(cand)
 

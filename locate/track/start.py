@@ -355,14 +355,14 @@ def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, soun
     centre = mics.mean(axis=0)
     ap = max(float(np.max(np.linalg.norm(mics - centre, axis=1))), 1.0)
     heading = np.deg2rad(np.arange(0.0, 360.0, 15.0))
-    # speeds from a third to three times the guess, physical ones only (below 0.9 c)
-    speed = expected_speed_mps * np.array([0.35, 0.6, 1.0, 1.6, 2.8])
+    # speeds from 0.4 to 2.4 times the guess, physical ones only (below 0.9 c)
+    speed = expected_speed_mps * np.array([0.4, 0.75, 1.3, 2.4])
     speed = np.unique(np.clip(speed, 0.5, 0.9 * sound_speed_mps))
     if dims == 2:
         miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
         height = [source_z_m]
     else:  # aircraft: up to ~20 apertures away and high up
-        miss = ap * np.array([-12.0, -4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0, 12.0])
+        miss = ap * np.array([-12.0, -4.0, -1.5, 0.0, 1.5, 4.0, 12.0])
         height = list(centre[2] + ap * np.array([0.5, 1.2, 2.5, 6.0, 15.0]))
     # closest-approach (emission) times: the heard span moved back by the travel time from
     # the farthest grid paths (retarded-time lags of seconds for distant sources)
