@@ -244,3 +244,27 @@ def test_internal_failure_is_one_line_and_exit_1(tmp_path, monkeypatch):
     assert code == 1
     assert stderr.count("\n") == 1 and "failed internally" in stderr
     assert "Traceback" not in stderr and not out.exists()
+
+
+@pytest.mark.slow
+def test_batch_track_task_gives_the_same_track_as_the_command(tmp_path):
+    # Issue 16: a ``track`` task of ``tdoa batch`` (docs/batch.md) runs the same command.
+    site, path, span, _ = _write(tmp_path, "through")
+    (tmp_path / "jobs.toml").write_text(f"""
+[defaults]
+output_dir = "out"
+
+[[task]]
+name = "pass"
+site = "site.toml"
+command = "track"
+from = {span[0]}
+to = {span[1]}
+options = {{ source_z = 0.5 }}
+""")
+    code, _, stderr = run(["batch", tmp_path / "jobs.toml", "--jobs", "1"])
+    assert code == 0, stderr
+    doc = json.loads((tmp_path / "out" / "pass.json").read_text())
+    assert doc["kind"] == "track" and doc["track"]["model"] == "straight"
+    err, m2, _ = _scores(doc, path)
+    assert err.max() < 1.0 and np.mean(m2 < CHI2_95_2D) >= 0.85
