@@ -576,10 +576,12 @@ def _assess(result: TrackResult, chosen, candidates, requested, meas, mics, pair
     elif len(candidates) == 1:
         result.model_reason = "only candidate"
     else:
-        others = ", ".join(f"{cd.model} {cd.fit.par.n_knots - 1}x{cd.fit.par.degree}: "
-                           f"{cd.bic:.1f}" for cd in candidates if cd is not chosen)
-        result.model_reason = (f"lowest BIC = chi2 + k ln n among the candidates fitted to the "
-                               f"same delays ({chosen.bic:.1f}; others {others})")
+        listed = ", ".join(f"{cd.model} ({cd.fit.par.n_knots - 1} interval(s), degree "
+                           f"{cd.fit.par.degree}) {cd.bic:.6g}" for cd in candidates)
+        result.model_reason = (f"{chosen.model}: lowest BIC = chi2 + k ln n among the "
+                               f"candidates fitted to the same delays ({listed})"
+                               + ("; knots then pruned and their times polished"
+                                  if chosen.model == "segments" else ""))
     adq = track_models.adequacy(fit)
     result.misfit = adq
     result.adequate = adq["adequate"]
