@@ -305,23 +305,25 @@ def turns(fit: PathFit, min_change_deg=10.0, merge_s=1.0):
         out.append({"t_s": float(kt[k]), "heading_change_deg": change,
                     "speed_before_mps": float(np.linalg.norm(v_in)),
                     "speed_after_mps": float(np.linalg.norm(v_out))})
-    # knots closer than merge_s with changes of one sense are one manoeuvre: its time is the
-    # change-weighted mean of theirs
+    # knots closer than merge_s are one manoeuvre (a corner the fit rounds with two or three
+    # knots): its change is the sum of theirs, its time their change-weighted mean
     merged = []
     for t in out:
         last = merged[-1] if merged else None
-        if (last is not None and t["t_s"] - last["t_last_s"] < merge_s
-                and np.sign(t["heading_change_deg"]) == np.sign(last["heading_change_deg"])):
-            w0, w1 = abs(last["heading_change_deg"]), abs(t["heading_change_deg"])
+        if last is not None and t["t_s"] - last["t_last_s"] < merge_s:
+            w0, w1 = last["weight"], abs(t["heading_change_deg"])
             last["t_s"] = (last["t_s"] * w0 + t["t_s"] * w1) / max(w0 + w1, 1e-12)
             last["heading_change_deg"] += t["heading_change_deg"]
+            last["weight"] = w0 + w1
             last["speed_after_mps"] = t["speed_after_mps"]
             last["t_last_s"] = t["t_s"]
             last["knots_s"].append(t["t_s"])
         else:
-            merged.append(dict(t, t_last_s=t["t_s"], knots_s=[t["t_s"]]))
+            merged.append(dict(t, t_last_s=t["t_s"], knots_s=[t["t_s"]],
+                               weight=abs(t["heading_change_deg"])))
     for m in merged:
         m.pop("t_last_s")
+        m.pop("weight")
         m["is_turn"] = bool(abs(m["heading_change_deg"]) >= min_change_deg)
     return merged
 
