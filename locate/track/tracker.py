@@ -598,6 +598,15 @@ def _assess(result: TrackResult, chosen, candidates, requested, meas, mics, pair
     shift, wcov = track_models.window_displacements(fit, eps, cov_w, ok_w, mics, pairs, c, wind)
     shift = np.where(np.isfinite(shift), shift, 0.0)
     red_w = adq["window_chi2_reduced"]
+    # a window with too few usable delays for its own fix says nothing about the model error
+    # at its point: it gets the largest error seen at any other point (conservative)
+    alone = fit.window_dof < fit.par.dims + 1
+    if alone.any() and (~alone).any():
+        size = np.einsum("wii->w", wcov) * np.maximum(red_w, 1.0) + np.sum(shift**2, axis=1)
+        k = int(np.argmax(np.where(alone, -np.inf, size)))
+        wcov[alone] = wcov[k] * max(red_w[k], 1.0)
+        shift[alone] = shift[k]
+        red_w = np.where(alone, 1.0, red_w)
     result.covariance_m2 = track_models.inflate(result.covariance_m2, shift, wcov, red_w)
     result.covariance_now_m2 = track_models.inflate(result.covariance_now_m2, shift, wcov, red_w)
     t = result.t_emit_s
