@@ -110,8 +110,8 @@ def _scores(doc, path):
 def test_vehicle_passes_meet_the_acceptance(tmp_path, name):
     # Issue 16: vehicles at 10 dB SNR, 6 mics over ~60 m: every point within 1 m of the truth at
     # its emission time, >= 85 % inside their 95 % ellipses, the turn within 0.5 s.
-    # Measured (seed 1): max error beside 0.2 mm, through 0.2 mm, turn 0.64 m (at the corner),
-    # accel 11 mm; inside 100 %, 100 %, 98 %, 100 %.
+    # Measured (seed 1): max error beside 0.2 mm, through 0.2 mm, turn 0.42 m (at the corner;
+    # turn at 6.08 s, -90.0 deg), accel 11 mm; inside 100 %, 100 %, 97 %, 100 %.
     code, stdout, stderr, doc, path = _track(tmp_path, name)
     assert code == 0, stderr
     tr = doc["track"]
