@@ -373,7 +373,10 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
     used = rank >= dims + 1
     if used.sum() < 3:
         raise NothingFoundError(f"only {int(used.sum())} windows have enough usable delays "
-                                f"for a track (need 3 with at least {dims + 1} pairs)")
+                                f"for a track (need 3 with at least {dims + 1} pairs): no "
+                                "path found follows the sound; try --band around the "
+                                "source's sound, --speed-guess near its speed, or a span "
+                                "centred on the pass")
     if initial is None:
         initial = initial_path(t_h[used], d[used], whiten[used], mics, pairs, sound_speed_mps,
                                wind_mps, dims=dims, source_z_m=source_z_m, model=model,

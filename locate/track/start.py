@@ -361,20 +361,22 @@ def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, soun
     if dims == 2:
         miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
         height = [source_z_m]
-    else:  # aircraft: up to ~20 apertures away and high up
+    else:  # aircraft: up to ~20 apertures away and high up, at aircraft speeds too
+        speed = np.unique(np.clip(np.concatenate([speed, [35.0, 60.0, 110.0, 200.0]]), 0.5,
+                                  0.9 * sound_speed_mps))
         miss = ap * np.array([-12.0, -4.0, -1.5, 0.0, 1.5, 4.0, 12.0])
         height = list(centre[2] + ap * np.array([0.5, 1.2, 2.5, 6.0, 15.0]))
-    # closest-approach (emission) times: the heard span moved back by the travel time from
-    # the farthest grid paths (retarded-time lags of seconds for distant sources)
-    far = float(np.hypot(np.max(np.abs(miss)), np.max(np.abs(np.array(height) - centre[2]))))
-    t_cpa = np.linspace(t_c[0] - far / sound_speed_mps, t_c[-1], 9 if far < 2000 else 13)
+    # closest approach *heard* within the span; its emission time is earlier by the travel
+    # time from the closest point (retarded-time lags of seconds for distant sources)
+    t_cpa = np.linspace(t_c[0], t_c[-1], 9)
     g = np.array(np.meshgrid(t_cpa, heading, speed, miss, height, indexing="ij")).reshape(5, -1)
     d_hat = np.stack([np.sin(g[1]), np.cos(g[1]), 0 * g[1]], -1)
     n_hat = np.stack([np.cos(g[1]), -np.sin(g[1]), 0 * g[1]], -1)
     cpa = centre + g[3][:, None] * n_hat
     cpa[:, 2] = g[4]
     vel = g[2][:, None] * d_hat
-    p0 = cpa - vel * g[0][:, None]  # position at t = 0
+    t_emit = g[0] - np.linalg.norm(cpa - centre, axis=1) / sound_speed_mps
+    p0 = cpa - vel * t_emit[:, None]  # position at t = 0
     scores = np.concatenate([
         _straight_scores(p0[k:k + 400], vel[k:k + 400], t_c, cum, lags_s, window_s, mics, pairs,
                          sound_speed_mps, wind_mps, floor_s, lobe_s)
