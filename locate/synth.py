@@ -292,6 +292,46 @@ class WaypointPath:
         return WaypointPath(self.times_s, self.points_m * np.array([1.0, 1.0, -1.0]))
 
 
+class AcceleratingPath:
+    """Constant-acceleration motion p(t) = start_m + velocity_mps (t - t0_s)
+    + acceleration_mps2 (t - t0_s)^2 / 2 (textbook kinematics); shapes (3,).
+
+    With ``t_stop_accel_s`` the acceleration stops there and the source keeps the velocity it
+    has reached (a speed change that ends).
+    """
+
+    def __init__(self, start_m, velocity_mps, acceleration_mps2, t0_s=0.0, t_stop_accel_s=None):
+        self.start_m = np.asarray(start_m, float).reshape(3)
+        self.velocity = np.asarray(velocity_mps, float).reshape(3)
+        self.acceleration = np.asarray(acceleration_mps2, float).reshape(3)
+        self.t0_s = float(t0_s)
+        self.t_stop_accel_s = None if t_stop_accel_s is None else float(t_stop_accel_s)
+
+    def _dt(self, t_s):
+        dt = np.asarray(t_s, float)[..., None] - self.t0_s
+        if self.t_stop_accel_s is None:
+            return dt, np.zeros_like(dt)
+        end = self.t_stop_accel_s - self.t0_s
+        return np.minimum(dt, end), np.maximum(dt - end, 0.0)
+
+    def position_m(self, t_s):
+        """Position at ``t_s`` (...), shape (..., 3)."""
+        a, b = self._dt(t_s)
+        return (self.start_m + self.velocity * (a + b) + 0.5 * self.acceleration * a**2
+                + self.acceleration * a * b)
+
+    def velocity_mps(self, t_s):
+        """Velocity at ``t_s`` (...), shape (..., 3)."""
+        a, _ = self._dt(t_s)
+        return self.velocity + self.acceleration * a
+
+    def mirrored(self):
+        """The image path below the ground plane z = 0."""
+        flip = np.array([1.0, 1.0, -1.0])
+        return AcceleratingPath(self.start_m * flip, self.velocity * flip,
+                                self.acceleration * flip, self.t0_s, self.t_stop_accel_s)
+
+
 def _dot(a, b):
     return np.einsum("...i,...i->...", a, b)
 

@@ -25,7 +25,7 @@ from locate.cli.common import (
     transactional,
     warn,
 )
-from locate.errors import OptionError
+from locate.errors import ConvergenceError, OptionError, TdoaError
 
 __all__ = ["track", "map_command"]
 
@@ -41,8 +41,10 @@ __all__ = ["track", "map_command"]
 @click.option("--hop", "hop_s", type=FINITE, default=None, help="Window hop, s.")
 @click.option("--band", default=None, metavar="LO:HI", help="Analysis band, Hz.")
 @geometry_options
-@click.option("--model", type=click.Choice(["straight", "segments"]), default="straight",
-              show_default=True, help="Constant velocity, or piecewise straight segments.")
+@click.option("--model", type=click.Choice(["auto", "straight", "segments", "smooth"]),
+              default="auto", show_default=True,
+              help="Motion model: chosen by the data (auto), constant velocity, piecewise "
+                   "straight with turns, or smooth (constant acceleration per segment).")
 @click.option("--segment", "segment_s", type=FINITE, default=None,
               help="Segment length for --model segments, s.")
 @click.option("--speed-guess", "speed_guess_mps", type=FINITE, default=20.0, show_default=True,
@@ -56,6 +58,22 @@ __all__ = ["track", "map_command"]
 def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
           sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
     """Reconstruct a moving source's track (emission-time positions, heading, speed)."""
+    try:
+        return _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
+                      sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path,
+                      map_path)
+    except (TdoaError, click.exceptions.ClickException, click.exceptions.Abort,
+            click.exceptions.Exit):
+        raise
+    except Exception as exc:  # an internal failure: one line, exit 1, never a traceback
+        raise ConvergenceError(
+            f"the tracker failed internally ({type(exc).__name__}: {exc}); no result was "
+            "written - rerun with --debug and report it") from exc
+
+
+def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
+           sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
+    from locate.accuracy.inputs import declared_sds
     from locate.io.audio import open_recordings
     from locate.results.documents import write_json
     from locate.track.tracker import track_recording, track_to_dict
@@ -63,6 +81,9 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
 
     band_hz = parse_band(band)
     check_span_args(start_s, stop_s, window_s)
+    if not (math.isfinite(speed_guess_mps) and speed_guess_mps > 0):
+        raise OptionError(f"--speed-guess must be a positive speed, got {speed_guess_mps:g} m/s",
+                          field="--speed-guess")
     if hop_s is not None and hop_s <= 0:
         raise OptionError(f"hop {hop_s:g} s must be positive", field="--hop")
     tone_hz = None if tone is None else ("auto" if tone == "auto" else _float(tone, "--tone"))
@@ -78,6 +99,10 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
                           field="--window")
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site, sound_speed_mps)
+    if speed_guess_mps >= cond.sound_speed_mps:
+        raise OptionError(f"--speed-guess {speed_guess_mps:g} m/s is not below the sound speed "
+                          f"({cond.sound_speed_mps:.0f} m/s): a single emission time needs a "
+                          "subsonic source", field="--speed-guess")
     signals, _ = rec.read(start_s, stop_s)
     points = [m.position_m for m in site.mics] + [r.position_m for r in site.receivers]
     names = site.mic_names + [r.name for r in site.receivers]
@@ -91,14 +116,18 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
                 bar.update(step)
                 state["done"] += step
 
+        sds = declared_sds(site)
         res = track_recording(signals, rec.sample_rate_hz, site.positions_m,
                               cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
                               hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,
                               wind_mps=cond.wind_mps, model=model, segment_s=segment_s,
                               expected_speed_mps=speed_guess_mps, points_m=points,
-                              bearing_from_m=bearing_from, tone_hz=tone_hz, progress=progress)
+                              bearing_from_m=bearing_from, tone_hz=tone_hz,
+                              nuisance_sds=sds, progress=progress)
     doc = track_to_dict(res, site.mic_names, point_names=names)
     warnings = list(rec.warnings) + list(res.warnings)
+    if res.uncertainty.get("timing_only"):
+        warnings.append("track uncertainties are " + res.uncertainty["note"])
     result = fix_result(site, cond, [], kind="track", warnings=warnings, dims=dims,
                         source_z_m=source_z_m,
                         extra={"track": doc, "span_s": [start_s, stop_s]})
@@ -129,9 +158,30 @@ def _float(text, field):
 def _print_track(ctx, site, cond, doc, bearing_from_name):
     pts = doc["points"]
     echo(ctx, f"{site.title}: {len(pts)} track points, sound speed {cond.sound_speed_mps:.2f} m/s")
-    echo(ctx, f"Heading {doc['heading_deg']:.1f} +- {doc['heading_sd_deg']:.1f} deg, "
-              f"speed {doc['speed_mps']:.2f} +- {doc['speed_sd_mps']:.2f} m/s "
-              f"({doc['speed_mps'] * 3.6:.1f} km/h)")
+    model = doc.get("model", "straight")
+    red = doc.get("misfit_chi2_reduced")
+    echo(ctx, f"Motion model: {model}"
+              + (f" (misfit: reduced chi-square {red:.2f})" if red is not None else "")
+              + ("  [FLAGGED: the model does not explain the windows]"
+                 if doc.get("flagged") else ""))
+    if doc.get("heading_deg") is not None:
+        echo(ctx, f"Heading {doc['heading_deg']:.1f} +- {doc['heading_sd_deg']:.1f} deg, "
+                  f"speed {doc['speed_mps']:.2f} +- {doc['speed_sd_mps']:.2f} m/s "
+                  f"({doc['speed_mps'] * 3.6:.1f} km/h)")
+    elif pts:
+        hs = [p["heading_deg"] for p in pts if p.get("heading_deg") is not None]
+        vs = [p["speed_mps"] for p in pts if p.get("speed_mps") is not None]
+        if hs and vs:
+            echo(ctx, f"Heading and speed change along the track (per point in the result): "
+                      f"heading {hs[0]:.1f} -> {hs[-1]:.1f} deg, speed {min(vs):.2f} to "
+                      f"{max(vs):.2f} m/s")
+    for t in doc.get("turns", []):
+        if t.get("is_turn"):
+            echo(ctx, f"  turn of {t['heading_change_deg']:+.0f} deg at emission time "
+                      f"{t['t_s']:.2f} s")
+    note = (doc.get("uncertainty") or {}).get("note")
+    if note:
+        echo(ctx, f"Uncertainty: {note}")
     if pts:
         lag = max(p["lag_m"] for p in pts)
         ang = max(abs(p["lag_bearing_deg"]) for p in pts)

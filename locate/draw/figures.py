@@ -86,6 +86,15 @@ def _caption_words(air, result, c, entries, kind):
         words.append("95 % ellipses at intervals from each point's covariance (χ², 2 dof); "
                      "arcs lead from an emission position to where the source is when its "
                      "sound is heard")
+        tr = result.get("track") or {}
+        if tr.get("model"):
+            words.append(f"motion model {tr['model']}")
+        if tr.get("flagged"):
+            words.append("FLAGGED: the motion model does not explain the windows; the ellipses "
+                         "are widened to cover the model error")
+        if (tr.get("uncertainty") or {}).get("timing_only"):
+            words.append("uncertainties are timing only (no survey, clock or air uncertainty "
+                         "declared)")
     else:
         words.append("ellipses: 50 % and 95 % confidence from the fit covariance (χ², 2 dof)")
     words.append("local metres, x east, y north")

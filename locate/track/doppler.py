@@ -179,7 +179,7 @@ def doppler_speed(signals, sample_rate_hz, t0_s, centres_s, window_s, track, mic
     t_lo, t_hi = track.t_emit_s[track.fit.used].min(), track.t_emit_s[track.fit.used].max()
     par = Parametrisation(np.array([t_lo, t_hi]), track.fit.par.dims, track.fit.par.source_z_m)
     th0 = par.theta(track.path.with_positions(track.path.position_m(track.path.knot_times_s))) \
-        if track.path.n_segments == 1 else par.theta(
+        if isinstance(track.path, Path) and track.path.n_segments == 1 else par.theta(
             Path(np.array([t_lo, t_hi]), track.path.position_m(np.array([t_lo, t_hi]))))
 
     def resid(q):

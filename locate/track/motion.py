@@ -32,6 +32,7 @@ Sources
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -41,6 +42,8 @@ from locate.physics import air
 
 __all__ = [
     "Path",
+    "SplinePath",
+    "spline_basis",
     "straight_path",
     "emission_time_s",
     "emission_time_iterative_s",
@@ -120,6 +123,98 @@ class Path:
     def with_positions(self, knot_positions_m) -> Path:
         """The same knot times with new knot positions."""
         return Path(self.knot_times_s, knot_positions_m)
+
+
+def spline_basis(breaks_s, degree, t_s, derivative=0):
+    """Clamped B-spline basis of ``degree`` on the breakpoints ``breaks_s``, shape (..., n).
+
+    ``n = K + degree`` basis functions for ``K`` intervals (de Boor's B-splines evaluated with
+    scipy.interpolate.BSpline).  Outside the breakpoints the basis continues linearly (the
+    source keeps its end velocity), as :class:`Path` does.
+
+    Parameters
+    ----------
+    breaks_s : array_like, shape (K+1,)
+    degree : int
+    t_s : array_like, shape (...)
+    derivative : {0, 1, 2}
+    """
+    br = np.asarray(breaks_s, dtype=float)
+    k = int(degree)
+    n = br.size - 1 + k
+    spl = _splines(tuple(br.tolist()), k)
+    t = np.asarray(t_s, dtype=float)
+    flat = t.reshape(-1)
+    lo, hi = br[0], br[-1]
+    tc = np.clip(flat, lo, hi)
+    if derivative == 0:
+        out = spl[0](tc) + (flat - tc)[:, None] * spl[1](tc)
+    elif derivative == 1:
+        out = spl[1](tc)
+    else:
+        inside = ((flat >= lo) & (flat <= hi))[:, None]
+        out = np.where(inside, spl[2](tc), 0.0) if k >= 2 else np.zeros((flat.size, n))
+    return out.reshape(t.shape + (n,))
+
+
+@functools.lru_cache(maxsize=64)
+def _splines(breaks, k):
+    """The basis B-splines of a clamped knot vector and their first two derivatives."""
+    from scipy.interpolate import BSpline
+
+    br = np.asarray(breaks, dtype=float)
+    knots = np.concatenate([np.full(k, br[0]), br, np.full(k, br[-1])])
+    spl = BSpline(knots, np.eye(br.size - 1 + k), k, extrapolate=True)
+    return spl, spl.derivative(1), (spl.derivative(2) if k >= 2 else None)
+
+
+@dataclass(frozen=True)
+class SplinePath:
+    """Smooth source path: a clamped B-spline of ``degree`` in emission time.
+
+    Degree 2 has a continuous velocity and a constant acceleration between breakpoints (the
+    "constant acceleration per segment" model); outside the breakpoints the source keeps its
+    end velocity.
+
+    Attributes
+    ----------
+    knot_times_s : ndarray, shape (K+1,)
+        Breakpoints (strictly increasing).
+    control_m : ndarray, shape (K+degree, 3)
+        B-spline coefficients.
+    degree : int
+    """
+
+    knot_times_s: np.ndarray
+    control_m: np.ndarray
+    degree: int = 2
+
+    def __post_init__(self):
+        t = np.asarray(self.knot_times_s, dtype=float).reshape(-1)
+        c = np.asarray(self.control_m, dtype=float).reshape(-1, 3)
+        if t.size < 2 or np.any(np.diff(t) <= 0) or c.shape[0] != t.size - 1 + self.degree:
+            raise ValueError(f"need >= 2 increasing breakpoints and K+degree coefficients, got "
+                             f"{t.size} breakpoints and {c.shape[0]} coefficients")
+        object.__setattr__(self, "knot_times_s", t)
+        object.__setattr__(self, "control_m", c)
+
+    @property
+    def n_segments(self) -> int:
+        return self.knot_times_s.size - 1
+
+    @property
+    def knot_positions_m(self) -> np.ndarray:
+        """Positions at the breakpoints, shape (K+1, 3)."""
+        return self.position_m(self.knot_times_s)
+
+    def position_m(self, t_s) -> np.ndarray:
+        return spline_basis(self.knot_times_s, self.degree, t_s) @ self.control_m
+
+    def velocity_mps(self, t_s) -> np.ndarray:
+        return spline_basis(self.knot_times_s, self.degree, t_s, 1) @ self.control_m
+
+    def acceleration_mps2(self, t_s) -> np.ndarray:
+        return spline_basis(self.knot_times_s, self.degree, t_s, 2) @ self.control_m
 
 
 def straight_path(position_m, velocity_mps, reference_time_s=0.0, span_s=(None, None)) -> Path:
@@ -304,6 +399,8 @@ def closest_approach(path: Path, point_m, t_range_s=None):
     position_m : ndarray, shape (M, 3)
     """
     pts = np.asarray(point_m, dtype=float).reshape(-1, 3)
+    if not isinstance(path, Path):
+        return _closest_sampled(path, pts, t_range_s)
     k_t = path.knot_times_s
     lo = np.concatenate([[-np.inf], k_t[1:-1]])
     hi = np.concatenate([k_t[1:-1], [np.inf]])
@@ -323,3 +420,22 @@ def closest_approach(path: Path, point_m, t_range_s=None):
     k = np.argmin(dist, axis=1)
     rows = np.arange(len(pts))
     return t_star[rows, k], dist[rows, k], pos[rows, k]
+
+
+def _closest_sampled(path, pts, t_range_s):
+    """Closest approach of any smooth path: dense samples, then a parabola through the best."""
+    k_t = np.asarray(path.knot_times_s, dtype=float)
+    lo, hi = (k_t[0], k_t[-1]) if t_range_s is None else t_range_s
+    span = max(hi - lo, 1e-6)
+    if t_range_s is None:  # the ends continue straight: look a little beyond them
+        lo, hi = lo - 0.5 * span, hi + 0.5 * span
+    t = np.linspace(lo, hi, 4001)
+    pos = path.position_m(t)
+    dist = np.linalg.norm(pos[None] - pts[:, None], axis=-1)  # (M, T)
+    k = np.clip(np.argmin(dist, axis=1), 1, t.size - 2)
+    d0, d1, d2 = (dist[np.arange(len(pts)), k + o] for o in (-1, 0, 1))
+    den = d0 - 2 * d1 + d2
+    frac = np.where(den > 0, 0.5 * (d0 - d2) / np.where(den > 0, den, 1.0), 0.0)
+    t_best = np.clip(t[k] + np.clip(frac, -1, 1) * (t[1] - t[0]), lo, hi)
+    p = path.position_m(t_best)
+    return t_best, np.linalg.norm(p - pts, axis=-1), p

@@ -37,7 +37,12 @@ from locate.physics import air
 from locate.track.motion import Path, emission_time_s
 from locate.track.retarded import Parametrisation, predict_delays
 
-__all__ = ["PathFit", "fit_path", "whitening", "stationary_fixes", "initial_path", "knot_times"]
+__all__ = ["PathFit", "fit_path", "whitening", "stationary_fixes", "initial_path", "knot_times",
+           "max_speed_mps"]
+
+DEGREE = {"straight": 1, "segments": 1, "smooth": 2}
+"""B-spline degree of each motion model (1: piecewise straight; 2: constant acceleration per
+segment, continuous velocity)."""
 
 _REJECT_P = 1e-4
 _MAX_REJECT_FRACTION = 0.25
@@ -133,6 +138,15 @@ def whitening(covariance_s2, usable=None):
     return m, rank
 
 
+def max_speed_mps(par, theta) -> float:
+    """Largest speed of a path over its knot span (the velocity is piecewise constant for
+    degree 1 and piecewise linear for degree 2, so the knots and segment middles bound it)."""
+    kt = np.asarray(par.knot_times_s, float)
+    t = np.concatenate([kt, 0.5 * (kt[1:] + kt[:-1])])
+    v = np.einsum("win,n->wi", par.basis(t, 1), np.asarray(theta, float))
+    return float(np.max(np.linalg.norm(v, axis=1)))
+
+
 def knot_times(t_emit_lo_s, t_emit_hi_s, model, n_windows, segment_s=None):
     """Knot times of a path model over the emission span, shape (K+1,)."""
     lo, hi = float(t_emit_lo_s), float(t_emit_hi_s)
@@ -140,8 +154,9 @@ def knot_times(t_emit_lo_s, t_emit_hi_s, model, n_windows, segment_s=None):
         hi = lo + 1.0
     if model == "straight":
         return np.array([lo, hi])
-    if model != "segments":
-        raise OptionError(f"model must be 'straight' or 'segments', got {model!r}", field="model")
+    if model not in ("segments", "smooth"):
+        raise OptionError(f"model must be 'straight', 'segments' or 'smooth', got {model!r}",
+                          field="model")
     if segment_s is None:
         n_seg = int(np.clip(round(n_windows / 8), 1, 24))
     else:
@@ -276,7 +291,7 @@ def initial_path(t_heard_s, delays_s, whiten, mic_positions_m, pairs, sound_spee
     t_e = np.asarray(t_heard_s, float) - air.travel_time_s(pos, mics[reference_mic],
                                                            sound_speed_mps, wind_mps)
     knots = knot_times(t_e.min(), t_e.max(), model, len(t_e), segment_s)
-    par = Parametrisation(knots, dims, source_z_m)
+    par = Parametrisation(knots, dims, source_z_m, DEGREE.get(model, 1))
     keep = np.isfinite(chi2) & np.all(np.isfinite(pos), axis=1)
     theta = _polyline_gls(par, t_e, pos, cov, keep)
     for _ in range(3):  # drop fixes far off the line (Mahalanobis, chi-square 99.9 %)
@@ -294,7 +309,7 @@ def initial_path(t_heard_s, delays_s, whiten, mic_positions_m, pairs, sound_spee
 def _turn_rows(par, turn_sd_mps):
     """Rows (v_k+1 - v_k) / sd of the smoothness prior, shape (R, n_params)."""
     n_k, dims = par.n_knots, par.dims
-    if turn_sd_mps is None or n_k < 3:
+    if turn_sd_mps is None or n_k < 3 or par.degree != 1:
         return np.zeros((0, par.n_params))
     dt = np.diff(par.knot_times_s)
     vel = np.zeros((n_k - 1, n_k))  # segment velocity = (P_k+1 - P_k) / dt_k
@@ -307,7 +322,8 @@ def _turn_rows(par, turn_sd_mps):
 def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_speed_mps, *,
              wind_mps=None, dims=2, source_z_m=0.0, model="straight", segment_s=None,
              usable=None, initial=None, anchor="reference", warp=None, reference_mic=0,
-             retarded=True, robust=False, reject=True, knots_s=None, turn_sd_mps=None):
+             retarded=True, robust=False, reject=True, knots_s=None, turn_sd_mps=None,
+             degree=None, max_nfev=200):
     """Fit a path to the delays of many windows at once (weighted least squares).
 
     Parameters
@@ -357,7 +373,10 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
     used = rank >= dims + 1
     if used.sum() < 3:
         raise NothingFoundError(f"only {int(used.sum())} windows have enough usable delays "
-                                f"for a track (need 3 with at least {dims + 1} pairs)")
+                                f"for a track (need 3 with at least {dims + 1} pairs): no "
+                                "path found follows the sound; try --band around the "
+                                "source's sound, --speed-guess near its speed, or a span "
+                                "centred on the pass")
     if initial is None:
         initial = initial_path(t_h[used], d[used], whiten[used], mics, pairs, sound_speed_mps,
                                wind_mps, dims=dims, source_z_m=source_z_m, model=model,
@@ -369,7 +388,8 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
     else:
         span = initial.knot_times_s
         knots = knot_times(span[0], span[-1], model, int(used.sum()), segment_s)
-    par = Parametrisation(knots, dims, source_z_m)
+    par = Parametrisation(knots, dims, source_z_m, DEGREE.get(model, 1) if degree is None
+                          else int(degree))
     theta = par.theta(initial)
     kw = dict(anchor=anchor, reference_mic=reference_mic, warp=warp, retarded=retarded)
     reg = _turn_rows(par, turn_sd_mps)  # (R, n) prior rows, possibly empty
@@ -379,6 +399,8 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
         sel = np.flatnonzero(used)
 
         def fun(th, sel=sel):
+            if max_speed_mps(par, th) >= 0.95 * sound_speed_mps:  # unphysical trial step
+                return np.full(len(sel) * whiten.shape[1] + len(reg), 1e6)
             try:
                 pred, _, _ = predict_delays(par, th, t_h[sel], mics, pairs, sound_speed_mps,
                                             wind_mps, jacobian=False, **kw)
@@ -395,7 +417,7 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
 
         sol = optimize.least_squares(fun, theta, jac=jac, method="trf", x_scale="jac",
                                      loss="soft_l1" if robust else "linear", f_scale=3.0,
-                                     max_nfev=200)
+                                     max_nfev=max_nfev)
         theta = sol.x
         converged = bool(sol.success)
         pred, _, _ = predict_delays(par, theta, t_h, mics, pairs, sound_speed_mps, wind_mps,
@@ -404,15 +426,18 @@ def fit_path(t_heard_s, delays_s, covariance_s2, mic_positions_m, pairs, sound_s
         wchi2 = np.sum(wres**2, axis=1)
         if not reject or robust:
             break
+        # the outlier set is chosen afresh from every fit (a window dropped against an early
+        # path comes back when the refitted path explains it)
         limit = stats.chi2.isf(_REJECT_P, np.maximum(rank, 1))
-        bad = used & (wchi2 > limit)
-        if not bad.any():
-            break
-        n_max = int(_MAX_REJECT_FRACTION * len(t_h)) - int((~used & (rank >= dims + 1)).sum())
-        if n_max <= 0:
-            break
+        able = rank >= dims + 1
+        bad = able & (wchi2 > limit)
+        n_max = int(_MAX_REJECT_FRACTION * len(t_h))
         worst = np.argsort(-np.where(bad, wchi2 / limit, -np.inf))[: min(n_max, bad.sum())]
-        used[worst] = False
+        new_used = able.copy()
+        new_used[worst] = False
+        if np.array_equal(new_used, used):
+            break
+        used = new_used
     n_rej = int(((rank >= dims + 1) & ~used).sum())
     if n_rej:
         warnings.append(f"{n_rej} of {len(t_h)} windows dropped as outliers (chi-square)")

@@ -33,7 +33,13 @@ import numpy as np
 
 from locate.errors import ConvergenceError
 from locate.physics import air
-from locate.track.motion import Path, emission_time_iterative_s, emission_time_s
+from locate.track.motion import (
+    Path,
+    SplinePath,
+    emission_time_iterative_s,
+    emission_time_s,
+    spline_basis,
+)
 
 __all__ = ["Parametrisation", "predict_delays", "arrival_times"]
 
@@ -61,28 +67,53 @@ class Parametrisation:
     knot_times_s: np.ndarray
     dims: int = 2
     source_z_m: float = 0.0
+    degree: int = 1
 
     @property
     def n_knots(self) -> int:
         return int(np.size(self.knot_times_s))
 
     @property
+    def n_coef(self) -> int:
+        """Coefficients per coordinate: the knots (degree 1) or the B-spline coefficients."""
+        return self.n_knots - 1 + int(self.degree)
+
+    @property
     def n_params(self) -> int:
-        return self.n_knots * self.dims
+        return self.n_coef * self.dims
 
-    def path(self, theta) -> Path:
-        """The path of a parameter vector, shape (n_params,)."""
-        pos = np.full((self.n_knots, 3), float(self.source_z_m))
-        pos[:, : self.dims] = np.asarray(theta, dtype=float).reshape(self.n_knots, self.dims)
-        return Path(np.asarray(self.knot_times_s, dtype=float), pos)
+    def path(self, theta):
+        """The path of a parameter vector, shape (n_params,): a Path (degree 1) or a
+        :class:`~locate.track.motion.SplinePath`."""
+        pos = np.full((self.n_coef, 3), float(self.source_z_m))
+        pos[:, : self.dims] = np.asarray(theta, dtype=float).reshape(self.n_coef, self.dims)
+        if self.degree == 1:
+            return Path(np.asarray(self.knot_times_s, dtype=float), pos)
+        if self.dims == 2:  # a constant height is exact: B-spline weights sum to one
+            pos[:, 2] = float(self.source_z_m)
+        return SplinePath(np.asarray(self.knot_times_s, dtype=float), pos, int(self.degree))
 
-    def theta(self, path: Path) -> np.ndarray:
-        """Parameter vector of a path with the same knots, shape (n_params,)."""
-        return path.position_m(self.knot_times_s)[:, : self.dims].reshape(-1).copy()
+    def theta(self, path) -> np.ndarray:
+        """Parameter vector of ``path`` (degree 1: its positions at the knots; otherwise the
+        least-squares B-spline through it, exact for any path the model can represent)."""
+        if self.degree == 1:
+            return path.position_m(self.knot_times_s)[:, : self.dims].reshape(-1).copy()
+        kt = np.asarray(self.knot_times_s, dtype=float)
+        t = np.unique(np.concatenate([np.linspace(a, b, 9) for a, b in zip(kt[:-1], kt[1:])]))
+        w = spline_basis(kt, self.degree, t)
+        coef, *_ = np.linalg.lstsq(w, path.position_m(t), rcond=None)
+        return coef[:, : self.dims].reshape(-1).copy()
 
-    def basis(self, t_s) -> np.ndarray:
-        """``dp/dtheta`` at each time, shape (..., 3, n_params)."""
-        w, _ = self.path(np.zeros(self.n_params)).weights(t_s)
+    def _weights(self, t_s, derivative=0):
+        if self.degree == 1:
+            w, dw = self.path(np.zeros(self.n_params)).weights(t_s)
+            return w if derivative == 0 else dw
+        return spline_basis(self.knot_times_s, self.degree, t_s, derivative)
+
+    def basis(self, t_s, derivative=0) -> np.ndarray:
+        """``dp/dtheta`` (or ``dv/dtheta`` with ``derivative=1``) at each time, shape
+        (..., 3, n_params)."""
+        w = self._weights(t_s, derivative)
         sel = np.eye(3)[:, : self.dims]  # (3, dims)
         b = np.einsum("...k,cd->...ckd", w, sel)
         return b.reshape(b.shape[:-2] + (self.n_params,))

@@ -57,7 +57,7 @@ def _integrate(cum, lags_s, lo_s, hi_s):
     """Integral of curves (cumulative sums ``cum`` (..., L)) over [lo, hi] by interpolation."""
     dt = lags_s[1] - lags_s[0]
     def at(t):
-        u = np.clip((t - lags_s[0]) / dt, 0.0, lags_s.size - 1.0)
+        u = np.clip(np.nan_to_num((t - lags_s[0]) / dt, nan=0.0), 0.0, lags_s.size - 1.0)
         i = np.minimum(np.floor(u).astype(int), lags_s.size - 2)
         f = u - i
         a = np.take_along_axis(cum, i, axis=-1)
@@ -286,8 +286,9 @@ def polish_path(path: Path, lags_s, curves, centres_s, window_s, mic_positions_m
         pos[:, :dims] = th.reshape(2, dims)
         v = (pos[1] - pos[0]) / (kt[1] - kt[0])
         p0 = pos[0] - v * kt[0]
-        return -float(_straight_scores(p0[None], v[None], t_c, cum, lags_s, window_s, mics,
-                                       pairs, sound_speed_mps, wind_mps, floor, lobe_s)[0])
+        val = float(_straight_scores(p0[None], v[None], t_c, cum, lags_s, window_s, mics,
+                                     pairs, sound_speed_mps, wind_mps, floor, lobe_s)[0])
+        return -val if np.isfinite(val) else 1e12  # supersonic trial: worst
 
     for k_floor, floor in enumerate(floors_s):  # continuation: wide tolerance first
         span = np.ptp(theta.reshape(2, dims), axis=0).max() + 1.0
@@ -308,6 +309,10 @@ def _straight_scores(p0, v, t_c, cum, lags_s, window_s, mics, pairs, c, wind, fl
     pos_h = p0[:, None, :] + v[:, None, :] * t_c[None, :, None]  # (H, W, 3) at t_c
     r = mics[0] - pos_h
     a = c**2 - np.sum(u * u, axis=-1)[:, None]
+    # only subsonic paths have one emission time; the others score -inf (their quadratic
+    # would give NaN lags)
+    sub = a[:, 0] > (0.05 * c) ** 2
+    a = np.where(a > (0.05 * c) ** 2, a, c**2)
     b = np.einsum("hwi,hi->hw", r, u)
     r2 = np.sum(r * r, axis=-1)
     q = np.sqrt(b**2 + a * r2)
@@ -327,13 +332,15 @@ def _straight_scores(p0, v, t_c, cum, lags_s, window_s, mics, pairs, c, wind, fl
     base = (np.arange(n_w)[:, None] * n_p + np.arange(n_p)[None, :]) * n_l  # (W, P)
 
     def at(tt):
-        x = np.clip((tt - lags_s[0]) / dt, 0.0, n_l - 1.0)
+        x = np.clip(np.nan_to_num((tt - lags_s[0]) / dt, nan=0.0), 0.0, n_l - 1.0)
         i = np.minimum(np.floor(x).astype(int), n_l - 2)
         f = x - i
         return flat[base + i] * (1 - f) + flat[base + i + 1] * f
 
-    val = (at(d + half) - at(d - half)) / np.sqrt(2 * half / dt)
-    return np.where(a[:, 0] > 0, np.nan_to_num(val.sum(axis=(1, 2)), nan=-np.inf), -np.inf)
+    with np.errstate(invalid="ignore", over="ignore"):
+        val = (at(d + half) - at(d - half)) / np.sqrt(2 * half / dt)
+        total = val.sum(axis=(1, 2))
+    return np.where(sub & np.isfinite(total), total, -np.inf)
 
 
 def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, sound_speed_mps,
@@ -347,18 +354,29 @@ def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, soun
     cum = _normalised(curves)
     centre = mics.mean(axis=0)
     ap = max(float(np.max(np.linalg.norm(mics - centre, axis=1))), 1.0)
-    t_cpa = np.linspace(t_c[0], t_c[-1], 9)
     heading = np.deg2rad(np.arange(0.0, 360.0, 15.0))
-    speed = expected_speed_mps * np.array([0.6, 1.0, 1.6])
-    miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
-    height = [source_z_m] if dims == 2 else list(centre[2] + ap * np.array([0.5, 1.2, 2.5]))
+    # speeds from 0.4 to 2.4 times the guess, physical ones only (below 0.9 c)
+    speed = expected_speed_mps * np.array([0.4, 0.75, 1.3, 2.4])
+    speed = np.unique(np.clip(speed, 0.5, 0.9 * sound_speed_mps))
+    if dims == 2:
+        miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
+        height = [source_z_m]
+    else:  # aircraft: up to ~20 apertures away and high up, at aircraft speeds too
+        speed = np.unique(np.clip(np.concatenate([speed, [35.0, 60.0, 110.0, 200.0]]), 0.5,
+                                  0.9 * sound_speed_mps))
+        miss = ap * np.array([-12.0, -4.0, -1.5, 0.0, 1.5, 4.0, 12.0])
+        height = list(centre[2] + ap * np.array([0.5, 1.2, 2.5, 6.0, 15.0]))
+    # closest approach *heard* within the span; its emission time is earlier by the travel
+    # time from the closest point (retarded-time lags of seconds for distant sources)
+    t_cpa = np.linspace(t_c[0], t_c[-1], 9)
     g = np.array(np.meshgrid(t_cpa, heading, speed, miss, height, indexing="ij")).reshape(5, -1)
     d_hat = np.stack([np.sin(g[1]), np.cos(g[1]), 0 * g[1]], -1)
     n_hat = np.stack([np.cos(g[1]), -np.sin(g[1]), 0 * g[1]], -1)
     cpa = centre + g[3][:, None] * n_hat
     cpa[:, 2] = g[4]
     vel = g[2][:, None] * d_hat
-    p0 = cpa - vel * g[0][:, None]  # position at t = 0
+    t_emit = g[0] - np.linalg.norm(cpa - centre, axis=1) / sound_speed_mps
+    p0 = cpa - vel * t_emit[:, None]  # position at t = 0
     scores = np.concatenate([
         _straight_scores(p0[k:k + 400], vel[k:k + 400], t_c, cum, lags_s, window_s, mics, pairs,
                          sound_speed_mps, wind_mps, floor_s, lobe_s)

@@ -25,12 +25,14 @@ import numpy as np
 from locate.errors import NothingFoundError, OptionError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
+from locate.track import budget as track_budget
 from locate.track import delays as track_delays
 from locate.track import doppler
+from locate.track import models as track_models
 from locate.track import start as track_start
-from locate.track.motion import Path, closest_approach, heading_deg
+from locate.track.motion import Path, SplinePath, closest_approach, heading_deg
 from locate.track.pathfit import PathFit, fit_path, knot_times
-from locate.track.retarded import predict_delays
+from locate.track.retarded import Parametrisation, predict_delays
 
 __all__ = [
     "TrackResult", "describe_fit", "track_recording", "track_to_dict", "stationary_message",
@@ -103,6 +105,22 @@ class TrackResult:
     sound_speed_mps: float = 343.0
     warnings: list = field(default_factory=list)
     fit_inputs: dict = field(default_factory=dict)
+    point_velocity_mps: np.ndarray | None = None
+    point_velocity_covariance: np.ndarray | None = None
+    model_requested: str = "straight"
+    model_reason: str = ""
+    candidates: list = field(default_factory=list)
+    misfit: dict = field(default_factory=dict)
+    adequate: bool = True
+    straight_holds: bool = True
+    turns: list = field(default_factory=list)
+    uncertainty: dict = field(default_factory=dict)
+
+    def point_heading_speed(self):
+        """Per point: heading, its sd, speed, its sd (arrays of shape (W,))."""
+        out = [_heading_speed(v, c) for v, c in zip(self.point_velocity_mps,
+                                                    self.point_velocity_covariance)]
+        return tuple(np.array(col) for col in zip(*out)) if out else (np.zeros(0),) * 4
 
 
 def _heading_speed(v, cov):
@@ -183,6 +201,9 @@ def describe_fit(fit: PathFit, mic_positions_m, sound_speed_mps, wind_mps=None, 
                          "speed_mps": h_k[2], "speed_sd_mps": h_k[3]})
     pts = mics if points_m is None else np.asarray(points_m, float).reshape(-1, 3)
     closest = _closest(par, th, cov, pts, sound_speed_mps, wind_mps, (t_lo, t_hi))
+    d_e = par.basis(t_e, 1)  # velocity of each point, (W, 3, n)
+    pvel = np.einsum("win,n->wi", d_e, th)
+    pvcov = np.einsum("win,nm,wjm->wij", d_e, cov, d_e)
     stationary = bool(sp < STATIONARY_SPEED_MPS or sp < 2.0 * sp_sd)
     return TrackResult(
         fit=fit, path=path, t_heard_s=t_h, t_emit_s=t_e, position_m=pos, covariance_m2=pcov,
@@ -191,7 +212,7 @@ def describe_fit(fit: PathFit, mic_positions_m, sound_speed_mps, wind_mps=None, 
         velocity_mps=vel, velocity_covariance=vcov, heading_deg=hd, heading_sd_deg=hd_sd,
         speed_mps=sp, speed_sd_mps=sp_sd, segments=segments, closest=closest,
         stationary=stationary, model=model, sound_speed_mps=float(sound_speed_mps),
-        warnings=list(fit.warnings))
+        warnings=list(fit.warnings), point_velocity_mps=pvel, point_velocity_covariance=pvcov)
 
 
 def _closest(par, th, cov, pts, c, wind, span):
@@ -258,9 +279,9 @@ def _check_inputs(signals, fs, mics, dims, model, sound_speed_mps):
                           f"got {x.shape!r}", field="signals")
     if dims not in (2, 3):
         raise OptionError(f"--dims must be 2 or 3, got {dims!r}", field="--dims")
-    if model not in ("straight", "segments"):
-        raise OptionError(f"model must be 'straight' or 'segments', got {model!r}",
-                          field="--model")
+    if model not in track_models.MODELS:
+        raise OptionError(f"model must be one of {', '.join(track_models.MODELS)}, got "
+                          f"{model!r}", field="--model")
     need = 4 if dims == 2 else 5
     if len(mics) < need:
         raise OptionError(f"a {dims}-D track needs at least {need} mics, got {len(mics)}",
@@ -283,7 +304,7 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                     window_s=None, hop_s=None, band_hz=None, dims=2, source_z_m=0.0,
                     wind_mps=None, model="straight", segment_s=None, expected_speed_mps=20.0,
                     reference_mic=0, points_m=None, bearing_from_m=None, tone_hz=None,
-                    passes=4, allow_stationary=False, progress=None):
+                    passes=4, allow_stationary=False, nuisance_sds=None, progress=None):
     """Reconstruct a moving source's track from synchronised recordings.
 
     Parameters
@@ -317,6 +338,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         Warped refinement passes at most.
     allow_stationary : bool
         Return a stationary-looking result instead of raising.
+    nuisance_sds : dict, optional
+        Declared survey, clock, sound-speed and wind sds
+        (:func:`locate.accuracy.inputs.declared_sds`); they enter the points, heading and
+        speed (:mod:`locate.track.budget`).  None or nothing declared: timing only, and the
+        result says so.
     progress : callable(done, total), optional
 
     Returns
@@ -335,6 +361,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     fs = float(sample_rate_hz)
     c = float(sound_speed_mps)
     x = _check_inputs(signals, fs, mics, dims, model, c)
+    v_guess = float(expected_speed_mps)
+    if not (np.isfinite(v_guess) and 0.0 < v_guess < c):
+        raise OptionError(f"the speed guess must be above 0 and below the sound speed "
+                          f"({c:.0f} m/s), got {expected_speed_mps!r} m/s",
+                          field="expected_speed_mps")
     w_def, h_def, plain_w = track_delays.default_window_s(mics, c, expected_speed_mps)
     window_s = w_def if window_s is None else float(window_s)
     hop_s = (window_s / 2.0 if window_s != w_def else h_def) if hop_s is None else float(hop_s)
@@ -393,29 +424,17 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         if val > best_s:
             start, best_s = pol, val
 
-    # pass 2..: windows warped along the current path, reference-anchored model
+    # pass 2..: windows warped along the current path, reference-anchored model (straight)
     span = track_delays.emission_span_s(start, centres, window_s, mics[reference_mic], c,
                                         wind_mps)
-    knots = knot_times(span[0], span[1], model, len(centres), segment_s)
-    if model == "segments":
-        bent = track_start.bend_path(start, knots, plain_c, u, good, origin, mics, c, wind_mps,
-                                     dims=dims, source_z_m=source_z_m,
-                                     reference_mic=reference_mic)
-        args = (lags, curves, plain_c, plain_w, mics, pairs, c, wind_mps)
-        srp_kw = dict(dims=dims, source_z_m=source_z_m, lobe_s=lobe)
-        if track_start.path_srp(bent, *args, **srp_kw) > track_start.path_srp(start, *args,
-                                                                              **srp_kw):
-            start = bent
+    knots = knot_times(span[0], span[1], "straight", len(centres))
+    kw["model"] = "straight"
     max_lag = min(0.02, window_s / 4.0)
-    warp = start
-    fit = None
-    meas = None
-    n_ok = 0
-    for k in range(passes + 1):
-        tolerant = k == 0
+
+    def measure(warp, tolerant, lag):
         eps, cov_w, ok_w = track_delays.warped_delays(
             x, fs, t0_s, centres, window_s, warp, mics, pairs, c, wind_mps=wind_mps,
-            band_hz=band_hz, max_lag_s=max_lag, reference_mic=reference_mic,
+            band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
             raise NothingFoundError(
@@ -423,18 +442,80 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                 + ("" if band_hz is not None else ": the whole band was searched; give --band "
                    "around the source's sound (e.g. its octaves above the background)")
                 + "; a source passing close to the mics may need a shorter --window")
-        new = fit_path(centres, eps, cov_w, mics, pairs, c, usable=ok_w, warp=warp,
+        return eps, cov_w, ok_w, warp
+
+    def next_lag(f):
+        # next search: a few times what the path leaves unexplained, plus two lobes
+        return float(np.clip(8.0 * f.residual_rms_s + 2.0 * lobe, 2e-3, min(0.02, window_s / 4)))
+
+    warp = start
+    fit = None
+    meas = None
+    n_ok = 0
+    for k in range(passes + 1):
+        tolerant = k == 0
+        meas = measure(warp, tolerant, max_lag)
+        new = fit_path(centres, meas[0], meas[1], mics, pairs, c, usable=meas[2], warp=warp,
                        initial=warp, robust=tolerant, knots_s=knots, **kw)
         moved = np.max(np.linalg.norm(new.path.position_m(new.t_emit_s)
                                       - warp.position_m(new.t_emit_s), axis=1))
-        meas = (eps, cov_w, ok_w, warp)
         fit, warp = new, new.path
-        # next search: a few times what the new path leaves unexplained, plus two lobes
-        max_lag = float(np.clip(8.0 * fit.residual_rms_s + 2.0 * lobe, 2e-3, max_lag))
+        max_lag = next_lag(fit)
         sd = np.sqrt(np.max(np.linalg.eigvalsh(fit.covariance)))
-        n_ok, n_ok_prev = (0 if tolerant else int(ok_w.sum())), n_ok
+        n_ok, n_ok_prev = (0 if tolerant else int(meas[2].sum())), n_ok
         if k >= 2 and moved < max(0.5 * sd, 0.05) and n_ok <= 1.02 * n_ok_prev:
             break
+
+    # motion model chosen by the data (locate.track.models), then re-measured along it
+    fit_kw = dict(wind_mps=wind_mps, dims=dims, source_z_m=source_z_m,
+                  reference_mic=reference_mic)
+    chosen = track_models.Candidate("straight", fit)
+    candidates = [chosen]
+    straight_fit = fit
+    if model != "straight":
+        structure = None
+        wide = min(0.05, window_s / 4.0)
+        n_tol = 0
+        for rnd in range(5):
+            # tolerant rounds (drift-tolerant peaks over a wide search, robust fits) while the
+            # chosen path still leaves windows unexplained; then fine rounds
+            tol = n_tol < 4 and (rnd == 0 or chosen.fit.used.mean() < 0.9
+                                 or track_models.adequacy(chosen.fit)["bad_window_fraction"]
+                                 > track_models.BAD_WINDOW_FRACTION)
+            n_tol += tol
+            data = (centres,) + meas + (mics, pairs, c, fit_kw)
+            chosen, candidates = track_models.choose_model(model, straight_fit, data,
+                                                            segment_s=segment_s)
+            key = (chosen.model, chosen.fit.par.n_knots)
+            if chosen.model == "straight" and rnd == 0:
+                break
+            if not tol and key == structure:
+                break
+            structure = key
+            warp = chosen.fit.path
+            meas = measure(warp, tol, wide if tol else next_lag(chosen.fit))
+            # the same structure refitted to the new delays, and the straight one beside it
+            fit = fit_path(centres, meas[0], meas[1], mics, pairs, c, usable=meas[2],
+                           warp=warp, initial=warp, knots_s=chosen.fit.par.knot_times_s,
+                           degree=chosen.fit.par.degree, **fit_kw)
+            chosen = track_models.Candidate(chosen.model, fit)
+            straight_fit = fit_path(centres, meas[0], meas[1], mics, pairs, c,
+                                    usable=meas[2], warp=warp, initial=straight_fit.path,
+                                    knots_s=straight_fit.par.knot_times_s, degree=1, **fit_kw)
+        if chosen.model == "segments" and segment_s is None and chosen.fit.par.n_knots > 2:
+            # last: drop the knots the final delays do not need (backward elimination)
+            data = (centres,) + meas + (mics, pairs, c, fit_kw)
+            chosen = track_models.prune(chosen, data, chosen.fit.used)
+            able = chosen.fit.window_dof >= dims + 1
+            chosen = track_models.polish_knots(chosen, data, able)
+            # and the delays measured once more along the polished path
+            warp = chosen.fit.path
+            meas = measure(warp, False, next_lag(chosen.fit))
+            fit = fit_path(centres, meas[0], meas[1], mics, pairs, c, usable=meas[2],
+                           warp=warp, initial=warp, knots_s=chosen.fit.par.knot_times_s,
+                           degree=1, **fit_kw)
+            chosen = track_models.Candidate(chosen.model, fit)
+        fit = chosen.fit
     # Overlapping windows share samples, so their delay errors are correlated (for a
     # rectangular window the correlation of windows k hops apart is 1 - k hop / window); the
     # fit treats windows as independent.  Scale the path covariance by the long-run variance
@@ -443,20 +524,107 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     fit = dataclasses.replace(fit, covariance=fit.covariance * overlap_factor(window_s, hop_s),
                               covariance_scale=fit.covariance_scale
                               * overlap_factor(window_s, hop_s))
-    result = describe_fit(fit, mics, c, wind_mps, bearing_from_m=bearing_from_m,
-                          points_m=points_m, model=model)
+    describe_kw = dict(bearing_from_m=bearing_from_m, points_m=points_m, model=chosen.model)
+    if track_budget.has_declared(nuisance_sds):
+        bud = track_budget.track_budget(fit, meas[1], meas[2], mics, pairs, c, wind_mps,
+                                        nuisance_sds)
+        timing_cov = describe_fit(fit, mics, c, wind_mps, **describe_kw).covariance_m2
+        fit = dataclasses.replace(fit, covariance=fit.covariance + bud["theta_cov"])
+        result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
+        result.covariance_m2 = timing_cov + bud["point_cov"]
+        shares = {k: round(v, 4) for k, v in bud["components"].items()}
+        result.uncertainty = {
+            "declared": True, "timing_only": False, "components_share": shares,
+            "note": "includes the declared " + ", ".join(
+                f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
+                for k, v in shares.items()) + " uncertainties (first-order propagation)"}
+    else:
+        result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
+        result.uncertainty = {"declared": False, "timing_only": True,
+                              "note": track_budget.TIMING_ONLY_NOTE}
     eps, cov_w, ok_w, warp_used = meas
-    pred_w = predict_delays(fit.par, fit.par.theta(warp_used), centres, mics, pairs, c, wind_mps,
+    wpar = _par_of(warp_used, dims, source_z_m)
+    pred_w = predict_delays(wpar, wpar.theta(warp_used), centres, mics, pairs, c, wind_mps,
                             reference_mic=reference_mic, jacobian=False)[0]
     result.fit_inputs = {"pairs": pairs, "absolute_delays_s": pred_w + eps,
                          "covariance_s2": cov_w, "usable": ok_w, "window_s": window_s,
                          "hop_s": hop_s, "plain_window_s": plain_w}
+    _assess(result, chosen, candidates, model, meas, mics, pairs, c, wind_mps)
     if result.stationary and not allow_stationary:
         raise NothingFoundError(stationary_message(result))
     if tone_hz is not None:
         result.doppler = doppler.doppler_speed(x, fs, t0_s, centres, window_s, result, mics, c,
                                                wind_mps=wind_mps, tone_hz=tone_hz)
     return result
+
+
+def _par_of(path, dims, source_z_m):
+    """The parametrisation that represents ``path`` exactly."""
+    degree = path.degree if isinstance(path, SplinePath) else 1
+    return Parametrisation(path.knot_times_s, dims, source_z_m, degree)
+
+
+def _assess(result: TrackResult, chosen, candidates, requested, meas, mics, pairs, c, wind):
+    """Model choice, misfit verdict and - when the model does not explain the windows -
+    point, heading and speed uncertainties grown to cover it (locate.track.models)."""
+    fit = result.fit
+    result.model_requested = requested
+    result.candidates = [cd.summary() for cd in candidates]
+    straight = next((cd for cd in candidates if cd.model == "straight"), None)
+    if requested == "straight":
+        result.model_reason = "requested (--model straight)"
+    elif len(candidates) == 1:
+        result.model_reason = "only candidate"
+    else:
+        listed = ", ".join(f"{cd.model} ({cd.fit.par.n_knots - 1} interval(s), degree "
+                           f"{cd.fit.par.degree}) {cd.bic:.6g}" for cd in candidates)
+        result.model_reason = (f"{chosen.model}: lowest BIC = chi2 + k ln n among the "
+                               f"candidates fitted to the same delays ({listed})"
+                               + ("; knots then pruned and their times polished"
+                                  if chosen.model == "segments" else ""))
+    adq = track_models.adequacy(fit)
+    result.misfit = adq
+    result.adequate = adq["adequate"]
+    result.turns = track_models.turns(fit)
+    result.straight_holds = bool(chosen.model == "straight" and adq["adequate"])
+    if chosen.model != "straight" and straight is not None and requested == "auto":
+        result.warnings.append(
+            f"the source does not move in a straight line (the {chosen.model} model fits the "
+            f"delays better by the BIC): heading and speed are given per track point; the "
+            f"overall values are a mean over the span")
+    if adq["adequate"]:
+        return
+    eps, cov_w, ok_w, _ = meas
+    shift, wcov = track_models.window_displacements(fit, eps, cov_w, ok_w, mics, pairs, c, wind)
+    shift = np.where(np.isfinite(shift), shift, 0.0)
+    red_w = adq["window_chi2_reduced"]
+    # a window with too few usable delays for its own fix says nothing about the model error
+    # at its point: it gets the largest error seen at any other point (conservative)
+    alone = fit.window_dof < fit.par.dims + 1
+    if alone.any() and (~alone).any():
+        size = np.einsum("wii->w", wcov) * np.maximum(red_w, 1.0) + np.sum(shift**2, axis=1)
+        k = int(np.argmax(np.where(alone, -np.inf, size)))
+        wcov[alone] = wcov[k] * max(red_w[k], 1.0)
+        shift[alone] = shift[k]
+        red_w = np.where(alone, 1.0, red_w)
+    result.covariance_m2 = track_models.inflate(result.covariance_m2, shift, wcov, red_w)
+    result.covariance_now_m2 = track_models.inflate(result.covariance_now_m2, shift, wcov, red_w)
+    t = result.t_emit_s
+    if t.size >= 3:  # velocity error implied by the changing displacement
+        dv = np.gradient(shift, t, axis=0)
+        result.point_velocity_covariance = (result.point_velocity_covariance
+                                            + np.einsum("wi,wj->wij", dv, dv))
+        rms_dv = np.sqrt(np.mean(np.sum(dv**2, axis=1)))
+        result.velocity_covariance = result.velocity_covariance + np.eye(3) * rms_dv**2 / 3
+        hd = _heading_speed(result.velocity_mps, result.velocity_covariance)
+        result.heading_sd_deg, result.speed_sd_mps = hd[1], hd[3]
+    result.warnings.append(
+        f"the {chosen.model} model does not explain the windows (reduced chi-square "
+        f"{adq['chi2_reduced']:.1f}, limit {track_models.MISFIT_LIMIT:g}; "
+        f"{100 * adq['bad_window_fraction']:.0f} % of windows beyond their 99.9 % limit, "
+        f"{100 * adq['kept_fraction']:.0f} % of windows kept): the "
+        "track is flagged and its ellipses, heading and speed uncertainties are widened to "
+        "cover the model error")
 
 
 def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
@@ -476,8 +644,13 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
     names = list(mic_names if point_names is None else point_names)
     used = result.fit.used
     pts = []
+    hd, hd_sd, sp, sp_sd = result.point_heading_speed()
+    red_w = result.misfit.get("window_chi2_reduced")
     for w in range(len(result.t_heard_s)):
         pts.append({
+            "heading_deg": float(hd[w]), "heading_sd_deg": float(hd_sd[w]),
+            "speed_mps": float(sp[w]), "speed_sd_mps": float(sp_sd[w]),
+            "misfit": None if red_w is None else float(red_w[w]),
             "t_emit_s": float(result.t_emit_s[w]), "t_heard_s": float(result.t_heard_s[w]),
             "position_m": result.position_m[w].tolist(),
             "covariance_m2": result.covariance_m2[w].tolist(),
@@ -489,9 +662,23 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
                for c in result.closest]
     for c in closest:
         c.pop("index")
+    holds = result.straight_holds
     return {
-        "points": pts, "heading_deg": result.heading_deg, "heading_sd_deg": result.heading_sd_deg,
-        "speed_mps": result.speed_mps, "speed_sd_mps": result.speed_sd_mps,
+        "points": pts,
+        "heading_deg": result.heading_deg if holds else None,
+        "heading_sd_deg": result.heading_sd_deg if holds else None,
+        "speed_mps": result.speed_mps if holds else None,
+        "speed_sd_mps": result.speed_sd_mps if holds else None,
+        "mean_heading_deg": result.heading_deg, "mean_heading_sd_deg": result.heading_sd_deg,
+        "mean_speed_mps": result.speed_mps, "mean_speed_sd_mps": result.speed_sd_mps,
+        "straight_holds": holds,
+        "model_requested": result.model_requested, "model_reason": result.model_reason,
+        "model_candidates": result.candidates,
+        "misfit_chi2_reduced": result.misfit.get("chi2_reduced"),
+        "misfit_bad_window_fraction": result.misfit.get("bad_window_fraction"),
+        "model_adequate": result.adequate, "flagged": not result.adequate,
+        "turns": result.turns, "uncertainty": result.uncertainty,
+        "uncertainty_note": result.uncertainty.get("note"),
         "velocity_mps": result.velocity_mps.tolist(), "model": result.model,
         "segments": result.segments, "closest_approach": closest,
         "bearing_from_m": result.bearing_from_m.tolist(),

@@ -1,0 +1,148 @@
+"""Declared survey, clock, sound-speed and wind uncertainties in a track.
+
+The windowed delays carry only the correlation (timing) noise.  The path also depends on
+nuisance inputs known to a declared standard deviation (the site's ``[survey]``; the dict of
+:func:`locate.accuracy.inputs.declared_sds`): mic positions, recorder clock offsets, the sound
+speed and a uniform wind.  They are common to every window, so their effect is a correlated
+shift of the whole path, not extra scatter per window.
+
+Method - law of propagation of uncertainty to first order (JCGM 100:2008, GUM, 5.1.2 eq. (10);
+5.2.2 eq. (13) for outputs that share inputs), as the stationary budget does:
+
+* the weighted least-squares path ``theta`` moves by ``dtheta = -(J^T J)^-1 J^T M G dnu`` when
+  a nuisance moves by ``dnu``, with ``J`` the whitened Jacobian of the delays of all windows,
+  ``M`` the whitening and ``G = d(predicted delays)/d(nuisance)`` (central differences of
+  :func:`locate.track.retarded.predict_delays`; a clock offset of a recorder shifts the
+  delays of its mics by the pair incidence);
+* a track point ``p(t_e)`` moves by ``q dtheta`` plus ``v dt_e`` where the emission time
+  itself depends on the nuisance (``t_heard = t_e + T(p(t_e) -> m_ref)``: the sound speed,
+  the reference mic's position and its clock), again by central differences;
+* the covariances ``sum_k D_k diag(sd_k^2) D_k^T`` add to the timing covariances of the path
+  parameters, the points and (through ``dtheta``) the velocity.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from locate.track.motion import emission_time_s
+from locate.track.pathfit import whitening
+from locate.track.retarded import predict_delays
+
+__all__ = ["COMPONENTS", "has_declared", "nuisance_columns", "track_budget", "TIMING_ONLY_NOTE"]
+
+COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind")
+TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertainty is declared "
+                    "in the site file ([survey]), so the ellipses, heading and speed "
+                    "uncertainties hold only if the mic positions, clocks and air are exact")
+_H_POS = 0.01  # central-difference steps: m, s, m/s (the delays are smooth in all of them)
+_H_CLK = 1e-5
+_H_C = 0.05
+_H_W = 0.05
+
+
+def has_declared(sds) -> bool:
+    return sds is not None and any(bool(v) for v in sds.get("declared", {}).values())
+
+
+def nuisance_columns(sds, n_mics):
+    """``[(component, kind, index, sd)]``: one column per declared nuisance with sd > 0."""
+    cols = []
+    pos, hgt = np.asarray(sds["position_m"], float), np.asarray(sds["height_m"], float)
+    for k in range(n_mics):
+        for axis, sd in ((0, pos[k]), (1, pos[k]), (2, hgt[k])):
+            if sd > 0:
+                cols.append(("mic_positions", "mic", (k, axis), float(sd)))
+    groups = np.asarray(sds["clock_group"], int)
+    for g in np.unique(groups):
+        sd = float(np.max(np.asarray(sds["clock_s"], float)[groups == g]))
+        if sd > 0:
+            cols.append(("clocks", "clock", np.flatnonzero(groups == g), sd))
+    if sds["sound_speed_mps"] > 0:
+        cols.append(("sound_speed", "c", None, float(sds["sound_speed_mps"])))
+    if sds["wind_mps"] > 0:
+        for axis in (0, 1):
+            cols.append(("wind", "wind", axis, float(sds["wind_mps"])))
+    return cols
+
+
+def _perturbed(kind, index, h, mics, c, wind, t_h, ref):
+    m = mics.copy()
+    cc = c
+    w = np.zeros(3) if wind is None else np.asarray(wind, float).copy()
+    th = t_h.copy()
+    shift = np.zeros(len(mics))
+    if kind == "mic":
+        m[index[0], index[1]] += h
+    elif kind == "clock":
+        shift[index] = h
+        th = t_h + shift[ref]  # the reference mic's clock moves the heard times too
+    elif kind == "c":
+        cc = c + h
+    else:
+        w[index] += h
+    return m, cc, w, th, shift
+
+
+def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed_mps,
+                 wind_mps, sds):
+    """Parameter and point covariances added by the declared nuisances (module docstring).
+
+    Parameters
+    ----------
+    fit : locate.track.pathfit.PathFit
+    covariance_s2 : ndarray, shape (W, P, P)
+        The windows' delay covariance (for the weights).
+    usable : ndarray, shape (W, P) bool
+    mic_positions_m, pairs, sound_speed_mps, wind_mps
+    sds : dict
+        From :func:`locate.accuracy.inputs.declared_sds` / ``nuisance_sds``.
+
+    Returns
+    -------
+    dict
+        ``theta_cov`` (n, n), ``point_cov`` (W, 3, 3), ``components`` {name: share of the mean
+        horizontal point variance added}, ``point_cov_by`` {name: (W, 3, 3)}.
+    """
+    mics = np.asarray(mic_positions_m, float)
+    pairs = np.asarray(pairs, int)
+    par, theta = fit.par, fit.theta
+    sel = np.flatnonzero(fit.used)
+    t_h = fit.t_heard_s
+    ref = fit.reference_mic
+    c = float(sound_speed_mps)
+    m_w, _ = whitening(covariance_s2[sel], np.asarray(usable, bool)[sel])
+    kw = dict(reference_mic=ref)
+    _, jac, _ = predict_delays(par, theta, t_h[sel], mics, pairs, c, wind_mps, **kw)
+    jw = np.einsum("wqp,wpn->wqn", m_w, jac).reshape(-1, par.n_params)
+    solve = np.linalg.pinv(jw.T @ jw) @ jw.T  # (n, W*P)
+    n_w = len(t_h)
+    theta_cov = np.zeros((par.n_params, par.n_params))
+    point_cov = np.zeros((n_w, 3, 3))
+    by = {}
+    for comp, kind, index, sd in nuisance_columns(sds, len(mics)):
+        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
+        d_pred, d_pt = [], []
+        for sign in (1.0, -1.0):
+            m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h, ref)
+            d = predict_delays(par, theta, th[sel], m, pairs, cc, w, jacobian=False, **kw)[0]
+            d = d + (shift[pairs[:, 1]] - shift[pairs[:, 0]])
+            d_pred.append(d)
+        g = (d_pred[0] - d_pred[1]) / (2 * h)  # (W_sel, P) per unit nuisance
+        dtheta = -solve @ np.einsum("wqp,wp->wq", m_w, g).reshape(-1)  # (n,)
+        for sign in (1.0, -1.0):
+            m, cc, w, th, _ = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h, ref)
+            path = par.path(theta + sign * h * dtheta)
+            te = emission_time_s(th, m[ref], path, cc, w)
+            d_pt.append(path.position_m(te))
+        dp = (d_pt[0] - d_pt[1]) / (2 * h)  # (W, 3)
+        dp = np.where(np.isfinite(dp), dp, 0.0)
+        theta_cov += sd**2 * np.outer(dtheta, dtheta)
+        add = sd**2 * np.einsum("wi,wj->wij", dp, dp)
+        point_cov += add
+        by[comp] = by.get(comp, 0.0) + add
+    total = float(np.mean(np.trace(point_cov[:, :2, :2], axis1=1, axis2=2)))
+    shares = {k: (float(np.mean(np.trace(v[:, :2, :2], axis1=1, axis2=2))) / total
+                  if total > 0 else 0.0) for k, v in by.items()}
+    return {"theta_cov": theta_cov, "point_cov": point_cov, "components": shares,
+            "point_cov_by": by}
