@@ -55,6 +55,18 @@ for _command in (check, fix, events, level, plan, demo, sync, report, track, map
     cli.add_command(_command)
 
 
+GLOBAL_FLAGS = ("-q", "--quiet", "--debug")
+
+
+def _globals_first(args):
+    """``tdoa fix site.toml -q`` as ``tdoa -q fix site.toml``: the group's flags may stand
+    anywhere on the line (before ``--``, which ends the options)."""
+    end = args.index("--") if "--" in args else len(args)
+    flags = [a for a in args[:end] if a in GLOBAL_FLAGS]
+    rest = [a for a in args[:end] if a not in GLOBAL_FLAGS]
+    return flags + rest + args[end:]
+
+
 def main(argv=None):
     """Console entry point: the one boundary between the program and the user's terminal.
 
@@ -65,7 +77,7 @@ def main(argv=None):
     naming the file and what to do; anything else is "internal error", exit code 1.  Never a
     traceback, unless ``--debug`` is given.
     """
-    args = list(sys.argv[1:] if argv is None else argv)
+    args = _globals_first(list(sys.argv[1:] if argv is None else argv))
     debug = "--debug" in args
 
     def fail(line, code):

@@ -44,7 +44,9 @@ def usability_notes(rec, span_m, sound_speed_mps):
 
 @click.command()
 @click.argument("site_path", metavar="SITE", type=click.Path())
-@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
+@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True,
+              help="Check the layout for 2-D fixes (3+ mics) or 3-D fixes (4+ mics at several "
+                   "heights).")
 @timeline_option
 @click.pass_context
 @transactional

@@ -207,14 +207,15 @@ def resolve_span(rec, start_s, stop_s, window_s=None):
 
 
 def span_options(f):
-    f = click.option("--from", "start_s", type=TIME, default=None,
-                     help="Start of the span: seconds into the recording, or an ISO 8601 "
-                          "clock time (UTC unless a zone is given) when they carry one.")(f)
-    f = click.option("--to", "stop_s", type=TIME, default=None,
-                     help="End of the span: seconds, or an ISO 8601 clock time.")(f)
+    """--from, --to and --band, listed in that order (the last applied is listed first)."""
     f = click.option("--band", default=None, metavar="LO:HI",
                      help="Analysis band in Hz (default: where the signal stands above the "
                           "noise).")(f)
+    f = click.option("--to", "stop_s", type=TIME, default=None,
+                     help="End of the span: seconds, or an ISO 8601 clock time.")(f)
+    f = click.option("--from", "start_s", type=TIME, default=None,
+                     help="Start of the span: seconds into the recording, or an ISO 8601 "
+                          "clock time (UTC unless a zone is given) when they carry one.")(f)
     return f
 
 
@@ -386,6 +387,7 @@ OPTION_OF = {
     "start_s": "--from", "window_s": "--window", "hop_s": "--hop", "solve_wind": "--solve-wind",
     "model": "--model", "source_z_m": "--source-z", "speed_guess_mps": "--speed-guess",
     "threshold_db": "--threshold", "segment_s": "--segment", "snr_db": "--snr",
+    "source_z_sd_m": "--source-z-sd", "solve_air": "--solve-air",
     "chunk_s": "--chunk", "chunk_overlap_s": "--chunk-overlap",
 }
 """The library names its parameters in errors (``window_s``); the command line says the option

@@ -28,7 +28,8 @@ from locate.cli.common import (
 @span_options
 @click.option("--threshold", "threshold_db", type=FINITE, default=10.0, show_default=True,
               help="dB above the background for a frame to count as active.")
-@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None,
+              help="Write the list of events as a result JSON here.")
 @timeline_option
 @click.pass_context
 @transactional

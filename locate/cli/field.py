@@ -24,19 +24,19 @@ def geojson_option(f):
 
 def field_options(f):
     """``--geojson``, ``--solve-air``, ``--solve-wind`` and ``--events`` for ``tdoa fix``."""
-    f = geojson_option(f)
     f = click.option(
-        "--solve-air", "solve_air", is_flag=True,
-        help="Also solve the effective sound speed from the delays (needs dims + 2 mics: 4 "
-             "for 2-D, 5 for 3-D) and compare it with the site's air.")(f)
+        "--events", "events_choice", default=None, metavar="all|N|T1,T2,...",
+        help="Which detected events to fix: all (default), the N-th, or the event nearest "
+             "each time T (seconds; a single time needs a decimal point, e.g. 12.0).")(f)
     f = click.option(
         "--solve-wind", "solve_wind", is_flag=True,
         help="With --solve-air, also solve a uniform horizontal wind (needs dims + 4 mics: "
              "6 for 2-D, 7 for 3-D).")(f)
     f = click.option(
-        "--events", "events_choice", default=None, metavar="all|N|T1,T2,...",
-        help="Which detected events to fix: all (default), the N-th, or the event nearest "
-             "each time T (seconds; a single time needs a decimal point, e.g. 12.0).")(f)
+        "--solve-air", "solve_air", is_flag=True,
+        help="Also solve the effective sound speed from the delays (needs dims + 2 mics: 4 "
+             "for 2-D, 5 for 3-D) and compare it with the site's air.")(f)
+    f = geojson_option(f)
     return f
 
 

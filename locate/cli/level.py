@@ -27,7 +27,8 @@ from locate.errors import OptionError
               help="Ground factor G for the receivers, ISO 9613-2 general method (0 hard, e.g. "
                    "paving or water; 1 porous, e.g. grass or crops). Default: no ground "
                    "effect (free field).")
-@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None,
+              help="Write the levels (source power, receiver levels) as JSON here.")
 @click.pass_context
 @transactional
 def level(ctx, site_path, result_path, fix_no, hemisphere, ground, json_path):

@@ -51,8 +51,10 @@ __all__ = ["track", "map_command"]
               help="Rough speed, m/s; sets the default window.")
 @click.option("--tone", "tone", default=None, metavar="HZ|auto",
               help="Track this tone (or the strongest, 'auto') for a Doppler speed check.")
-@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
-@click.option("--map", "map_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None,
+              help="Write the track result JSON here.")
+@click.option("--map", "map_path", type=click.Path(dir_okay=False), default=None,
+              help="Draw the track over the site sketch (PNG, SVG or PDF).")
 @click.pass_context
 @transactional
 def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,

@@ -22,7 +22,8 @@ from locate.errors import OptionError
 @click.argument("site_path", metavar="SITE", type=click.Path())
 @click.option("-o", "--output", "out_path", type=click.Path(dir_okay=False), default=None,
               help="Planning map (PNG, SVG or PDF).")
-@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None)
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), default=None,
+              help="Write the plan (expected ellipses, proposals) as JSON here.")
 @click.option("--timing-sd", "timing_sd_s", type=FINITE, default=None,
               help="Expected arrival-time accuracy per mic, seconds (e.g. 2e-5).")
 @click.option("--band", default=None, metavar="LO:HI",
@@ -43,10 +44,16 @@ from locate.errors import OptionError
               type=click.Choice(["auto", "polygon", "receivers", "extent"]),
               help="Where accuracy matters.")
 @click.option("--objective", default="worst", show_default=True,
-              type=click.Choice(["worst", "mean"]))
-@click.option("--propose", "n_propose", type=click.IntRange(0, 10), default=1, show_default=True)
-@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True)
-@click.option("--source-z", "source_z_m", type=FINITE, default=0.0, show_default=True)
+              type=click.Choice(["worst", "mean"]),
+              help="What a proposed mic should improve: the worst or the mean ellipse over the "
+                   "region.")
+@click.option("--propose", "n_propose", type=click.IntRange(0, 10), default=1, show_default=True,
+              help="How many new mics to propose (0: map the layout only).")
+@click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True,
+              help="Plan for 2-D fixes (height given) or 3-D fixes.")
+@click.option("--source-z", "source_z_m", type=FINITE, default=0.0, show_default=True,
+              help="Height of the mapped plane: the source height, metres (same datum as the "
+                   "mics).")
 @click.pass_context
 @transactional
 def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,

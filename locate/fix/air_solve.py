@@ -148,7 +148,7 @@ def require_mics(n_mics: int, dims: int, solve_wind: bool = False):
         what = f"x, y{', z' if dims == 3 else ''}, c" + (", wind x, wind y" if solve_wind else "")
         raise OptionError(f"solving {what} ({n_unknowns(dims, solve_wind)} unknowns) needs at "
                           f"least {need} mics ({need - 1} arrival differences); this site has "
-                          f"{n_mics}", field="--solve-wind" if solve_wind else "--solve-air")
+                          f"{n_mics}", field="solve_wind" if solve_wind else "solve_air")
 
 
 def sound_speed_sd_mps(air) -> float:

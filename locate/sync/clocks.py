@@ -389,7 +389,7 @@ def fit_clocks(events, offsets_s, drift_ppm, site_offset_s, cover_s, *, referenc
     if np.any(np.abs(dt) < 1.0):
         raise OptionError("the two reference events are less than 1 s apart: give two spans "
                           "far apart (ideally at the start and end of the recording)",
-                          field="--from2")
+                          field="start2_s")
     b = (deltas[1] - deltas[0]) / dt
     a = deltas[0] - b * taus[0]
     var1, var2 = sds[0] ** 2, sds[1] ** 2  # events independent; per-mic variances

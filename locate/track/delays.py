@@ -87,13 +87,13 @@ def window_centres(n_samples, sample_rate_hz, t0_s, window_s, hop_s):
     """
     span = n_samples / float(sample_rate_hz)
     if not hop_s > 0:
-        raise OptionError(f"the hop must be positive, got {hop_s!r} s", field="--hop")
+        raise OptionError(f"the hop must be positive, got {hop_s!r} s", field="hop_s")
     if not window_s > 0:
-        raise OptionError(f"the window must be positive, got {window_s!r} s", field="--window")
+        raise OptionError(f"the window must be positive, got {window_s!r} s", field="window_s")
     if window_s > span:
         raise OptionError(f"the window ({window_s:g} s) is longer than the span analysed "
                           f"({span:g} s); shorten --window or widen --from/--to",
-                          field="--window")
+                          field="window_s")
     n = int(np.floor((span - window_s) / hop_s + 1e-9)) + 1
     return t0_s + window_s / 2.0 + hop_s * np.arange(n)
 

@@ -278,10 +278,10 @@ def _check_inputs(signals, fs, mics, dims, model, sound_speed_mps):
         raise OptionError(f"signals must have shape (n_mics={len(mics)}, n_samples), "
                           f"got {x.shape!r}", field="signals")
     if dims not in (2, 3):
-        raise OptionError(f"--dims must be 2 or 3, got {dims!r}", field="--dims")
+        raise OptionError(f"dims must be 2 or 3, got {dims!r}", field="dims")
     if model not in track_models.MODELS:
         raise OptionError(f"model must be one of {', '.join(track_models.MODELS)}, got "
-                          f"{model!r}", field="--model")
+                          f"{model!r}", field="model")
     need = 4 if dims == 2 else 5
     if len(mics) < need:
         raise OptionError(f"a {dims}-D track needs at least {need} mics, got {len(mics)}",

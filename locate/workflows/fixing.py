@@ -146,7 +146,7 @@ def resolve_source_height(source_z_m, source_z_sd_m=None, dims=2):
         sd = GIVEN_SOURCE_Z_SD_M
     if not (np.isfinite(sd) and sd >= 0):
         raise OptionError(f"source height uncertainty {sd!r} must be finite and >= 0",
-                          field="--source-z-sd")
+                          field="source_z_sd_m")
     return z, float(sd), "given" if given else "assumed"
 
 
