@@ -164,10 +164,38 @@ def _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz, max
         return None
     signals, residual = recordings.read(lo, stop_s)
     fs = recordings.sample_rate_hz
+    if background_coherence(signals[:, : int((first - lo) * fs)], fs, band_hz) \
+            < STEADY_COHERENCE:
+        return None  # nothing steady and coherent to remove: the plain delays serve better
     onset_idx = (onset_s - lo) * fs
     return onset_delays(signals, fs, onset_idx, max_lag_s=max_lag, pairs=pairs,
                         band_hz=band_hz, t_s=lo, offsets_s=residual,
                         spread_s=_array_spread_s(site.positions_m, cond))
+
+
+STEADY_COHERENCE = 0.3
+"""Mean magnitude-squared coherence between mics, before an event, above which a steady
+source is sounding (independent mic noise gives ~0; a fan or hum heard by every mic gives
+0.5-1): only then is the background removed from the event's delays (locate.signal.onsets)."""
+
+
+def background_coherence(signals, sample_rate_hz, band_hz=None):
+    """Mean magnitude-squared coherence (scipy.signal.coherence, Welch) of the first mic with
+    up to four others over ``band_hz`` (default 100 Hz to 0.4 fs); 0 for too short a stretch."""
+    from scipy.signal import coherence
+
+    n = signals.shape[1]
+    seg = min(1024, n // 4)
+    if seg < 64 or signals.shape[0] < 2:
+        return 0.0
+    lo, hi = band_hz if band_hz is not None else (100.0, 0.4 * sample_rate_hz)
+    vals = []
+    for k in range(1, min(signals.shape[0], 5)):
+        f, c = coherence(signals[0], signals[k], fs=sample_rate_hz, nperseg=seg)
+        sel = (f >= lo) & (f <= hi)
+        if np.any(sel):
+            vals.append(float(np.nanmean(c[sel])))
+    return float(np.mean(vals)) if vals else 0.0
 
 
 EVENT_BACKGROUND_S = 1.0
