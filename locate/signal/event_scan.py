@@ -214,8 +214,16 @@ def stream_frame_energy(recordings, start_s, stop_s, *, frame_s=FRAME_S, band_hz
         sig = raw
         if whiten:
             n_fr = (k_end - k) // frame
-            yield (k_end - k) / fs, whitened_energy_db(sig, fs, frame=frame, n_frames=n_fr,
-                                                       history=k - a, band_hz=band_hz)
+            e = whitened_energy_db(sig, fs, frame=frame, n_frames=n_fr, history=k - a,
+                                   band_hz=band_hz)
+            if getattr(recordings, "deployment", None) is not None:
+                # a recorder's start or a gap's end is a step, not an event: blank the frames
+                # whose spectral window reaches into audio the mic does not have
+                margin = whitening_window(fs) / fs
+                holes = [[(lo - margin, hi + margin) for lo, hi in spans]
+                         for spans in recordings.uncovered((k - pad) / fs, (k_end + pad) / fs)]
+                _blank_uncovered(e, holes, k / fs, frame / fs)
+            yield (k_end - k) / fs, e
             k = k_end
             continue
         if band_hz is not None:

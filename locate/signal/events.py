@@ -93,9 +93,15 @@ def whitened_energy_db(signals, sample_rate_hz, *, frame, n_frames, history, ban
             idx = st[:, None] + np.arange(n_win)[None, :]
             spec = sfft.rfft(xk[idx] * win, axis=-1)[:, sel]
             return spec.real**2 + spec.imag**2
-        bg = np.median(power(bg_starts), axis=0) / np.log(2.0)
-        p = power(starts) / np.maximum(bg, 1e-300)
+        pb = power(bg_starts)
+        live = np.any(pb > 0, axis=-1)  # windows of digital silence (a recorder off, or a
+        pb = pb[live] if np.any(live) else pb  # file's zero-filled end) are no background
+        bg = np.median(pb, axis=0) / np.log(2.0)
+        p = power(starts)
+        dead = ~np.any(p > 0, axis=-1)
+        p = p / np.maximum(bg, 1e-300)
         out[k] = 10.0 * np.log10(np.maximum(np.mean(p, axis=-1), 1e-20))
+        out[k, dead] = 0.0  # silence is not an event
     # windows reaching before the data (the recording's start): an edge, not a sound
     out[:, starts < lead] = 0.0
     return out
