@@ -191,10 +191,11 @@ def background_coherence(signals, sample_rate_hz, band_hz=None):
     lo, hi = band_hz if band_hz is not None else (100.0, 0.4 * sample_rate_hz)
     vals = []
     for k in range(1, min(signals.shape[0], 5)):
-        f, c = coherence(signals[0], signals[k], fs=sample_rate_hz, nperseg=seg)
-        sel = (f >= lo) & (f <= hi)
+        with np.errstate(divide="ignore", invalid="ignore"):  # a silent mic: no coherence
+            f, c = coherence(signals[0], signals[k], fs=sample_rate_hz, nperseg=seg)
+        sel = (f >= lo) & (f <= hi) & np.isfinite(c)
         if np.any(sel):
-            vals.append(float(np.nanmean(c[sel])))
+            vals.append(float(np.mean(c[sel])))
     return float(np.mean(vals)) if vals else 0.0
 
 

@@ -54,7 +54,11 @@ def _same(a, b):
     for x, y in zip(a["fixes"], b["fixes"]):
         assert abs(x["t_s"] - y["t_s"]) < 1e-9  # float rounding of the scan start only
         assert x["t_utc"] == y["t_utc"]
-        assert np.allclose(x["position_m"], y["position_m"], rtol=0, atol=1e-9)
+        # the same fix: the event detector whitens each block against its own background, so
+        # a chunk's per-mic onsets (and the gated delays) may move by a sample; the positions
+        # then agree to a quarter of the 95 % ellipse (they agreed to 1e-9 m before whitening)
+        tol = 0.25 * x["ellipse95"]["semi_major_m"] + 1e-6
+        assert np.linalg.norm(np.subtract(x["position_m"], y["position_m"])) <= tol
         assert x.get("absent_mics") == y.get("absent_mics")
 
 
