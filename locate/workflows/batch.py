@@ -408,17 +408,25 @@ def _run_pool(jobs, tasks, index, done, runner):
     pool.shutdown(wait=True)
 
 
-def _run_dask(address, tasks, index, done, runner):
+def connect_scheduler(address):
+    """A Dask distributed client on ``address``; one-line OptionErrors naming ``scheduler``
+    when Dask is not installed or the scheduler cannot be reached."""
     try:
-        from distributed import Client, as_completed
+        from distributed import Client
     except ImportError:
         raise OptionError("needs Dask distributed: pip install 'tdoa-locate[cluster]'",
                           field="scheduler") from None
     try:
-        client = Client(address, timeout=30)
+        return Client(address, timeout=30)
     except OSError as exc:
         raise OptionError(f"cannot reach the scheduler at {address!r} ({exc})",
                           field="scheduler") from None
+
+
+def _run_dask(address, tasks, index, done, runner):
+    from distributed import as_completed
+
+    client = connect_scheduler(address)
     with client:
         futures = client.map(run_task, tasks, runner=runner, pure=False)
         where = {f.key: k for f, k in zip(futures, index)}

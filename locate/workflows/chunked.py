@@ -145,16 +145,11 @@ def locate_chunked(site, recordings, *, chunk_s, overlap_s=DEFAULT_OVERLAP_S, sc
 
 
 def _run_dask(address, site_path, chunks, options, progress):
-    try:
-        from distributed import Client, as_completed
-    except ImportError:
-        raise OptionError("needs Dask distributed: pip install 'tdoa-locate[cluster]'",
-                          field="scheduler") from None
-    try:
-        client = Client(address, timeout=30)
-    except OSError as exc:
-        raise OptionError(f"cannot reach the scheduler at {address!r} ({exc})",
-                          field="scheduler") from None
+    from distributed import as_completed
+
+    from locate.workflows.batch import connect_scheduler
+
+    client = connect_scheduler(address)
     with client:
         # pure=False: every chunk runs; retries: a chunk whose worker died runs again
         run = uuid.uuid4().hex[:12]
