@@ -777,9 +777,18 @@ def coherent_source_power(cross, attenuation_db, *, margin_db=COHERENT_MARGIN_DB
     n_p = np.sum(np.isfinite(w), axis=0)  # (B, S)
     clear = 10.0 ** (margin_db / 10.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        mean_w = np.nansum(w, axis=0) / n_p
-        se = np.sqrt(np.nansum((v * gain) ** 2, axis=0)) / n_p
-        one = np.nansum(v * gain, axis=0) / n_p  # one pair's noise floor, mean over pairs
+        # inverse-variance weights: a pair whose noise, carried back to the source, is small
+        # (the near mics in a band the air absorbs strongly) counts for more (the minimum-
+        # variance unbiased mean of independent estimates, textbook)
+        var = (v * gain) ** 2
+        wt = np.where(np.isfinite(w) & (var > 0), 1.0 / np.where(var > 0, var, 1.0), 0.0)
+        sum_wt = np.sum(wt, axis=0)
+        flat = ~(sum_wt > 0)  # no noise estimate anywhere: the plain mean
+        wt = np.where(flat[None], np.isfinite(w).astype(float), wt)
+        sum_wt = np.where(flat, n_p, sum_wt)
+        mean_w = np.nansum(wt * w, axis=0) / sum_wt
+        se = np.sqrt(np.nansum(wt**2 * var, axis=0)) / sum_wt
+        one = np.nansum(wt * v * gain, axis=0) / sum_wt  # one pair's noise floor (weighted)
         sub_ok = (n_p > 0) & (mean_w >= clear * se) & (mean_w >= 3.0 * one)
         sub_up = np.maximum(mean_w, 0.0) + _UPPER_SIGMAS * se + 0.5 * one
         found = np.sum(np.where(sub_ok, mean_w, 0.0), axis=-1)  # (B,)

@@ -189,8 +189,10 @@ def test_plan_rejects_a_bad_extent(level_scene):
 
 @pytest.fixture(scope="module",
                 params=[((-180.0, 260.0, 1.5), (80.0, 5600.0), 2e-4),
-                        ((120.0, 150.0, 1.5), (50.0, 10000.0), 2e-3)],
-                ids=["about 300 m, no content at 8 kHz", "about 150 m, hiss up to 10 kHz"])
+                        ((120.0, 150.0, 1.5), (50.0, 10000.0), 2e-3),
+                        ((-250.0, 150.0, 1.5), (50.0, 10500.0), 1e-3)],
+                ids=["about 300 m, no content at 8 kHz", "about 150 m, hiss up to 10 kHz",
+                     "about 290 m, hiss up to 10.5 kHz, 8 kHz band 30 dB absorbed"])
 def steady_scene(request, tmp_path_factory):
     """A steady source of known sound power sounding through the whole recording."""
     src, band, noise = request.param
