@@ -8,6 +8,7 @@ light and pulls in neither the command line (click) nor plotting (matplotlib):
 * :func:`estimate_delays` - time differences of arrival (GCC-PHAT) with their uncertainty
 * :func:`locate` - fix a stationary source, as ``tdoa fix``
 * :func:`detect_events` - detected events, as ``tdoa events``
+* :func:`sound_levels` - source sound power and receiver levels, as ``tdoa level``
 * :func:`plan` - expected accuracy and the best next mic, as ``tdoa plan``
 * :func:`read_result`, :func:`write_result` - result documents (``tdoa-result/1``)
 * :func:`sound_speed_mps` - speed of sound in air (Cramer 1993)
@@ -19,7 +20,7 @@ The package's rooms (subpackages) are listed in docs/architecture.md.
 __version__ = "0.1.0"
 
 __all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "detect_events",
-           "plan", "read_result", "write_result", "sound_speed_mps", "demo_dir"]
+           "sound_levels", "plan", "read_result", "write_result", "sound_speed_mps", "demo_dir"]
 
 
 def __getattr__(name):

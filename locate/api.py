@@ -25,7 +25,7 @@ from locate.signal.delays import estimate_delays
 from locate.workflows.locating import list_events, locate_recordings
 
 __all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "detect_events",
-           "plan", "write_result", "read_result", "sound_speed_mps", "demo_dir"]
+           "sound_levels", "plan", "write_result", "read_result", "sound_speed_mps", "demo_dir"]
 
 
 def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
@@ -107,6 +107,43 @@ def detect_events(site, *, start_s=None, stop_s=None, band_hz=None, threshold_db
     s = _site(site)
     return list_events(s, open_recordings(s), start_s=start_s, stop_s=stop_s,
                        band_hz=_band(band_hz), threshold_db=threshold_db)
+
+
+def sound_levels(site, result, *, fix_no=None, hemisphere=False, ground=None) -> dict:
+    """Source sound power per octave band and the levels at the site's receivers, as
+    ``tdoa level --json`` writes them.
+
+    Parameters
+    ----------
+    site : path or Site
+    result : path or dict
+        A fix result (every fix, or the ``fix_no``-th, 1-based) or a track result (a pass-by:
+        LAFmax with its time and LAE at the receivers), e.g. from :func:`locate`.
+    hemisphere : bool
+        Source on hard ground radiating into a half space.
+    ground : float, optional
+        ISO 9613-2 ground factor G (0 hard ... 1 porous); default no ground effect.
+
+    Examples
+    --------
+    >>> import locate
+    >>> fixes = locate.locate(locate.demo_dir() / "yard.toml", source_z_m=1.0)
+    >>> doc = locate.sound_levels(locate.demo_dir() / "yard.toml", fixes, fix_no=1)
+    >>> doc["kind"], len(doc["source_lw_db"]) == len(doc["bands_hz"])
+    ('level', True)
+    """
+    from locate.results.documents import check_same_site
+    from locate.results.documents import read_result as _read
+    from locate.workflows.level import levels_of_result
+
+    s = _site(site)
+    path = None
+    if not isinstance(result, dict):
+        path = Path(result)
+        result = _read(path, kinds=("fix", "track"))
+    check_same_site(s, result, path if path is not None else "result")
+    return levels_of_result(s, open_recordings(s), result, result_path=path, fix_no=fix_no,
+                            hemisphere=hemisphere, ground=ground)
 
 
 def plan(site, *, timing_sd_s=None, band_hz=None, snr_db=None, duration_s=None, dims=2,

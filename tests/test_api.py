@@ -77,3 +77,18 @@ def test_the_documented_examples_run(target):
         from locate import api
         res = doctest.testmod(api, optionflags=doctest.ELLIPSIS | doctest.NORMALIZE_WHITESPACE)
     assert res.attempted > 0 and res.failed == 0, res
+
+
+def test_the_api_levels_equal_the_command_line_levels(tmp_path):
+    # the same workflow (locate.workflows.level.levels_of_result) behind both
+    site_path = locate.demo_dir() / "yard.toml"
+    fix_json, lev_json = tmp_path / "fix.json", tmp_path / "lev.json"
+    assert run(["-q", "fix", site_path, "--source-z", "1", "--json", fix_json])[0] == 0
+    code, _, err = run(["-q", "level", site_path, fix_json, "--fix", 1, "--json", lev_json])
+    assert code == 0, err
+    from locate.results.documents import jsonable
+    api_doc = locate.sound_levels(site_path, fix_json, fix_no=1)
+    _same(json.loads(json.dumps(jsonable(api_doc))), json.loads(lev_json.read_text()))
+    assert api_doc["levels"][0]["fix"] == 1
+    with pytest.raises(locate.errors.OptionError, match="fix 9"):
+        locate.sound_levels(site_path, fix_json, fix_no=9)

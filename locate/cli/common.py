@@ -379,7 +379,8 @@ def fmt_db(v):
 
 
 OPTION_OF = {
-    "fix_index": "--fix", "events": "--events", "at": "--at", "start2_s": "--from2",
+    "fix_index": "--fix", "fix_no": "--fix", "events": "--events", "at": "--at",
+    "start2_s": "--from2",
     "sound_speed_mps": "--sound-speed", "stop_s": "--to", "scheduler": "--scheduler",
     "extent_m": "--extent", "candidates": "--candidates", "grid_step_m": "--grid-step",
     "region": "--region", "dims": "--dims", "objective": "--objective", "n_propose": "--propose",

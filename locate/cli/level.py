@@ -39,57 +39,29 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, ground, json_path):
     receivers, from the reconstructed path and the source's sound power).
     """
     from locate.io.audio import open_recordings
-    from locate.results.documents import (
-        check_same_site,
-        read_result,
-        reading_result,
-        write_json,
-    )
-    from locate.workflows.fixing import conditions_for, fix_result
-    from locate.workflows.level import level_for_fix, level_for_track
+    from locate.results.documents import check_same_site, read_result, write_json
+    from locate.workflows.level import levels_of_result
 
     site = load(site_path)
     check_outputs({"--json": json_path}, site_inputs(site) + [result_path])
     result = read_result(result_path, kinds=("fix", "track"))
     check_same_site(site, result, result_path)
-    rec = open_recordings(site)
-    cond = conditions_for(site, result.get("sound_speed_mps"))
-    out = []
-    if result.get("kind") == "track":
-        if fix_no is not None:
-            raise OptionError("--fix applies to a fix result; RESULT is a track",
-                              field="--fix")
-        with reading_result(result_path):
-            lev = level_for_track(rec, site, cond, result, hemisphere=hemisphere,
-                                  result_path=result_path, ground=ground)
-        out.append(lev)
-        _echo_level(ctx, lev, "pass-by")
-    else:
-        fixes = result.get("fixes", [])
-        if fix_no is not None:
-            if not 1 <= fix_no <= len(fixes):
-                raise OptionError(f"the result holds {len(fixes)} fix(es); --fix {fix_no} is "
-                                  "not one of them", field="--fix")
-            chosen = [(fix_no, fixes[fix_no - 1])]
+    if result.get("kind") == "track" and fix_no is not None:
+        raise OptionError("--fix applies to a fix result; RESULT is a track", field="--fix")
+    doc = levels_of_result(site, open_recordings(site), result, result_path=result_path,
+                           fix_no=fix_no, hemisphere=hemisphere, ground=ground)
+    out = doc["levels"]
+    fixes = result.get("fixes", [])
+    for lev in out:
+        if result.get("kind") == "track":
+            _echo_level(ctx, lev, "pass-by")
         else:
-            chosen = list(enumerate(fixes, 1))
-        for k, entry in chosen:
-            with reading_result(result_path):
-                lev = level_for_fix(rec, site, cond, entry, hemisphere=hemisphere,
-                                    result_path=result_path, ground=ground)
-            lev["fix"] = k
-            out.append(lev)
-            _echo_level(ctx, lev, f"#{k} at ({entry['position_m'][0]:.1f}, "
-                                  f"{entry['position_m'][1]:.1f}) m")
+            pos = fixes[lev["fix"] - 1]["position_m"]
+            _echo_level(ctx, lev, f"#{lev['fix']} at ({pos[0]:.1f}, {pos[1]:.1f}) m")
     echo(ctx, "Screening estimate only (" + ("ISO 9613-2 ground effect, " if ground is not None
                                              else "no ground effect, ")
          + "no meteorology or reflections); not a compliance measurement.")
     if json_path:
-        doc = fix_result(site, cond, [], kind="level", warnings=rec.warnings,
-                         extra={"levels": out})
-        if len(out) == 1:
-            doc.update({k: v for k, v in out[0].items() if k != "kind"})
-        doc["cautions"] = out[0]["cautions"] if out else doc["cautions"]
         write_json(json_path, doc)
     return out
 

@@ -12,7 +12,7 @@ from locate.errors import OptionError, ResultFileError
 from locate.physics import levels
 from locate.results.documents import jsonable
 
-__all__ = ["level_for_fix"]
+__all__ = ["level_for_fix", "level_for_track", "levels_of_result"]
 
 
 ABSORPTION = "band-average"  # ISO 9613-1 absorption averaged over each band (a spectrum flat
@@ -644,3 +644,46 @@ def _pass_history(lw, t_emit, path, point, bands, cond, site, hemisphere, ground
         "t_lafmax_s": t_max, "position_at_lafmax_m": [float(v) for v in path[i_near]],
         "t_emit_at_lafmax_s": float(t_emit[i_near])})
     return g
+
+
+def levels_of_result(site, recordings, result, *, result_path=None, fix_no=None,
+                     hemisphere=False, ground=None) -> dict:
+    """Levels for every fix of a fix result (or the ``fix_no``-th, 1-based), or for the pass-by
+    of a track result: the ``tdoa level --json`` document.
+
+    The document's ``levels`` list holds one entry per fix (with its ``fix`` number) or one for
+    the track; with a single entry its keys are also at the top level.
+    """
+    from locate.results.documents import reading_result
+    from locate.workflows.fixing import conditions_for, fix_result
+
+    cond = conditions_for(site, result.get("sound_speed_mps"))
+    out = []
+    if result.get("kind") == "track":
+        if fix_no is not None:
+            raise OptionError("a fix number applies to a fix result; this result is a track",
+                              field="fix_no")
+        with reading_result(result_path):
+            out.append(level_for_track(recordings, site, cond, result, hemisphere=hemisphere,
+                                       result_path=result_path, ground=ground))
+    else:
+        fixes = result.get("fixes", [])
+        if fix_no is not None:
+            if not 1 <= fix_no <= len(fixes):
+                raise OptionError(f"the result holds {len(fixes)} fix(es); fix {fix_no} is "
+                                  "not one of them", field="fix_no")
+            chosen = [(fix_no, fixes[fix_no - 1])]
+        else:
+            chosen = list(enumerate(fixes, 1))
+        for k, entry in chosen:
+            with reading_result(result_path):
+                lev = level_for_fix(recordings, site, cond, entry, hemisphere=hemisphere,
+                                    result_path=result_path, ground=ground)
+            lev["fix"] = k
+            out.append(lev)
+    doc = fix_result(site, cond, [], kind="level", warnings=recordings.warnings,
+                     extra={"levels": out})
+    if len(out) == 1:
+        doc.update({k: v for k, v in out[0].items() if k != "kind"})
+    doc["cautions"] = out[0]["cautions"] if out else doc["cautions"]
+    return doc
