@@ -39,14 +39,20 @@ import numpy as np
 from locate.physics.air import travel_time_s
 from locate.signal.delays import DelaySet, multipath_bias_s
 
-__all__ = ["estimate_ground_q", "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR",
-           "ground_bias_covariance", "with_ground_reflection", "ground_echo_pairs"]
+__all__ = ["ground_reflection_term", "TYPICAL_MIC_HEIGHT_M", "estimate_ground_q",
+           "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR", "ground_bias_covariance",
+           "with_ground_reflection", "ground_echo_pairs"]
 
 GROUND_Q_RANGE = (0.5, 1.0)
 """Plausible range of the ground's reflection coefficient (hard to moderately soft ground)."""
 
 MAX_MIC_HEIGHT_M = 30.0
 """A mic higher than this above z = 0 is not modelled (its z is probably an altitude)."""
+
+TYPICAL_MIC_HEIGHT_M = 1.5
+"""Height of a mic above the ground when the site does not say (a tripod or a stake at head
+height, common practice): a WGS84 site's z are ellipsoidal heights, so its ground is taken
+this far below the lowest mic."""
 
 MODEL_ERROR = 0.5
 """Fraction of each pair's modelled bias taken as an independent model error (calibrated on
@@ -252,3 +258,43 @@ def ground_echo_pairs(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
         cand = np.concatenate([d[k] + lags[:, j] * ok[j], d[k] - lags[:, i] * ok[i]])
         out[k] = bool(np.any(np.abs(cand - second[k]) <= tol))
     return out
+
+
+def ground_reflection_term(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
+                           wind_mps=None, *, ground_z_m=0.0, source_z_sd_m=0.0):
+    """``delays`` with the ground-reflection term in their covariance, the ground at any z.
+
+    The one call for every path that measures delays (events, windows of a sweep or a track,
+    sync): the mics and the source are moved so that the ground is at z = 0 and
+    :func:`with_ground_reflection` is applied.
+
+    Parameters
+    ----------
+    delays : DelaySet
+        One span's (or one window's) delays with their spectral weights.
+    source_m : array_like, shape (3,)
+        Source position in the mics' frame (a first fix, or the window's track point).
+    mic_positions_m : array_like, shape (N, 3)
+    sound_speed_mps : float
+    wind_mps : array_like (3,), optional
+    ground_z_m : float or None
+        z of the ground in the mics' frame (0 for a local site).  None: not known (a WGS84
+        site): :data:`TYPICAL_MIC_HEIGHT_M` below the lowest mic.
+    source_z_sd_m : float
+        Standard deviation of the source height.
+
+    Returns
+    -------
+    DelaySet
+        Unchanged when the source position is not finite.
+    """
+    mics = np.array(mic_positions_m, dtype=float)
+    src = np.array(source_m, dtype=float).reshape(3)
+    if not np.all(np.isfinite(src)) or not np.all(np.isfinite(mics)):
+        return delays
+    ground = (float(np.min(mics[:, 2])) - TYPICAL_MIC_HEIGHT_M if ground_z_m is None
+              else float(ground_z_m))
+    mics[:, 2] -= ground
+    src[2] = max(src[2] - ground, 0.0)
+    return with_ground_reflection(delays, src, mics, sound_speed_mps, wind_mps,
+                                  source_z_sd_m=source_z_sd_m)
