@@ -281,7 +281,7 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     mirror = mirror_note(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
     if mirror:
         fix.warnings.append(mirror)
-    if (any("nearly undetermined" in w for w in fix.warnings)
+    if ((any("nearly undetermined" in w for w in fix.warnings) or _elongated(fix))
             and not any("near the extension" in w for w in fix.warnings)):
         ends = endfire_pairs(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
         if ends:  # say why, as the linearity check does
@@ -301,6 +301,16 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
     return entry, fix, delays, entry["warnings"]
+
+
+def _elongated(fix, ratio=10.0):
+    """The horizontal ellipse is more than ``ratio`` times longer than wide (a range along a
+    line of mics barely determined, even when the ellipse already says so)."""
+    cov = np.asarray(fix.covariance_m2, float)[:2, :2]
+    if not np.all(np.isfinite(cov)):
+        return False
+    lo, hi = np.linalg.eigvalsh(0.5 * (cov + cov.T))
+    return bool(lo > 0 and hi > ratio**2 * lo)
 
 
 def _absent_mics(recordings, site, cond, start_s, stop_s):
