@@ -19,9 +19,11 @@ uncertainty is the root mean square over the range):
 
     M = sum_s w_s b_s b_s^T
 
-over Q uniform in [0.5, 1] (four-point midpoint rule) and, when the source height carries a
-standard deviation, the three-point Gauss-Hermite rule in height (z0 - sqrt(3) sd, z0,
-z0 + sqrt(3) sd with weights 1/6, 2/3, 1/6; heights kept at 2 cm or more).
+over Q uniform in the range seen in the mics' spectra (four-point midpoint rule) and, when the
+source height carries a standard deviation, 16 heights evenly over z0 +- sqrt(3) sd (midpoint
+rule; heights kept at 2 cm or more): the bias is not smooth in the height, and a 3-point rule
+missed it between its nodes.  A peak jump (a cross term higher than the direct peak) enters
+each pair on its own.
 
 Calibration (tests/benchmarks/coverage_table.py, docs/uncertainty.md): on the simulator with a
 ground reflection of Q uniform in [0, 1] the pair delay errors divided by the resulting sds have
