@@ -490,6 +490,8 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
 
 
 _SPECTRAL_BINS = 1024  # most frequency bins kept for the multipath-bias model
+_COARSE_BINS = 128  # bins for the modelled correlation curve (resolves lags of +-4 ms)
+_MAX_MULTIPATH_LAG_S = 4e-3  # second paths later than this give a separate peak (not a bias)
 
 
 def _binned_weights(freqs_hz, c, power):
@@ -513,7 +515,7 @@ def _binned_weights(freqs_hz, c, power):
     return fsum[keep] / count[keep], w[:, keep], pw[:, keep] / count[keep]
 
 
-def multipath_bias_s(delays: DelaySet, lag_s, gain):
+def multipath_bias_s(delays: DelaySet, lag_s, gain, *, coarse=True):
     """Delay bias of every pair from a second path at each mic (ground or wall reflection).
 
     A copy of the sound ``gain`` times as strong arriving ``lag_s`` after the direct sound at
@@ -522,7 +524,11 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain):
     (the maximum of sum_k c_k cos(phase_k + omega_k d)) about the true delay gives the bias of
     pair (i, j):  b = -sum_k c_k omega_k (phi_j - phi_i) / sum_k c_k omega_k^2  (the same
     first-order expansion as the noise model; the two-path phase is textbook, e.g. the image
-    method of a reflecting plane).
+    method of a reflecting plane).  A strong reflection makes the estimator non-linear: the
+    modelled correlation can peak on a cross term (the direct sound at one mic with the
+    reflection at the other, lag_j or -lag_i away) or on another fine-structure maximum.  So
+    the bias is the estimator run on the model: the highest lag of the modelled correlation
+    within the pair's search window, then Newton steps on the exact weighted cosine sum.
 
     Parameters
     ----------
@@ -531,6 +537,11 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain):
     lag_s, gain : array_like, shape (S, N)
         Extra travel time and relative amplitude of the second path at each mic, for S
         scenarios.
+
+    coarse : bool
+        Run the coarse peak choice on the modelled correlation (default).  False: the fine
+        step only, from the true delay (the bias of the right peak; its difference from the
+        default is the error of a peak jump).
 
     Returns
     -------
@@ -546,9 +557,44 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain):
     phi = np.angle(1.0 + g[..., None] * np.exp(-1j * om[None, None, :] * lag[..., None]))
     ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]
     dphi = phi[:, jj, :] - phi[:, ii, :]  # (S, P, B)
-    num = np.einsum("pb,spb->sp", c * om[None, :], dphi)
-    den = np.maximum(np.sum(c * om[None, :] ** 2, axis=1), 1e-300)
-    return -num / den[None, :]
+    fs = float(delays.sample_rate_hz)
+    # 1. The coarse peak: the estimator takes the highest correlation lag first.  Two paths at
+    # both mics give peaks at the delay, at +lag_j and at -lag_i (cross terms); with a strong
+    # reflection a cross term can be the highest, and the fine step then stays on it.  The
+    # modelled correlation  sum_k c_k cos(dphi_k + omega_k tau)  on the sample grid, within
+    # the pair's search window, gives the peak the estimator would take.
+    n_lag = int(np.ceil(min(float(np.max(lag, initial=0.0)), _MAX_MULTIPATH_LAG_S) * fs)) + 2
+    tau = np.arange(-n_lag, n_lag + 1) / fs
+    step_b = max(1, int(np.ceil(om.size / _COARSE_BINS)))
+    grp = np.arange(om.size) // step_b
+    cnt = np.bincount(grp)
+    om_c = np.bincount(grp, weights=om) / cnt
+    c_c = np.stack([np.bincount(grp, weights=row) for row in c])  # (P, Bc)
+    phi_c = np.angle(1.0 + g[..., None] * np.exp(-1j * om_c[None, None, :] * lag[..., None]))
+    z = c_c[None] * np.exp(1j * (phi_c[:, jj, :] - phi_c[:, ii, :]))  # (S, P, Bc)
+    corr = np.real(np.einsum("spb,bt->spt", z, np.exp(1j * om_c[:, None] * tau[None, :])))
+    centre = np.asarray(delays.delay_s, float)
+    reach = np.asarray(delays.max_lag_s, float)
+    inside = np.abs(np.where(np.isfinite(centre), centre, 0.0)[:, None] + tau[None, :]) <= (
+        reach[:, None] + 0.5 / fs)
+    inside[:, n_lag] = True  # the direct peak is always inside
+    corr = np.where(inside[None], corr, -np.inf)
+    d0 = tau[np.argmax(corr, axis=2)] if coarse else np.zeros(corr.shape[:2])  # (S, P)
+    # 2. The fine step: Newton on the exact weighted cosine sum from that lag, kept within
+    # +-1.5 samples of it (the same iteration estimate_delays runs on the measured phases).
+    # To first order about the delay this is b = -sum c omega dphi / sum c omega^2.
+    lim = 1.5 / fs
+    cw1, cw2 = c * om[None, :], c * om[None, :] ** 2
+    d = d0.copy()
+    for _ in range(8):
+        arg = dphi + om[None, None, :] * d[..., None]
+        g1 = np.einsum("pb,spb->sp", cw1, np.sin(arg))
+        g2 = np.einsum("pb,spb->sp", cw2, np.cos(arg))
+        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
+        d = np.clip(d - step, d0 - lim, d0 + lim)
+        if np.all(np.abs(step) < 1e-12):
+            break
+    return d
 
 
 def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):

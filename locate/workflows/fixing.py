@@ -245,11 +245,9 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         delays = _aligned_delays(recordings, signals, delays, start_s, stop_s, band_hz,
                                  max_lag, keep_curves)
     # the ground reflection's bias in every pair's uncertainty; its peak is no ambiguity
-    if ground_datum_m(site) is not None:
-        delays = reflection_uncertainty(delays, positions, cond, dims=dims,
-                                        source_z_m=source_z_m,
-                                        source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
-                                        mic_names=names)
+    delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
+                                    source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
+                                    mic_names=names, ground_z_m=ground_datum_m(site))
     weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
             if q == "weak"]
     amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
@@ -283,7 +281,7 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     mirror = mirror_note(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
     if mirror:
         fix.warnings.append(mirror)
-    if (any("nearly undetermined" in w for w in fix.warnings)
+    if ((any("nearly undetermined" in w for w in fix.warnings) or _elongated(fix))
             and not any("near the extension" in w for w in fix.warnings)):
         ends = endfire_pairs(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
         if ends:  # say why, as the linearity check does
@@ -303,6 +301,16 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
         mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
     return entry, fix, delays, entry["warnings"]
+
+
+def _elongated(fix, ratio=10.0):
+    """The horizontal ellipse is more than ``ratio`` times longer than wide (a range along a
+    line of mics barely determined, even when the ellipse already says so)."""
+    cov = np.asarray(fix.covariance_m2, float)[:2, :2]
+    if not np.all(np.isfinite(cov)):
+        return False
+    lo, hi = np.linalg.eigvalsh(0.5 * (cov + cov.T))
+    return bool(lo > 0 and hi > ratio**2 * lo)
 
 
 def _absent_mics(recordings, site, cond, start_s, stop_s):
@@ -354,16 +362,23 @@ def model_error_sds(site, sds, dims=2):
 def ground_datum_m(site):
     """z of the ground in the site's frame: 0 for a local site (its z is the height above the
     ground, docs/site-file.md); None for a WGS84 site, whose z is an ellipsoidal height: the
-    ground under the mics is not known there and the ground reflection is not modelled."""
+    ground under the mics is not known there (the source height is not clamped to it; the
+    ground-reflection term takes it a typical mic height below the lowest mic,
+    ``locate.accuracy.reflections.ground_reflection_term``)."""
     return 0.0 if getattr(site, "coordinates", "local") == "local" else None
 
 
 def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
-                           source_z_sd_m=0.0, mic_names=None):
+                           source_z_sd_m=0.0, mic_names=None, ground_z_m=0.0):
     """``delays`` with the ground-reflection bias term in their covariance
     (:mod:`locate.accuracy.reflections`), evaluated at a first, timing-only fix; unchanged when
-    no first fix can be made."""
-    from locate.accuracy.reflections import ground_echo_pairs, with_ground_reflection
+    no first fix can be made.  ``ground_z_m``: z of the ground (None: not known, a WGS84
+    site - taken a typical mic height below the lowest mic)."""
+    from locate.accuracy.reflections import (
+        TYPICAL_MIC_HEIGHT_M,
+        ground_echo_pairs,
+        ground_reflection_term,
+    )
     from locate.errors import TdoaError
 
     try:
@@ -376,10 +391,16 @@ def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
         return delays
     sd = float(source_z_sd_m) if dims == 2 else float(np.sqrt(max(
         first.covariance_m2[2, 2], 0.0)) if np.isfinite(first.covariance_m2[2, 2]) else 0.0)
-    out = with_ground_reflection(delays, first.position_m, positions_m, cond.sound_speed_mps,
-                                 cond.wind_mps, source_z_sd_m=sd)
-    echo = ground_echo_pairs(out, first.position_m, positions_m, cond.sound_speed_mps,
-                             cond.wind_mps, source_z_sd_m=sd)
+    out = ground_reflection_term(delays, first.position_m, positions_m, cond.sound_speed_mps,
+                                 cond.wind_mps, ground_z_m=ground_z_m, source_z_sd_m=sd)
+    pos = np.array(positions_m, dtype=float)
+    ground = (float(np.min(pos[:, 2])) - TYPICAL_MIC_HEIGHT_M if ground_z_m is None
+              else float(ground_z_m))
+    pos[:, 2] -= ground
+    src = np.array(first.position_m, dtype=float)
+    src[2] = max(src[2] - ground, 0.0)
+    echo = ground_echo_pairs(out, src, pos, cond.sound_speed_mps, cond.wind_mps,
+                             source_z_sd_m=sd)
     amb = np.array([q == "ambiguous" for q in out.quality]) & echo
     if amb.any():  # the next peak is the ground reflection's, not a second direct path
         out = replace(out, quality=tuple("good" if a else q

@@ -21,7 +21,7 @@ from locate.fix.solver import REJECT_P_VALUE, Fix
 from locate.results.documents import fix_to_dict
 from locate.signal.delays import all_pairs, estimate_delays
 from locate.signal.windowed import recording_window_delays
-from locate.workflows.fixing import search_lags_s
+from locate.workflows.fixing import ground_datum_m, reflection_uncertainty, search_lags_s
 
 __all__ = ["sweep_fixes", "SWEEP_NOTE", "AMBIGUOUS_VERDICT", "sweep_verdict"]
 
@@ -31,8 +31,9 @@ AMBIGUOUS_VERDICT = ("most pairs are ambiguous: this position may be one of seve
 
 SWEEP_NOTE = ("windows fixed by the fast sweep (windowed delays, batched locator): no echo "
               "check, no uncertainty budget and no pair delays kept per window - the ellipses "
-              "are timing-only (no survey, clock, air, source-height or ground-reflection "
-              "uncertainty in them); fix a single window without --sweep for those")
+              "are timing and ground reflection only (no survey, clock, air or "
+              "source-height uncertainty in them); fix a single window without --sweep for "
+              "those")
 
 
 def _batched_fix(bf, w, names, dims):
@@ -107,6 +108,11 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
     pilot = estimate_delays(signals, recordings.sample_rate_hz, max_lag_s=max_lag,
                             band_hz=band_hz, pairs=pairs, offsets_s=residual)
     del signals
+    # the ground reflection's bias (locate.accuracy.reflections) from the pilot's spectra at
+    # the pilot's fix: a steady source keeps it, so every window gets the same term
+    ground = reflection_uncertainty(pilot, positions, cond, dims=dims, source_z_m=source_z_m,
+                                    mic_names=names,
+                                    ground_z_m=ground_datum_m(site)).bias_covariance_s2
     shifted, shifts = aligned_recordings(recordings, pilot, start_s, stop_s)
     if shifts is None:
         shifts = np.zeros(len(names))
@@ -116,7 +122,8 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
                                       band_hz=band_hz, pairs=pairs, start_s=start_s,
                                       stop_s=stop_s):
         wd.delay_s += move
-        bf = locate_batch(positions, wd.delay_s, wd.covariance_s2, cond.sound_speed_mps,
+        cov = wd.covariance_s2 if ground is None else wd.covariance_s2 + ground[None]
+        bf = locate_batch(positions, wd.delay_s, cov, cond.sound_speed_mps,
                           pairs=pairs, wind_mps=cond.wind_mps, dims=dims, source_z_m=source_z_m,
                           reject=reject)
         for w in range(len(wd)):

@@ -61,9 +61,9 @@ def test_sweep_agrees_with_the_per_window_path_and_covers_the_truth(hum, tmp_pat
     pa, pb = (np.array([f["position_m"] for f in x]) for x in (a, b))
     sd = np.sqrt(np.array([np.linalg.eigvalsh(np.array(f["covariance_m2"])[:2, :2])[-1]
                            for f in b]))
-    # the two paths estimate the same delays; the per-window path also weights the pairs with
-    # the ground-reflection term (locate.accuracy.reflections, near zero here: no ground in
-    # this scene), which the sweep leaves out, so the positions agree to within 3/4 sd
+    # the two paths estimate the same delays; both weight the pairs with the ground-reflection
+    # term (locate.accuracy.reflections, near zero here: no ground in this scene; the sweep
+    # takes it once from its pilot span), so the positions agree to within 3/4 sd
     assert np.all(np.linalg.norm(pa[:, :2] - pb[:, :2], axis=1) < 0.75 * sd)
     ratio = (np.array([f["ellipse95"]["semi_major_m"] for f in a])
              / np.array([f["ellipse95"]["semi_major_m"] for f in b]))
