@@ -268,3 +268,43 @@ def locate_sources(site, recordings, start_s, stop_s, *, sources="auto", band_hz
                         extra={"sources": {"asked": sources, "found": len(entries),
                                            "bands": [m.label for m in maps]}})
     return result, maps
+
+
+NOTE_SPAN_S = 6.0
+"""The check for other sources reads at most this much of a span (its start)."""
+
+OTHER_SOURCE_M = 10.0
+"""A map peak this far from a span's fix (and beyond 3 sd of it) is another source."""
+
+
+def unseparated_note(recordings, site, cond, start_s, stop_s, position_m, *, band_hz=None,
+                     source_z_m=0.0, sd_m=0.0):
+    """A warning when the span's maps show a source other than the one fixed, else None.
+
+    The single fix of a span (one set of pair delays) can describe one source at most; the
+    SRP-PHAT maps of the span (:func:`source_maps`, :func:`locate.fix.sources.find_sources`)
+    are searched for peaks more than :data:`OTHER_SOURCE_M` (and 3 ``sd_m``) from the fix.
+    """
+    if not np.all(np.isfinite(np.asarray(position_m, float)[:2])):
+        return None
+    stop = min(stop_s, start_s + NOTE_SPAN_S)
+    if stop - start_s < 0.5:
+        return None
+    try:
+        maps, spectra, _, _ = source_maps(recordings, site, cond, start_s, stop,
+                                          band_hz=band_hz, source_z_m=source_z_m)
+    except (NothingFoundError, ValueError):
+        return None
+    pairs = all_pairs(len(site.mic_names))
+    peaks = find_sources(maps, spectra, site.positions_m, pairs, cond.sound_speed_mps,
+                         z_m=source_z_m, wind_mps=cond.wind_mps)
+    far = max(OTHER_SOURCE_M, 3.0 * float(sd_m) if np.isfinite(sd_m) else OTHER_SOURCE_M)
+    xy = np.asarray(position_m, float)[:2]
+    others = [p for p in peaks if np.hypot(*(p.position_m[:2] - xy)) > far]
+    if not others:
+        return None
+    where = "; ".join(f"x {p.position_m[0]:.0f} m, y {p.position_m[1]:.0f} m "
+                      f"({', '.join(p.bands)})" for p in others[:3])
+    return (f"{len(others)} other source(s) stand out of this span's maps ({where}) and were "
+            "not separated: this fix follows one sound only; run with --sources auto to fix "
+            "each, or --sources-map to see them")
