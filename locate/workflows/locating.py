@@ -162,9 +162,8 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         note = unseparated_note(rec, site, cond, start_s, stop_s, e["position_m"],
                                 band_hz=band_hz, sd_m=sd,
                                 source_z_m=source_z_m if dims == 2 else e["position_m"][2])
-        if note:
+        if note:  # the fix's own warning (printed with it)
             e["warnings"].append(note)
-            warnings.append(note)
     # the reads' channel notes, unless a fix already said the same (its own figures)
     said = ({same_shape(w) for e in entries for w in e["warnings"]}
             | {same_shape(w) for w in warnings})

@@ -53,7 +53,7 @@ def test_a_plain_span_fix_says_a_second_source_was_not_separated(tmp_path):
     site = load_site(_two_plants(tmp_path))
     res = locate_recordings(site, open_recordings(site), start_s=0.5, stop_s=3.5,
                             source_z_m=1.0)
-    assert any("not separated" in w and "--sources auto" in w for w in res["warnings"])
+    assert any("not separated" in w and "--sources auto" in w for w in res["fixes"][0]["warnings"])
 
 
 def test_one_steady_source_gives_no_second_source_note(tmp_path):
@@ -64,7 +64,7 @@ def test_one_steady_source_gives_no_second_source_note(tmp_path):
                             source_z_m=1.0)
     f = res["fixes"][0]
     assert np.hypot(*(np.array(f["position_m"][:2]) - FAN_AT[:2])) < 1.0
-    assert not any("not separated" in w for w in res["warnings"])
+    assert not any("not separated" in w for w in f["warnings"])
 
 
 def test_a_bang_with_a_strong_wall_echo_is_one_event_fixed_within_0_2_m(tmp_path):
