@@ -7,6 +7,7 @@ light and pulls in neither the command line (click) nor plotting (matplotlib):
 * :func:`open_recordings` - the recordings of a site on one time base
 * :func:`estimate_delays` - time differences of arrival (GCC-PHAT) with their uncertainty
 * :func:`locate` - fix a stationary source, as ``tdoa fix``
+* :func:`locate_sources` - every source standing out of a span, as ``tdoa fix --sources``
 * :func:`detect_events` - detected events, as ``tdoa events``
 * :func:`sound_levels` - source sound power and receiver levels, as ``tdoa level``
 * :func:`plan` - expected accuracy and the best next mic, as ``tdoa plan``
@@ -19,8 +20,9 @@ The package's rooms (subpackages) are listed in docs/architecture.md.
 
 __version__ = "0.1.0"
 
-__all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "detect_events",
-           "sound_levels", "plan", "read_result", "write_result", "sound_speed_mps", "demo_dir"]
+__all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "locate_sources",
+           "detect_events", "sound_levels", "plan", "read_result", "write_result", "sound_speed_mps",
+           "demo_dir"]
 
 
 def __getattr__(name):

@@ -24,8 +24,9 @@ from locate.physics.air import sound_speed_mps
 from locate.signal.delays import estimate_delays
 from locate.workflows.locating import list_events, locate_recordings
 
-__all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "detect_events",
-           "sound_levels", "plan", "write_result", "read_result", "sound_speed_mps", "demo_dir"]
+__all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "locate_sources",
+           "detect_events", "sound_levels", "plan", "write_result", "read_result", "sound_speed_mps",
+           "demo_dir"]
 
 
 def load_site(path, *, dims: int = 2, require_audio: bool = True) -> Site:
@@ -92,6 +93,30 @@ def locate(site, *, start_s=None, stop_s=None, window_s=None, band_hz=None, dims
                              sound_speed_mps=sound_speed_mps,
                              threshold_db=threshold_db, reject=reject, solve_air=solve_air,
                              solve_wind=solve_wind)
+
+
+def locate_sources(site, start_s, stop_s, *, sources="auto", band_hz=None, source_z_m=1.0,
+                   sound_speed_mps=None, reject=True) -> dict:
+    """Every source that stands out of one span, each fixed with its band, as
+    ``tdoa fix --from A --to B --sources N|auto`` does (2-D, at height ``source_z_m``).
+
+    Returns
+    -------
+    dict
+        A ``tdoa-result/1`` document of kind ``fix``: one entry of ``fixes`` per source with
+        ``source``, ``band_hz``, ``bands``, ``tonal`` and ``map_peak_m``; ``sources`` says how
+        many were asked for and found; ``warnings`` name any source that stood out of the
+        maps but could not be fixed apart from the others.
+    """
+    from locate.workflows.sources import locate_sources as _locate_sources
+    from locate.workflows.sources import parse_sources
+
+    s = _site(site)
+    result, _ = _locate_sources(s, open_recordings(s), float(start_s), float(stop_s),
+                                sources=parse_sources(sources), band_hz=_band(band_hz),
+                                source_z_m=float(source_z_m),
+                                sound_speed_mps=sound_speed_mps, reject=reject)
+    return result
 
 
 def detect_events(site, *, start_s=None, stop_s=None, band_hz=None, threshold_db=10.0) -> dict:

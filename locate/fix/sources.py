@@ -420,6 +420,8 @@ def find_sources(maps, spectra, mic_positions_m, pairs, sound_speed_mps, *, z_m,
         top = float(excess.max())
         if top <= 0:
             continue
+        if bm.tonal and spectra.correlation(bm.band_hz, True, True) is None:
+            continue  # too few line bins in this span to correlate (a line too narrow)
         if bm.tonal:  # one tonal source: the best of the maxima once all lines are used
             xy, cands, best = _best_tonal(bm, spectra, mic_positions_m, pairs, sound_speed_mps,
                                           z_m, wind_mps)

@@ -164,8 +164,9 @@ def _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz, max
         return None
     signals, residual = recordings.read(lo, stop_s)
     fs = recordings.sample_rate_hz
-    if background_coherence(signals[:, : int((first - lo) * fs)], fs, band_hz) \
-            < STEADY_COHERENCE:
+    before = signals[:, : int((first - lo) * fs)]
+    if background_coherence(before, fs, band_hz, max_lag_s=float(np.max(max_lag))) \
+            < max(STEADY_COHERENCE, noise_coherence(before.shape[1])):
         return None  # nothing steady and coherent to remove: the plain delays serve better
     onset_idx = (onset_s - lo) * fs
     return onset_delays(signals, fs, onset_idx, max_lag_s=max_lag, pairs=pairs,
@@ -174,28 +175,68 @@ def _event_delays(recordings, site, cond, onset_s, start_s, stop_s, band_hz, max
 
 
 STEADY_COHERENCE = 0.3
-"""Mean magnitude-squared coherence between mics, before an event, above which a steady
-source is sounding (independent mic noise gives ~0; a fan or hum heard by every mic gives
-0.5-1): only then is the background removed from the event's delays (locate.signal.onsets)."""
+"""Coherence between mics, before an event, above which a steady source is sounding: the mean
+magnitude-squared coherence of the most coherent 5 % of the bins, each mic's stretch shifted by
+the lag of its correlation peak with the first mic (independent mic noise gives ~0.1 with the
+~30 Welch segments of 1 s; a fan or the lines of a hum heard by every mic give 0.5-1).  Only
+then is the background removed from the event's delays (locate.signal.onsets)."""
+
+_TOP_SHARE = 0.05  # the most coherent share of the bins (a hum's lines fill a few per cent)
 
 
-def background_coherence(signals, sample_rate_hz, band_hz=None):
-    """Mean magnitude-squared coherence (scipy.signal.coherence, Welch) of the first mic with
-    up to four others over ``band_hz`` (default 100 Hz to 0.4 fs); 0 for too short a stretch."""
+def noise_coherence(n_samples, segment=1024):
+    """99.9th percentile of the Welch magnitude-squared coherence of independent noise over a
+    stretch of ``n_samples`` (segments of ``min(segment, n / 8)``, half overlapping): with K
+    segments it is Beta(1, K - 1) distributed, P(C > c) = (1 - c)^(K - 1) (Carter 1987, Proc.
+    IEEE 75(2) 236-255), so the percentile is 1 - 0.001^(1 / (K - 1)).  A short stretch needs a
+    higher coherence to count as a steady source."""
+    seg = min(segment, n_samples // 8)
+    if seg < 64:
+        return 1.0
+    k = max(2.0 * n_samples / seg - 1.0, 2.0)
+    return float(1.0 - 0.001 ** (1.0 / (k - 1.0)))
+
+
+def background_coherence(signals, sample_rate_hz, band_hz=None, max_lag_s=0.3):
+    """Coherence of a stretch between the first mic and up to four others (see
+    :data:`STEADY_COHERENCE`); 0 for too short a stretch.
+
+    A steady source far from the array reaches two mics up to aperture / c apart, longer than
+    a Welch segment: unshifted, their segments hold different parts of its sound and read as
+    incoherent.  So each pair is first aligned on the peak of its PHAT correlation within
+    ``max_lag_s`` (a periodic hum stays coherent under any shift), then the magnitude-squared
+    coherence (scipy.signal.coherence, Welch, 1024-sample segments) is taken over ``band_hz``
+    (default 100 Hz to 0.4 fs), and the mean of its most coherent 5 % of bins is returned: a
+    hum's lines fill only a few per cent of the band, and a band mean would hide them.
+    """
+    from scipy import fft as sfft
     from scipy.signal import coherence
 
-    n = signals.shape[1]
-    seg = min(1024, n // 4)
-    if seg < 64 or signals.shape[0] < 2:
+    x = np.asarray(signals, float)
+    n = x.shape[1]
+    seg = min(1024, n // 8)
+    if seg < 64 or x.shape[0] < 2:
         return 0.0
-    lo, hi = band_hz if band_hz is not None else (100.0, 0.4 * sample_rate_hz)
+    fs = float(sample_rate_hz)
+    lo, hi = band_hz if band_hz is not None else (100.0, 0.4 * fs)
+    nfft = sfft.next_fast_len(2 * n, real=True)
+    spec = sfft.rfft(x - x.mean(axis=1, keepdims=True), nfft, axis=-1)
+    big = min(int(max_lag_s * fs), n // 2)
     vals = []
-    for k in range(1, min(signals.shape[0], 5)):
+    for k in range(1, min(x.shape[0], 5)):
+        g = np.conj(spec[0]) * spec[k]
+        r = sfft.irfft(g / np.maximum(np.abs(g), 1e-300), nfft)
+        lags = np.arange(-big, big + 1)
+        lag = int(lags[np.argmax(r[lags % nfft])])  # x_k lags x_0 by `lag` samples
+        a, b = (x[0, : n - lag], x[k, lag:]) if lag >= 0 else (x[0, -lag:], x[k, : n + lag])
+        if a.size < 4 * seg:
+            continue
         with np.errstate(divide="ignore", invalid="ignore"):  # a silent mic: no coherence
-            f, c = coherence(signals[0], signals[k], fs=sample_rate_hz, nperseg=seg)
+            f, c = coherence(a, b, fs=fs, nperseg=seg)
         sel = (f >= lo) & (f <= hi) & np.isfinite(c)
         if np.any(sel):
-            vals.append(float(np.mean(c[sel])))
+            top = np.sort(c[sel])[::-1][: max(int(np.ceil(_TOP_SHARE * sel.sum())), 1)]
+            vals.append(float(np.mean(top)))
     return float(np.mean(vals)) if vals else 0.0
 
 

@@ -152,6 +152,18 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
                 continue
             entries.append(entry)
             bar.update(1)
+    if start_s is not None and window_s is None and len(entries) == 1:
+        from locate.workflows.sources import unseparated_note
+
+        e = entries[0]
+        cov = np.asarray(e.get("covariance_m2") or np.full((2, 2), np.nan), float)
+        sd = float(np.sqrt(max(np.trace(cov[:2, :2]), 0.0))) if np.all(
+            np.isfinite(cov[:2, :2])) else 0.0
+        note = unseparated_note(rec, site, cond, start_s, stop_s, e["position_m"],
+                                band_hz=band_hz, sd_m=sd,
+                                source_z_m=source_z_m if dims == 2 else e["position_m"][2])
+        if note:  # the fix's own warning (printed with it)
+            e["warnings"].append(note)
     # the reads' channel notes, unless a fix already said the same (its own figures)
     said = ({same_shape(w) for e in entries for w in e["warnings"]}
             | {same_shape(w) for w in warnings})

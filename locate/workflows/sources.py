@@ -42,9 +42,16 @@ FIRST_SEARCH_S = 8e-3
 bearing, and the map's maximum may lie anywhere along it), s."""
 
 MIN_GOOD_SHARE = 0.5
-"""A source needs this share of its pairs 'good' (a tonal one: a PHAT peak of 0.3 or more, its
-window being too narrow for a floor): a peak whose
+"""A source needs this share of its pairs with a steered PHAT peak of
+:data:`MIN_STEERED_PEAK` or more: a peak whose
 delays do not correlate when steered at is a sidelobe of the others, not a source."""
+
+MIN_STEERED_PEAK = 0.2
+"""A pair counts toward :data:`MIN_GOOD_SHARE` when its PHAT peak, steered at the source, reaches
+this height (one source alone gives 0.8-1; two of equal level sharing the band about half
+each; the peak of independent noise over K bins is of order 1 / sqrt(K), below 0.05 for the
+thousands of bins of a one-second span).  The 'weak'/'ambiguous' grades of the plain delays
+do not serve here: the other source's part of the correlation sits in the pair's floor."""
 
 SAME_SOURCE_M = 3.0
 """Two fixes closer than this are one source seen twice."""
@@ -169,8 +176,7 @@ def fix_sources(recordings, site, cond, start_s, stop_s, *, sources="auto", band
             warnings.append(f"{where} stands out of the maps but could not be fixed apart "
                             f"from the others: {exc.message}")
             continue
-        usable = (int(np.sum((ds.peak >= 0.3) & np.isfinite(ds.sd_s))) if peak.tonal
-                  else ds.quality.count("good"))
+        usable = int(np.sum((ds.peak >= MIN_STEERED_PEAK) & np.isfinite(ds.sd_s)))
         if usable < MIN_GOOD_SHARE * len(ds.quality):
             warnings.append(f"{where} stands out of the maps but its delays do not correlate "
                             f"when steered at it ({usable} of {len(ds.quality)} pairs): a "
@@ -268,3 +274,41 @@ def locate_sources(site, recordings, start_s, stop_s, *, sources="auto", band_hz
                         extra={"sources": {"asked": sources, "found": len(entries),
                                            "bands": [m.label for m in maps]}})
     return result, maps
+
+
+NOTE_SPAN_S = 6.0
+"""The check for other sources reads at most this much of a span (its start)."""
+
+OTHER_SOURCE_M = 10.0
+"""A source of the span this far from its single fix (and beyond 3 sd of it) is another."""
+
+
+def unseparated_note(recordings, site, cond, start_s, stop_s, position_m, *, band_hz=None,
+                     source_z_m=0.0, sd_m=0.0):
+    """A warning when the span holds a source other than the one fixed, else None.
+
+    The single fix of a span (one set of pair delays) can describe one source at most; the
+    span's sources are found and fixed as ``--sources auto`` does (:func:`fix_sources`: map
+    peaks whose steered delays correlate) and any more than :data:`OTHER_SOURCE_M` (and
+    3 ``sd_m``) from the fix is named.
+    """
+    if not np.all(np.isfinite(np.asarray(position_m, float)[:2])):
+        return None
+    stop = min(stop_s, start_s + NOTE_SPAN_S)
+    if stop - start_s < 0.5:
+        return None
+    try:
+        entries, _, _ = fix_sources(recordings, site, cond, start_s, stop, sources="auto",
+                                    band_hz=band_hz, dims=2, source_z_m=source_z_m)
+    except (NothingFoundError, ValueError):
+        return None
+    far = max(OTHER_SOURCE_M, 3.0 * float(sd_m) if np.isfinite(sd_m) else OTHER_SOURCE_M)
+    xy = np.asarray(position_m, float)[:2]
+    others = [e for e in entries if np.hypot(*(np.asarray(e["position_m"][:2]) - xy)) > far]
+    if not others:
+        return None
+    where = "; ".join(f"x {e['position_m'][0]:.0f} m, y {e['position_m'][1]:.0f} m "
+                      f"({', '.join(e['bands'])})" for e in others[:3])
+    return (f"{len(others)} other source(s) stand out of this span's maps ({where}) and were "
+            "not separated: this fix follows one sound only; run with --sources auto to fix "
+            "each, or --sources-map to see them")
