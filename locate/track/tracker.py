@@ -309,6 +309,33 @@ def _check_inputs(signals, fs, mics, dims, model, sound_speed_mps):
     return x
 
 
+MIN_START_WINDOWS = 3
+"""Coherent start windows the start search needs (a line through bearings needs three)."""
+MIN_TRACK_WINDOWS = 4
+"""Track windows a path fit needs at least (more than the 2-4 knots' worth of parameters)."""
+
+
+def _check_span(span_s, window_s, hop_s):
+    """Refuse, saying why, a span too short for the start search and the track windows."""
+    if not (np.isfinite(window_s) and window_s > 0):
+        raise OptionError(f"the window must be positive, got {window_s!r} s", field="window_s")
+    if not (np.isfinite(hop_s) and hop_s > 0):
+        raise OptionError(f"the hop must be positive, got {hop_s!r} s", field="hop_s")
+    if window_s > span_s:
+        raise OptionError(f"the window ({window_s:g} s) is longer than the span analysed "
+                          f"({span_s:.3g} s); shorten window_s or widen start_s/stop_s",
+                          field="window_s")
+    plain = max(0.25, window_s)
+    need = max(MIN_START_WINDOWS * plain, window_s + (MIN_TRACK_WINDOWS - 1) * hop_s)
+    if span_s + 1e-9 < need:
+        raise OptionError(
+            f"the span ({span_s:.3g} s) is too short for a track: the start search needs "
+            f"{MIN_START_WINDOWS} windows of {plain:.3g} s and the fit {MIN_TRACK_WINDOWS} "
+            f"windows of {window_s:.3g} s every {hop_s:.3g} s, so at least {need:.3g} s; widen "
+            "start_s/stop_s (or shorten window_s); a sound that does not move is located "
+            "with `tdoa fix`", field="stop_s")
+
+
 def overlap_factor(window_s, hop_s):
     """Variance factor for estimates built from windows overlapping by ``window - hop``."""
     k = np.arange(1, int(np.ceil(window_s / hop_s)) + 1)
@@ -384,8 +411,9 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     w_def, h_def, plain_w = track_delays.default_window_s(mics, c, expected_speed_mps)
     window_s = w_def if window_s is None else float(window_s)
     hop_s = (window_s / 2.0 if window_s != w_def else h_def) if hop_s is None else float(hop_s)
-    centres = track_delays.window_centres(x.shape[1], fs, t0_s, window_s, hop_s)
     span_s = x.shape[1] / fs
+    _check_span(span_s, window_s, hop_s)
+    centres = track_delays.window_centres(x.shape[1], fs, t0_s, window_s, hop_s)
     plain_w = min(max(0.25, window_s), span_s)
     plain_c = track_delays.window_centres(x.shape[1], fs, t0_s, plain_w, plain_w)
     pairs = np.stack(np.triu_indices(len(mics), k=1), axis=1)
@@ -413,8 +441,10 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                                          expected_speed_mps=expected_speed_mps, lobe_s=lobe)
     good = score > 3.0 * np.sqrt(len(pairs))
     if good.sum() < 3:
-        raise NothingFoundError("no coherent sound between the microphones in the span; "
-                                "check --from/--to and --band")
+        raise NothingFoundError(
+            f"only {int(good.sum())} of the {len(plain_c)} start windows of {plain_w:g} s hold a "
+            f"sound that the mics hear coherently (a track needs {MIN_START_WINDOWS}); check "
+            "start_s/stop_s (is the source audible then?) and band_hz")
     origin = mics.mean(axis=0)
     u = fix_m - origin
     u /= np.maximum(np.linalg.norm(u, axis=1, keepdims=True), 1e-12)
@@ -452,10 +482,15 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
+            short = len(centres) < 4 * MIN_TRACK_WINDOWS
             raise NothingFoundError(
-                "no coherent sound along the path in the track windows"
-                + ("" if band_hz is not None else ": the whole band was searched; give --band "
-                   "around the source's sound (e.g. its octaves above the background)")
+                "the start path does not line up the mics' sound in any of the "
+                f"{len(centres)} track windows"
+                + (f": the span ({span_s:.3g} s) is probably too short for the start search "
+                   "to find the path (widen --from/--to)" if short else "")
+                + (" (searched band {:g}-{:g} Hz)".format(*band_hz) if band_hz is not None
+                   else ("; or" if short else ":") + " the whole band was searched, give "
+                   "--band around the source's sound (e.g. its octaves above the background)")
                 + "; a source passing close to the mics may need a shorter --window")
         return eps, cov_w, ok_w, warp
 

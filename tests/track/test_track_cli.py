@@ -232,6 +232,20 @@ def test_unphysical_speed_guess_is_refused_in_one_line(tmp_path, guess):
     assert stderr.count("\n") == 1 and "--speed-guess" in stderr and "Traceback" not in stderr
 
 
+@pytest.mark.parametrize("span_s", [0.3, 0.6, 1.0])
+def test_a_span_too_short_for_a_track_says_so(tmp_path, span_s):
+    # Issue 16: a short span is refused with its real reason (not "no coherent sound"): the
+    # start search needs 3 windows and the fit 4 (locate.track.tracker.MIN_*_WINDOWS; a line
+    # through bearings needs three directions - common practice).
+    x = np.random.default_rng(0).normal(size=(6, 16000))
+    site = write_site(tmp_path, VEHICLE_MICS, x, FS)
+    code, _, stderr = run(["track", site, "--from", 0.5, "--to", 0.5 + span_s])
+    assert code == 2
+    assert stderr.count("\n") == 1 and "Traceback" not in stderr
+    assert "too short for a track" in stderr and "--from/--to" in stderr
+    assert "coherent" not in stderr
+
+
 def test_internal_failure_is_one_line_and_exit_1(tmp_path, monkeypatch):
     from locate.track import tracker
 
