@@ -315,13 +315,13 @@ MIN_TRACK_WINDOWS = 4
 """Track windows a path fit needs at least (more than the 2-4 knots' worth of parameters)."""
 
 
-def _check_span(span_s, window_s, hop_s):
+def _check_span(span_s, window_s, hop_s, window_given=True):
     """Refuse, saying why, a span too short for the start search and the track windows."""
     if not (np.isfinite(window_s) and window_s > 0):
         raise OptionError(f"the window must be positive, got {window_s!r} s", field="window_s")
     if not (np.isfinite(hop_s) and hop_s > 0):
         raise OptionError(f"the hop must be positive, got {hop_s!r} s", field="hop_s")
-    if window_s > span_s:
+    if window_given and window_s > span_s:
         raise OptionError(f"the window ({window_s:g} s) is longer than the span analysed "
                           f"({span_s:.3g} s); shorten window_s or widen start_s/stop_s",
                           field="window_s")
@@ -409,10 +409,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                           f"({c:.0f} m/s), got {expected_speed_mps!r} m/s",
                           field="expected_speed_mps")
     w_def, h_def, plain_w = track_delays.default_window_s(mics, c, expected_speed_mps)
+    window_given = window_s is not None
     window_s = w_def if window_s is None else float(window_s)
     hop_s = (window_s / 2.0 if window_s != w_def else h_def) if hop_s is None else float(hop_s)
     span_s = x.shape[1] / fs
-    _check_span(span_s, window_s, hop_s)
+    _check_span(span_s, window_s, hop_s, window_given)
     centres = track_delays.window_centres(x.shape[1], fs, t0_s, window_s, hop_s)
     plain_w = min(max(0.25, window_s), span_s)
     plain_c = track_delays.window_centres(x.shape[1], fs, t0_s, plain_w, plain_w)
