@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from locate.errors import NothingFoundError, OptionError
+from locate.errors import NothingFoundError, OptionError, TdoaError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
 from locate.track import budget as track_budget
@@ -36,7 +36,7 @@ from locate.track.retarded import Parametrisation, predict_delays
 
 __all__ = [
     "TrackResult", "describe_fit", "track_recording", "track_to_dict", "stationary_message",
-    "naive_fit", "STATIONARY_SPEED_MPS",
+    "naive_fit", "STATIONARY_SPEED_MPS", "coherent_band_hz",
 ]
 
 STATIONARY_SPEED_MPS = 0.5
@@ -342,7 +342,78 @@ def overlap_factor(window_s, hop_s):
     return float(1.0 + 2.0 * np.sum(np.clip(1.0 - k * hop_s / window_s, 0.0, None)))
 
 
-def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *, t0_s=0.0,
+def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, **kwargs):
+    try:
+        return _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                                **kwargs)
+    except NothingFoundError as exc:
+        # found nothing with the automatic band: say which band the mics agree in
+        if kwargs.get("band_hz") is not None or "stationary" in exc.message:
+            raise
+        try:
+            best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m,
+                                    sound_speed_mps)
+        except (ValueError, FloatingPointError, TdoaError):
+            best = None
+        if best is None:
+            exc.message += "; no octave band is coherent between the mics either"
+        else:
+            exc.message += (f"; the mics agree best in {best[0]:.0f}-{best[1]:.0f} Hz "
+                            f"(correlation peaks {best[2]:.0f} robust sd above the floor): "
+                            f"try band_hz {best[0]:.0f}:{best[1]:.0f}")
+        raise
+
+
+def coherent_band_hz(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *,
+                     window_s=0.3, n_windows=8, min_score=6.0):
+    """The octave bands in which the mics hear the same sound: a band to try.
+
+    GCC-PHAT (Knapp & Carter 1976) of every pair over ``n_windows`` short windows spread over
+    the span (short, so that a moving source's delay barely drifts within one; a coherence
+    averaged over the whole span would cancel as the delay drifts), band by band (nominal
+    octaves 31.5 Hz ... up to 0.45 fs, edges at mid / sqrt 2 and mid * sqrt 2, IEC 61260);
+    a band's score is the peak height in robust standard deviations of its curve, the median
+    over pairs in the window where it is highest.  The best band is widened by its neighbours
+    that reach half its score.
+
+    Returns
+    -------
+    (lo_hz, hi_hz, score) or None
+        None when no band's score reaches ``min_score`` (the weak-peak limit of
+        :data:`locate.signal.delays.WEAK_PEAK_SCORE`).
+    """
+    x = np.asarray(signals, float)
+    fs = float(sample_rate_hz)
+    mics = np.asarray(mic_positions_m, float)
+    span = x.shape[1] / fs
+    w = min(window_s, span)
+    centres = np.linspace(w / 2.0, span - w / 2.0, max(1, min(n_windows, int(span / w))))
+    pairs = np.stack(np.triu_indices(len(mics), k=1), axis=1)
+    max_lag = geometric_max_lag_s(mics, pairs, sound_speed_mps)
+    mids = 1000.0 * 2.0 ** np.arange(-5, 5)
+    mids = mids[mids * np.sqrt(2.0) <= 0.45 * fs]
+    vals = []
+    for m in mids:
+        _, cur = track_delays.gcc_curves(x, fs, 0.0, centres, w, pairs, max_lag,
+                                         band_hz=(m / np.sqrt(2.0), m * np.sqrt(2.0)))
+        r = np.abs(cur.astype(float))
+        med = np.median(r, axis=-1)
+        mad = 1.4826 * np.median(np.abs(r - med[..., None]), axis=-1)
+        z = (r.max(axis=-1) - med) / np.maximum(mad, 1e-12)  # (W, P)
+        vals.append(float(np.max(np.median(z, axis=1))))
+    vals = np.array(vals)
+    if vals.size == 0 or vals.max() < min_score:
+        return None
+    k = int(np.argmax(vals))
+    lo = hi = k
+    while lo > 0 and vals[lo - 1] >= 0.5 * vals[k]:
+        lo -= 1
+    while hi < len(vals) - 1 and vals[hi + 1] >= 0.5 * vals[k]:
+        hi += 1
+    return (float(mids[lo] / np.sqrt(2.0)), float(mids[hi] * np.sqrt(2.0)), float(vals[k]))
+
+
+def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *, t0_s=0.0,
                     window_s=None, hop_s=None, band_hz=None, dims=2, source_z_m=0.0,
                     wind_mps=None, model="straight", segment_s=None, expected_speed_mps=20.0,
                     reference_mic=0, points_m=None, bearing_from_m=None, tone_hz=None,
@@ -483,7 +554,7 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
-            short = len(centres) < 4 * MIN_TRACK_WINDOWS
+            short = len(centres) < 2 * MIN_TRACK_WINDOWS
             raise NothingFoundError(
                 "the start path does not line up the mics' sound in any of the "
                 f"{len(centres)} track windows"
@@ -666,6 +737,9 @@ def _block_jackknife(fit: PathFit, centres, meas, mics, pairs, c, fit_kw):
     lam, vec = np.linalg.eigh(inv @ jack @ inv.T)
     grown = chol @ (vec * np.maximum(lam, 1.0)) @ vec.T @ chol.T
     return dataclasses.replace(fit, covariance=0.5 * (grown + grown.T))
+
+
+track_recording.__doc__ = _track_recording.__doc__
 
 
 def _par_of(path, dims, source_z_m):

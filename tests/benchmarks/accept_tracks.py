@@ -161,7 +161,7 @@ def main(argv):
         else:
             print(f"{name:22s} {r['family']:8s} {r['code']:4d} {'-':>10s} {'-':>8s} {'-':>7s} "
                   f"{'-':>8s} {'-':>5s} {'-':>9s} {r['s']:5.0f}  {r['verdict']}: "
-                  f"{r.get('reason', '')[:150]}", flush=True)
+                  f"{r.get('reason', '')}", flush=True)
 
 
 if __name__ == "__main__":
