@@ -25,7 +25,6 @@ from __future__ import annotations
 
 import numpy as np
 
-from locate.track.motion import emission_time_s
 from locate.track.pathfit import whitening
 from locate.track.retarded import predict_delays
 
@@ -131,10 +130,8 @@ def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed
         g = (d_pred[0] - d_pred[1]) / (2 * h)  # (W_sel, P) per unit nuisance
         dtheta = -solve @ np.einsum("wqp,wp->wq", m_w, g).reshape(-1)  # (n,)
         for sign in (1.0, -1.0):
-            m, cc, w, th, _ = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h, ref)
-            path = par.path(theta + sign * h * dtheta)
-            te = emission_time_s(th, m[ref], path, cc, w)
-            d_pt.append(path.position_m(te))
+            # the point at its stated emission time (as locate.track.tracker.describe_fit)
+            d_pt.append(par.path(theta + sign * h * dtheta).position_m(fit.t_emit_s))
         dp = (d_pt[0] - d_pt[1]) / (2 * h)  # (W, 3)
         dp = np.where(np.isfinite(dp), dp, 0.0)
         theta_cov += sd**2 * np.outer(dtheta, dtheta)

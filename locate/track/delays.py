@@ -325,9 +325,11 @@ def warped_delays(signals, sample_rate_hz, t0_s, centres_s, window_s, path, mic_
     n = int(round(window_s * fs))
     local = (np.arange(n) - (n - 1) / 2.0) / fs
     sets = []
+    whole = np.ones((len(centres_s), len(mics)), bool)
     for w, tc in enumerate(centres_s):  # loop over windows; samples are vectorised
         t_ref = tc + local
         _, arr = arrival_times(path, t_ref, mics, sound_speed_mps, wind_mps, reference_mic)
+        whole[w] = _inside(arr, t0_s, x.shape[1], fs)
         y = resample(x, fs, t0_s, arr.T)
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             sets.append(estimate_delays(y, fs, max_lag_s=max_lag_s, band_hz=band_hz,
@@ -335,7 +337,20 @@ def warped_delays(signals, sample_rate_hz, t0_s, centres_s, window_s, path, mic_
         if progress is not None:
             progress(w + 1, len(centres_s))
     # a narrow search centred on the prediction: a tonal second peak is no ambiguity here
-    return _collect(sets, len(pairs), ("good", "ambiguous"))
+    d, cov, ok = _collect(sets, len(pairs), ("good", "ambiguous"))
+    pairs = np.asarray(pairs, int)
+    return d, cov, ok & whole[:, pairs[:, 0]] & whole[:, pairs[:, 1]]
+
+
+def _inside(arr_s, t0_s, n_samples, fs):
+    """Per mic: does the whole warped window (arrival times ``arr_s`` (L, N)) lie inside the
+    recording?  A window that reaches past either end is partly zeros at that mic: its delay
+    is biased toward the edge and is not used (at a source kilometres away the mics hear the
+    same sound up to a second apart, so the first and last windows of a span are cut short at
+    some mics)."""
+    lo = t0_s + (_HALF - 1) / fs
+    hi = t0_s + (n_samples - _HALF) / fs
+    return (arr_s.min(axis=0) >= lo) & (arr_s.max(axis=0) <= hi)
 
 
 def emission_span_s(path, centres_s, window_s, mic_m, sound_speed_mps, wind_mps=None):

@@ -285,8 +285,21 @@ def window_displacements(fit: PathFit, delays_s, covariance_s2, usable, mic_posi
 def inflate(covariance_m2, shift_m, window_cov_m2, window_chi2_reduced):
     """Point covariances grown to cover the model error (module docstring)."""
     scale = np.maximum(np.asarray(window_chi2_reduced, float), 1.0)[:, None, None]
-    return (covariance_m2 + window_cov_m2 * scale
+    # The model error is continuous along the track but a window's own fix measures it with
+    # its own error (worst in range): besides the measured shift (rank one), every point gets
+    # an isotropic term of the largest shift among its neighbours (+-NEIGHBOURS windows).
+    s2 = np.sum(np.asarray(shift_m, float) ** 2, axis=1)
+    k = NEIGHBOURS
+    pad = np.pad(s2, k, mode="edge")
+    near = np.max(np.lib.stride_tricks.sliding_window_view(pad, 2 * k + 1), axis=1)
+    iso = np.zeros_like(np.asarray(covariance_m2, float))
+    iso[:, 0, 0] = iso[:, 1, 1] = iso[:, 2, 2] = near
+    return (covariance_m2 + window_cov_m2 * scale + iso
             + np.einsum("wi,wj->wij", shift_m, shift_m))
+
+
+NEIGHBOURS = 3
+"""Windows on each side whose model-error shift a flagged point's ellipse also covers."""
 
 
 def turns(fit: PathFit, min_change_deg=10.0, merge_s=1.0):

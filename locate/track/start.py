@@ -361,11 +361,11 @@ def grid_start(lags_s, curves, centres_s, window_s, mic_positions_m, pairs, soun
     if dims == 2:
         miss = ap * np.array([-4.0, -1.5, -0.5, 0.0, 0.5, 1.5, 4.0])
         height = [source_z_m]
-    else:  # aircraft: up to ~20 apertures away and high up, at aircraft speeds too
+    else:  # aircraft: up to ~35 apertures away and high up, at aircraft speeds too
         speed = np.unique(np.clip(np.concatenate([speed, [35.0, 60.0, 110.0, 200.0]]), 0.5,
                                   0.9 * sound_speed_mps))
-        miss = ap * np.array([-12.0, -4.0, -1.5, 0.0, 1.5, 4.0, 12.0])
-        height = list(centre[2] + ap * np.array([0.5, 1.2, 2.5, 6.0, 15.0]))
+        miss = ap * np.array([-25.0, -12.0, -4.0, -1.5, 0.0, 1.5, 4.0, 12.0, 25.0])
+        height = list(centre[2] + ap * np.array([0.5, 1.2, 2.5, 6.0, 12.0, 22.0]))
     # closest approach *heard* within the span; its emission time is earlier by the travel
     # time from the closest point (retarded-time lags of seconds for distant sources)
     t_cpa = np.linspace(t_c[0], t_c[-1], 9)

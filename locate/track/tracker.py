@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from locate.errors import NothingFoundError, OptionError
+from locate.errors import NothingFoundError, OptionError, TdoaError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
 from locate.track import budget as track_budget
@@ -36,7 +36,7 @@ from locate.track.retarded import Parametrisation, predict_delays
 
 __all__ = [
     "TrackResult", "describe_fit", "track_recording", "track_to_dict", "stationary_message",
-    "naive_fit", "STATIONARY_SPEED_MPS",
+    "naive_fit", "STATIONARY_SPEED_MPS", "coherent_band_hz",
 ]
 
 STATIONARY_SPEED_MPS = 0.5
@@ -115,6 +115,8 @@ class TrackResult:
     straight_holds: bool = True
     turns: list = field(default_factory=list)
     uncertainty: dict = field(default_factory=dict)
+    t_emit_sd_s: np.ndarray | None = None
+    heard_covariance_m2: np.ndarray | None = None
 
     def point_heading_speed(self):
         """Per point: heading, its sd, speed, its sd (arrays of shape (W,))."""
@@ -172,7 +174,19 @@ def describe_fit(fit: PathFit, mic_positions_m, sound_speed_mps, wind_mps=None, 
     else:
         q = b_e
     pos = path.position_m(t_e)
-    pcov = np.einsum("win,nm,wjm->wij", q, cov, q)
+    # A point is reported as "the source was here at t_emit_s"; it is scored against where the
+    # source was at that stated time, so its covariance is that of p(t) at fixed t (B cov B^T).
+    # The covariance of "where the sound heard at t_heard_s came from" (q cov q^T, q the total
+    # derivative through the emission time) differs from it by v * dt_e: a range error dr
+    # shifts the emission time by dr / c and the point along the track by (v / c) dr - two
+    # thirds of the range error for a jet at 220 m/s, negligible for a car.  The emission-time
+    # sd is reported beside it (``t_emit_sd_s``).
+    pcov = np.einsum("win,nm,wjm->wij", b_e, cov, b_e)
+    heard_cov = np.einsum("win,nm,wjm->wij", q, cov, q)
+    if fit.retarded:
+        t_emit_sd = np.sqrt(np.maximum(np.einsum("wn,nm,wm->w", de, cov, de), 0.0))
+    else:
+        t_emit_sd = np.zeros(len(t_e))
     b_h = par.basis(t_h)
     now = path.position_m(t_h)
     ncov = np.einsum("win,nm,wjm->wij", b_h, cov, b_h)
@@ -212,7 +226,8 @@ def describe_fit(fit: PathFit, mic_positions_m, sound_speed_mps, wind_mps=None, 
         velocity_mps=vel, velocity_covariance=vcov, heading_deg=hd, heading_sd_deg=hd_sd,
         speed_mps=sp, speed_sd_mps=sp_sd, segments=segments, closest=closest,
         stationary=stationary, model=model, sound_speed_mps=float(sound_speed_mps),
-        warnings=list(fit.warnings), point_velocity_mps=pvel, point_velocity_covariance=pvcov)
+        warnings=list(fit.warnings), point_velocity_mps=pvel, point_velocity_covariance=pvcov,
+        t_emit_sd_s=t_emit_sd, heard_covariance_m2=heard_cov)
 
 
 def _closest(par, th, cov, pts, c, wind, span):
@@ -294,13 +309,111 @@ def _check_inputs(signals, fs, mics, dims, model, sound_speed_mps):
     return x
 
 
+MIN_START_WINDOWS = 3
+"""Coherent start windows the start search needs (a line through bearings needs three)."""
+MIN_TRACK_WINDOWS = 4
+"""Track windows a path fit needs at least (more than the 2-4 knots' worth of parameters)."""
+
+
+def _check_span(span_s, window_s, hop_s, window_given=True):
+    """Refuse, saying why, a span too short for the start search and the track windows."""
+    if not (np.isfinite(window_s) and window_s > 0):
+        raise OptionError(f"the window must be positive, got {window_s!r} s", field="window_s")
+    if not (np.isfinite(hop_s) and hop_s > 0):
+        raise OptionError(f"the hop must be positive, got {hop_s!r} s", field="hop_s")
+    if window_given and window_s > span_s:
+        raise OptionError(f"the window ({window_s:g} s) is longer than the span analysed "
+                          f"({span_s:.3g} s); shorten window_s or widen start_s/stop_s",
+                          field="window_s")
+    plain = max(0.25, window_s)
+    need = max(MIN_START_WINDOWS * plain, window_s + (MIN_TRACK_WINDOWS - 1) * hop_s)
+    if span_s + 1e-9 < need:
+        raise OptionError(
+            f"the span ({span_s:.3g} s) is too short for a track: the start search needs "
+            f"{MIN_START_WINDOWS} windows of {plain:.3g} s and the fit {MIN_TRACK_WINDOWS} "
+            f"windows of {window_s:.3g} s every {hop_s:.3g} s, so at least {need:.3g} s; widen "
+            "start_s/stop_s (or shorten window_s); a sound that does not move is located "
+            "with `tdoa fix`", field="stop_s")
+
+
 def overlap_factor(window_s, hop_s):
     """Variance factor for estimates built from windows overlapping by ``window - hop``."""
     k = np.arange(1, int(np.ceil(window_s / hop_s)) + 1)
     return float(1.0 + 2.0 * np.sum(np.clip(1.0 - k * hop_s / window_s, 0.0, None)))
 
 
-def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *, t0_s=0.0,
+def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, **kwargs):
+    try:
+        return _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                                **kwargs)
+    except NothingFoundError as exc:
+        # found nothing with the automatic band: say which band the mics agree in
+        if kwargs.get("band_hz") is not None or "stationary" in exc.message:
+            raise
+        try:
+            best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m,
+                                    sound_speed_mps)
+        except (ValueError, FloatingPointError, TdoaError):
+            best = None
+        if best is None:
+            exc.message += "; no octave band is coherent between the mics either"
+        else:
+            exc.message += (f"; the mics agree best in {best[0]:.0f}-{best[1]:.0f} Hz "
+                            f"(correlation peaks {best[2]:.0f} robust sd above the floor): "
+                            f"try band_hz {best[0]:.0f}:{best[1]:.0f}")
+        raise
+
+
+def coherent_band_hz(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *,
+                     window_s=0.3, n_windows=8, min_score=6.0):
+    """The octave bands in which the mics hear the same sound: a band to try.
+
+    GCC-PHAT (Knapp & Carter 1976) of every pair over ``n_windows`` short windows spread over
+    the span (short, so that a moving source's delay barely drifts within one; a coherence
+    averaged over the whole span would cancel as the delay drifts), band by band (nominal
+    octaves 31.5 Hz ... up to 0.45 fs, edges at mid / sqrt 2 and mid * sqrt 2, IEC 61260);
+    a band's score is the peak height in robust standard deviations of its curve, the median
+    over pairs in the window where it is highest.  The best band is widened by its neighbours
+    that reach half its score.
+
+    Returns
+    -------
+    (lo_hz, hi_hz, score) or None
+        None when no band's score reaches ``min_score`` (the weak-peak limit of
+        :data:`locate.signal.delays.WEAK_PEAK_SCORE`).
+    """
+    x = np.asarray(signals, float)
+    fs = float(sample_rate_hz)
+    mics = np.asarray(mic_positions_m, float)
+    span = x.shape[1] / fs
+    w = min(window_s, span)
+    centres = np.linspace(w / 2.0, span - w / 2.0, max(1, min(n_windows, int(span / w))))
+    pairs = np.stack(np.triu_indices(len(mics), k=1), axis=1)
+    max_lag = geometric_max_lag_s(mics, pairs, sound_speed_mps)
+    mids = 1000.0 * 2.0 ** np.arange(-5, 5)
+    mids = mids[mids * np.sqrt(2.0) <= 0.45 * fs]
+    vals = []
+    for m in mids:
+        _, cur = track_delays.gcc_curves(x, fs, 0.0, centres, w, pairs, max_lag,
+                                         band_hz=(m / np.sqrt(2.0), m * np.sqrt(2.0)))
+        r = np.abs(cur.astype(float))
+        med = np.median(r, axis=-1)
+        mad = 1.4826 * np.median(np.abs(r - med[..., None]), axis=-1)
+        z = (r.max(axis=-1) - med) / np.maximum(mad, 1e-12)  # (W, P)
+        vals.append(float(np.max(np.median(z, axis=1))))
+    vals = np.array(vals)
+    if vals.size == 0 or vals.max() < min_score:
+        return None
+    k = int(np.argmax(vals))
+    lo = hi = k
+    while lo > 0 and vals[lo - 1] >= 0.5 * vals[k]:
+        lo -= 1
+    while hi < len(vals) - 1 and vals[hi + 1] >= 0.5 * vals[k]:
+        hi += 1
+    return (float(mids[lo] / np.sqrt(2.0)), float(mids[hi] * np.sqrt(2.0)), float(vals[k]))
+
+
+def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *, t0_s=0.0,
                     window_s=None, hop_s=None, band_hz=None, dims=2, source_z_m=0.0,
                     wind_mps=None, model="straight", segment_s=None, expected_speed_mps=20.0,
                     reference_mic=0, points_m=None, bearing_from_m=None, tone_hz=None,
@@ -367,10 +480,12 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                           f"({c:.0f} m/s), got {expected_speed_mps!r} m/s",
                           field="expected_speed_mps")
     w_def, h_def, plain_w = track_delays.default_window_s(mics, c, expected_speed_mps)
+    window_given = window_s is not None
     window_s = w_def if window_s is None else float(window_s)
     hop_s = (window_s / 2.0 if window_s != w_def else h_def) if hop_s is None else float(hop_s)
-    centres = track_delays.window_centres(x.shape[1], fs, t0_s, window_s, hop_s)
     span_s = x.shape[1] / fs
+    _check_span(span_s, window_s, hop_s, window_given)
+    centres = track_delays.window_centres(x.shape[1], fs, t0_s, window_s, hop_s)
     plain_w = min(max(0.25, window_s), span_s)
     plain_c = track_delays.window_centres(x.shape[1], fs, t0_s, plain_w, plain_w)
     pairs = np.stack(np.triu_indices(len(mics), k=1), axis=1)
@@ -398,8 +513,10 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                                          expected_speed_mps=expected_speed_mps, lobe_s=lobe)
     good = score > 3.0 * np.sqrt(len(pairs))
     if good.sum() < 3:
-        raise NothingFoundError("no coherent sound between the microphones in the span; "
-                                "check --from/--to and --band")
+        raise NothingFoundError(
+            f"only {int(good.sum())} of the {len(plain_c)} start windows of {plain_w:g} s hold a "
+            f"sound that the mics hear coherently (a track needs {MIN_START_WINDOWS}); check "
+            "start_s/stop_s (is the source audible then?) and band_hz")
     origin = mics.mean(axis=0)
     u = fix_m - origin
     u /= np.maximum(np.linalg.norm(u, axis=1, keepdims=True), 1e-12)
@@ -437,10 +554,15 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
+            short = len(centres) < 2 * MIN_TRACK_WINDOWS
             raise NothingFoundError(
-                "no coherent sound along the path in the track windows"
-                + ("" if band_hz is not None else ": the whole band was searched; give --band "
-                   "around the source's sound (e.g. its octaves above the background)")
+                "the start path does not line up the mics' sound in any of the "
+                f"{len(centres)} track windows"
+                + (f": the span ({span_s:.3g} s) is probably too short for the start search "
+                   "to find the path (widen --from/--to)" if short else "")
+                + (" (searched band {:g}-{:g} Hz)".format(*band_hz) if band_hz is not None
+                   else ("; or" if short else ":") + " the whole band was searched, give "
+                   "--band around the source's sound (e.g. its octaves above the background)")
                 + "; a source passing close to the mics may need a shorter --window")
         return eps, cov_w, ok_w, warp
 
@@ -524,6 +646,11 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     fit = dataclasses.replace(fit, covariance=fit.covariance * overlap_factor(window_s, hop_s),
                               covariance_scale=fit.covariance_scale
                               * overlap_factor(window_s, hop_s))
+    # Errors shared by neighbouring windows beyond their overlap (slowly varying delay biases
+    # of a distant fast source, the warp's linearisation) do not average down over the
+    # windows: a delete-one-block jackknife over contiguous blocks of windows (Kuensch 1989,
+    # Ann. Statist. 17(3)) sees them; the larger of the two covariances is kept.
+    fit = _block_jackknife(fit, centres, meas, mics, pairs, c, fit_kw)
     describe_kw = dict(bearing_from_m=bearing_from_m, points_m=points_m, model=chosen.model)
     if track_budget.has_declared(nuisance_sds):
         bud = track_budget.track_budget(fit, meas[1], meas[2], mics, pairs, c, wind_mps,
@@ -556,6 +683,63 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         result.doppler = doppler.doppler_speed(x, fs, t0_s, centres, window_s, result, mics, c,
                                                wind_mps=wind_mps, tone_hz=tone_hz)
     return result
+
+
+JACKKNIFE_BLOCKS = 8
+"""Contiguous blocks of windows of the delete-one-block jackknife (:func:`_block_jackknife`)."""
+
+
+def _block_jackknife(fit: PathFit, centres, meas, mics, pairs, c, fit_kw):
+    """``fit`` with its covariance raised to the delete-one-block jackknife covariance.
+
+    The windows are cut into :data:`JACKKNIFE_BLOCKS` contiguous blocks; the path is refitted
+    without each block in turn (same knots, degree and measured delays) and the jackknife
+    covariance ``(B - 1) / B * sum_b (theta_b - mean)(theta_b - mean)^T`` (Kuensch 1989) is
+    compared with the formal one in the formal one's whitened frame: directions where the
+    jackknife is larger take its variance, the others keep the formal one (so the result is
+    never smaller than the formal covariance).  Blocks whose removal leaves a knot interval
+    without data are skipped; with fewer than five refits, or for a curved (degree 2) path
+    whose end blocks would be extrapolated, the fit is returned unchanged.
+    """
+    eps, cov_w, ok_w, warp = meas
+    used = np.flatnonzero(fit.used)
+    if used.size < 4 * JACKKNIFE_BLOCKS or fit.par.degree != 1:
+        return fit
+    blocks = np.array_split(used, JACKKNIFE_BLOCKS)
+    kt = fit.par.knot_times_s
+    thetas = []
+    for blk in blocks:
+        keep = ok_w.copy()
+        keep[blk] = False
+        t_left = fit.t_emit_s[np.setdiff1d(used, blk)]
+        # every knot interval still needs windows of its own
+        counts = np.histogram(t_left, bins=kt)[0] if kt.size > 2 else [t_left.size]
+        if np.min(counts) < 3:
+            continue
+        try:
+            jf = fit_path(centres, eps, cov_w, mics, pairs, c, usable=keep, warp=warp,
+                          initial=fit.path, knots_s=kt, degree=fit.par.degree, **fit_kw)
+        except (ValueError, np.linalg.LinAlgError, NothingFoundError):
+            continue
+        if np.all(np.isfinite(jf.theta)) and jf.theta.shape == fit.theta.shape:
+            thetas.append(jf.theta)
+    nb = len(thetas)
+    if nb < 5:
+        return fit
+    th = np.array(thetas)
+    dev = th - th.mean(axis=0)
+    jack = (nb - 1.0) / nb * dev.T @ dev
+    try:
+        chol = np.linalg.cholesky(fit.covariance)
+    except np.linalg.LinAlgError:
+        return fit
+    inv = np.linalg.inv(chol)
+    lam, vec = np.linalg.eigh(inv @ jack @ inv.T)
+    grown = chol @ (vec * np.maximum(lam, 1.0)) @ vec.T @ chol.T
+    return dataclasses.replace(fit, covariance=0.5 * (grown + grown.T))
+
+
+track_recording.__doc__ = _track_recording.__doc__
 
 
 def _par_of(path, dims, source_z_m):
@@ -652,6 +836,8 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
             "speed_mps": float(sp[w]), "speed_sd_mps": float(sp_sd[w]),
             "misfit": None if red_w is None else float(red_w[w]),
             "t_emit_s": float(result.t_emit_s[w]), "t_heard_s": float(result.t_heard_s[w]),
+            "t_emit_sd_s": (None if result.t_emit_sd_s is None
+                            else float(result.t_emit_sd_s[w])),
             "position_m": result.position_m[w].tolist(),
             "covariance_m2": result.covariance_m2[w].tolist(),
             "position_now_m": result.position_now_m[w].tolist(),

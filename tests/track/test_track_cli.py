@@ -70,6 +70,16 @@ def _scene(name):
         path = synth.StraightPath(np.array([300.0, 200.0, 3000.0]) - 12.0 * 220.0 * d,
                                   220.0 * d)
         return JET_MICS, path, 26.0, 4000.0, 10.0, (60.0, 1200.0), 3, (10.0, 34.0)
+    if name == "aircraft-side":  # held-out kind: 300 m up, passing 250 m to the side
+        d, n = _unit(20.0)
+        p0 = np.array([0.0, 0.0, 300.0]) + 250.0 * n - 12.0 * 55.0 * d
+        return (AIRCRAFT_MICS, synth.StraightPath(p0, 55.0 * d), 24.0, 6000.0, 5.0,
+                (80.0, 2000.0), 3, (2.0, 24.0))
+    if name == "jet-offset":  # 3000 m up, 1500 m to the side: ~10 s between emission and hearing
+        d, n = _unit(135.0)
+        p0 = np.array([0.0, 0.0, 3000.0]) + 1500.0 * n - 12.0 * 220.0 * d
+        return (JET_MICS, synth.StraightPath(p0, 220.0 * d), 26.0, 4000.0, 10.0,
+                (60.0, 1200.0), 3, (10.0, 34.0))
     raise KeyError(name)
 
 
@@ -152,9 +162,9 @@ def test_straight_model_forced_on_a_turn_is_flagged_and_widened(tmp_path):
     assert any("does not explain" in w for w in doc["warnings"])
     err, m2, _ = _scores(doc, path)
     assert err.max() > 5.0  # the straight line is far off somewhere...
-    # ...and its widened ellipses cover most of it.  Measured 79 % (seed 1) - short of the
-    # 85 % the issue asks of tracks; the flag and warning above are the guarantee here.
-    assert np.mean(m2 < CHI2_95_2D) >= 0.75
+    # ...and its widened ellipses cover it as the issue asks of tracks (>= 85 %).  Measured
+    # (seed 1): 79 % with the measured shifts alone, 100 % with the neighbours' largest shift.
+    assert np.mean(m2 < CHI2_95_2D) >= 0.85
 
 
 @pytest.mark.slow
@@ -177,7 +187,8 @@ def test_aircraft_with_a_mast_mic_in_3d(tmp_path):
 def test_jet_at_3000_m(tmp_path):
     # Issue 16: a jet at 3000 m, 220 m/s over a ~300 m array (retarded-time lag ~9 s): horizontal
     # error <= 1 % of the range, >= 85 % inside, heading within 2 deg.
-    # Measured: max horizontal error 16 mm, 91 % inside, heading error < 1e-4 deg.
+    # Measured: max horizontal error 16 mm, 100 % inside (91 % before the point covariance was
+    # taken at the stated emission time), heading error < 1e-4 deg.
     code, _, stderr, doc, path = _track(tmp_path, "jet")
     assert code == 0, stderr
     err, m2, pos = _scores(doc, path)
@@ -189,6 +200,31 @@ def test_jet_at_3000_m(tmp_path):
     assert abs(tr["speed_mps"] - 220.0) <= 0.02 * 220.0
     lags = [p["t_heard_s"] - p["t_emit_s"] for p in tr["points"]]
     assert min(lags) > 8.0  # seconds between emission and hearing (3000 m / 344 m/s)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["jet-offset", "aircraft-side"])
+def test_aircraft_off_the_array_meet_the_acceptance(tmp_path, name):
+    # Issue 16 held-out kinds: a jet 3000 m up and 1500 m to the side (before: refused, then
+    # 6 % inside - its point covariance was that of the heard-from point, which a range error
+    # moves along the track by v/c of it), a light aircraft passing 250 m to the side.
+    # Measured (seed 1): jet-offset 10 m max horizontal error (0.25 % of range), 100 % inside;
+    # aircraft-side 3 mm, 100 % inside; heading errors < 0.1 deg.
+    code, _, stderr, doc, path = _track(tmp_path, name)
+    assert code == 0, stderr
+    err, m2, pos = _scores(doc, path)
+    mics = JET_MICS if name == "jet-offset" else AIRCRAFT_MICS
+    rng = np.linalg.norm(pos - mics.mean(axis=0), axis=1)
+    assert np.all(err <= 0.01 * rng)
+    assert np.mean(m2 < CHI2_95_2D) >= 0.85
+    t_e = np.array([p["t_emit_s"] for p in doc["track"]["points"]])
+    v = path.velocity_mps(t_e)
+    true_h = np.rad2deg(np.arctan2(v[:, 0], v[:, 1]))
+    hd = np.array([p["heading_deg"] for p in doc["track"]["points"]])
+    assert np.median(np.abs((hd - true_h + 180.0) % 360.0 - 180.0)) <= 2.0
+    # the emission time is reported with its sd (a range error is a timing error too)
+    assert all(p["t_emit_sd_s"] is not None and p["t_emit_sd_s"] >= 0.0
+               for p in doc["track"]["points"])
 
 
 @pytest.mark.slow
@@ -230,6 +266,20 @@ def test_unphysical_speed_guess_is_refused_in_one_line(tmp_path, guess):
     code, _, stderr = run(["track", site, "--from", 0, "--to", 2, "--speed-guess", guess])
     assert code == 2
     assert stderr.count("\n") == 1 and "--speed-guess" in stderr and "Traceback" not in stderr
+
+
+@pytest.mark.parametrize("span_s", [0.3, 0.6, 1.0])
+def test_a_span_too_short_for_a_track_says_so(tmp_path, span_s):
+    # Issue 16: a short span is refused with its real reason (not "no coherent sound"): the
+    # start search needs 3 windows and the fit 4 (locate.track.tracker.MIN_*_WINDOWS; a line
+    # through bearings needs three directions - common practice).
+    x = np.random.default_rng(0).normal(size=(6, 16000))
+    site = write_site(tmp_path, VEHICLE_MICS, x, FS)
+    code, _, stderr = run(["track", site, "--from", 0.5, "--to", 0.5 + span_s])
+    assert code == 2
+    assert stderr.count("\n") == 1 and "Traceback" not in stderr
+    assert "too short for a track" in stderr and "--from/--to" in stderr
+    assert "coherent" not in stderr
 
 
 def test_internal_failure_is_one_line_and_exit_1(tmp_path, monkeypatch):
