@@ -23,7 +23,7 @@ from locate import __version__
 from locate.errors import OptionError, SiteFileError, TdoaError
 from locate.report import context as rc
 from locate.report import format as rf
-from locate.results.documents import check_same_site, check_schema
+from locate.results.documents import check_same_site, check_schema, fix_label
 
 __all__ = ["KINDS", "SECTIONS", "build_report", "make_report", "check_same_site",
            "recordings_info"]
@@ -98,7 +98,7 @@ def _map_alt(site, result):
                 ", with 95 % confidence ellipses along it")
     else:
         fixes = result.get("fixes") or []
-        where = "; ".join(f"fix {k} at x {rf.num(f['position_m'][0], 1)} m, y "
+        where = "; ".join(f"fix {fix_label(f, k)} at x {rf.num(f['position_m'][0], 1)} m, y "
                           f"{rf.num(f['position_m'][1], 1)} m" for k, f in enumerate(fixes, 1))
         what = f"{len(fixes)} located position(s) with 95 % confidence ellipses ({where})"
     return (f"Site map of {site.title}, local metres with north up: {len(site.mics)} "
