@@ -252,6 +252,21 @@ def draw_hyperbolae(ax, e, k, names, mics, c, wind, view, n_grid, file, *, label
     for i, j, d in used_pairs(e, names, k, file):
         f = delay_misfit_field(mics, i, j, d, e["position_m"][2], xs, ys, c, wind)
         if not (f.min() < 0 < f.max()):
+            base = mics[j, :2] - mics[i, :2]
+            base_s = float(np.hypot(*base)) / c
+            if base_s > 0 and float(np.min(np.abs(f))) < 0.05 * base_s:
+                # the delay is (nearly) the whole baseline: the hyperbola has closed onto the
+                # baseline's extension beyond the nearer mic - drawn as that ray
+                near, far = (i, j) if d > 0 else (j, i)
+                u = (mics[near, :2] - mics[far, :2]) / (base_s * c)
+                reach = float(np.hypot(view[1] - view[0], view[3] - view[2]))
+                ray = np.array([mics[near, :2], mics[near, :2] + reach * u])
+                ax.plot(ray[:, 0], ray[:, 1], color=PALETTE["hyperbola"], lw=0.9, zorder=5,
+                        gid=f"hyperbola:{k + 1}:{names[i]}-{names[j]}" if label else None)
+                notes.append(f"the {names[i]}–{names[j]} delay is close to its largest possible "
+                             f"value, so the source lies near the line through both mics beyond "
+                             f"{names[near]} (drawn as a ray from {names[near]})")
+                continue
             notes.append(f"the hyperbola of {names[i]}–{names[j]} lies outside the view")
             continue
         cs = ax.contour(xs, ys, f, levels=[0.0], colors=[PALETTE["hyperbola"]],
