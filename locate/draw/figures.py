@@ -456,7 +456,11 @@ def _draw_points(ax, lab, names, mics, rec, rejected, dead):
     for nm, p in zip(names, mics, strict=True):
         d = p[:2] - centre
         off = nm in rejected or nm in dead
-        lab.point_label(p[:2], nm, prefer=(1 if d[0] >= 0 else -1, 1 if d[1] >= 0 else -1),
+        sx, sy = (1 if d[0] >= 0 else -1), (1 if d[1] >= 0 else -1)
+        # beside the marker first (reads as its name), then above/below, diagonals last
+        order = [(sx, 0), (-sx, 0), (0, 1.3 * sy), (0, -1.3 * sy), (sx, sy), (sx, -sy),
+                 (-sx, sy), (-sx, -sy)]
+        lab.point_label(p[:2], nm, prefer=order[0], offsets=order, dist_pt=5.5,
                         fontsize=8.5, fontweight="bold",
                         color=PALETTE["rejected"] if off else PALETTE["mic"],
                         fontstyle="italic" if off else "normal")
