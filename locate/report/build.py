@@ -125,7 +125,7 @@ def _plan_png(site, result, notes):
         notes.append(f"{result['_label']}: the planning map is not redrawn: the site file no "
                      "longer gives the same proposal (rerun the planning)")
         return None
-    fig = plan_figure(res, site, width_in=7.5)
+    fig = plan_figure(res, site, width_in=PRINT_WIDTH_IN)
     caption = getattr(fig, "tdoa_caption", "")
     return plot.figure_bytes(fig, "png", dpi=200), caption
 
