@@ -318,8 +318,8 @@ def write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_
 
 
 LONG_RUN = 20
-"""From this many fixes on, the printout ends with a summary line and repeated warnings are
-said once with a count."""
+"""From this many fixes on, the printout ends with a summary line, repeated warnings are said
+once with a count and the per-fix uncertainty lines stay in the result JSON."""
 
 
 def print_fixes(ctx, site, cond, result):
@@ -353,7 +353,7 @@ def print_fixes(ctx, site, cond, result):
                   f"(half-axes), long axis {e['azimuth_deg']:.0f}° from north; timing residual "
                   f"{f['residual_rms_s'] * 1e6:.1f} µs; mics used {' '.join(f['used_mics'])}"
                   + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
-        if f.get("uncertainty_budget"):
+        if f.get("uncertainty_budget") and not long_run:  # long runs: in the JSON only
             from locate.accuracy.budget import budget_summary
             echo(ctx, "   " + budget_summary(f["uncertainty_budget"]))
         for w in f["warnings"]:
