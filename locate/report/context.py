@@ -266,7 +266,7 @@ def track_section(result, site):
     used = sum(1 for p in pts if p.get("used", True))
     emits = [p["t_emit_s"] for p in pts if rf.finite(p.get("t_emit_s"))]
     facts = [
-        ("Heading (toward)", heading_text(tr)),
+        ("Heading (direction of travel, from north)", heading_text(tr)),
         ("Speed", speed_text(tr, kmh=True)),
         ("Motion model", {"straight": "straight line at constant speed",
                           "segments": "straight segments"}.get(tr.get("model"),
