@@ -257,9 +257,9 @@ def geometry_options(f):
                      help="2: horizontal fix at a given source height; 3: full 3-D fix.")(f)
     f = click.option("--source-z", "source_z_m", type=HEIGHT, default=0.0,
                      help="Source height for 2-D fixes, metres above the ground (same datum as "
-                          "the mics), optionally with its uncertainty: 1.0 or 1.0+-0.5.  fix: "
-                          "default 1 m +- 0.6 m (a source between the ground and 2 m); "
-                          "track: default 0.")(f)
+                          "the mics), optionally with its uncertainty: 1.0 or 1.0±0.5 (also typed "
+                          "1.0+-0.5).  fix: default 1 m ± 0.6 m (a source between the ground "
+                          "and 2 m); track: default 0.")(f)
     f = click.option("--sound-speed", "sound_speed_mps", type=FINITE, default=None,
                      help="Override the sound speed from the site's air, m/s.")(f)
     return f
