@@ -198,9 +198,10 @@ def uncertainty_budget(fix, delays, mic_positions_m, sound_speed_mps, *, sds, wi
         geom["suggest_mic_m"] = [round(float(v), 1) for v in spot]
         off = np.asarray(spot[:2], float) - geom["centre_m"]
         spot_bearing = float(np.degrees(np.arctan2(off[0], off[1])) % 360.0)
-        hint = (f"the source is outside the array (bearing {geom['bearing_deg']:.0f} deg from "
-                f"the array centre): add a mic out that way, best near ({spot[0]:.0f}, "
-                f"{spot[1]:.0f}) m (bearing {spot_bearing:.0f} deg; see tdoa plan)")
+        hint = (f"the source is outside the array (bearing {geom['bearing_deg']:.0f}° from "
+                f"the array centre): for this source, a mic out that way, best near "
+                f"({spot[0]:.0f}, {spot[1]:.0f}) m (bearing {spot_bearing:.0f}°); the planning "
+                f"map weighs every place of the site at once")
     elif dominant == "unexplained":
         hint = ("the delays disagree more than the declared uncertainties allow: check the "
                 "survey, the clocks and for echoes")
@@ -383,11 +384,11 @@ _LABELS = {"timing": "timing", "mic_positions": "mic positions", "sound_speed": 
 
 def budget_summary(budget) -> str:
     """One line for the printed summary, e.g.
-    ``budget: mic positions 71 %, timing 20 %, sound speed 9 % - re-survey mic M3``."""
+    ``uncertainty from: mic positions 71 %, timing 20 %, sound speed 9 % - re-survey mic M3``."""
     parts = [f"{_LABELS[k]} {100 * v:.0f} %" for k, v in
              sorted(budget["shares"].items(), key=lambda kv: -(kv[1] or 0.0))
              if v is not None and v >= 0.005]
-    line = "budget: " + ", ".join(parts) + " - " + budget["hint"]
+    line = "uncertainty from: " + ", ".join(parts) + " - " + budget["hint"]
     if not budget["declared"].get("mic_positions", True):
         line += (" (survey uncertainty not declared: timing-only, mic positions, clocks and air "
                  "taken as exact)")

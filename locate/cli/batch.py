@@ -64,13 +64,17 @@ def batch(ctx, manifest_path, jobs, scheduler, resume, summary_path, output_dir=
 
     finished = []
 
+    done = []
+
     def report(rec):
         finished.append(rec["status"] != "failed")
+        done.append(rec)
+        count = f"[{len(done)}/{len(tasks)}]"  # progress: tasks end in any order
         label = f"{rec['name']} ({rec['command']}, {Path(rec['site']).name}, {rec['span']})"
         if rec["status"] == "failed":
-            warn(f"task {label} failed: {rec['error']}")
+            warn(f"{count} task {label} failed: {rec['error']}")
         else:
-            echo(ctx, f"  {rec['status']:<8} {label}"
+            echo(ctx, f"  {count} {rec['status']:<8} {label}"
                       + (f": {rec['error']}" if rec["error"] else ""))
 
     try:

@@ -257,9 +257,9 @@ def geometry_options(f):
                      help="2: horizontal fix at a given source height; 3: full 3-D fix.")(f)
     f = click.option("--source-z", "source_z_m", type=HEIGHT, default=0.0,
                      help="Source height for 2-D fixes, metres above the ground (same datum as "
-                          "the mics), optionally with its uncertainty: 1.0 or 1.0+-0.5.  fix: "
-                          "default 1 m +- 0.6 m (a source between the ground and 2 m); "
-                          "track: default 0.")(f)
+                          "the mics), optionally with its uncertainty: 1.0 or 1.0±0.5 (also typed "
+                          "1.0+-0.5).  fix: default 1 m ± 0.6 m (a source between the ground "
+                          "and 2 m); track: default 0.")(f)
     f = click.option("--sound-speed", "sound_speed_mps", type=FINITE, default=None,
                      help="Override the sound speed from the site's air, m/s.")(f)
     return f
@@ -317,33 +317,77 @@ def write_fix_outputs(ctx, site, result, json_path, csv_path, geojson_path, map_
         announce(ctx, f"Map written to {map_path}")
 
 
+LONG_RUN = 20
+"""From this many fixes on, the printout ends with a summary line, repeated warnings are said
+once with a count and the per-fix uncertainty lines stay in the result JSON."""
+
+
 def print_fixes(ctx, site, cond, result):
+    from locate.results.documents import fix_label
+
     echo(ctx, f"{site.title}: {len(site.mics)} mics, sound speed "
-              f"{cond.sound_speed_mps:.2f} m/s ({cond.temperature_c:g} degC, "
+              f"{cond.sound_speed_mps:.2f} m/s ({cond.temperature_c:g} °C, "
               f"{cond.relative_humidity:g} % RH)"
-              + (f", wind {cond.wind_speed_mps:g} m/s from {cond.wind_from_deg:g} deg"
+              + (f", wind {cond.wind_speed_mps:g} m/s from {cond.wind_from_deg:g}° (from north)"
                  if cond.wind_speed_mps else ""))
-    for k, f in enumerate(result["fixes"], 1):
+    fixes = result["fixes"]
+    long_run = len(fixes) >= LONG_RUN
+    said = {}
+    for k, f in enumerate(fixes, 1):
         x, y, z = f["position_m"]
         e = f["ellipse95"]
         sd_z = result.get("source_z_sd_m")
         height = (f"z {z:.2f} m (solved)" if f["dims"] == 3 else
                   f"z {z:.2f} m ± {sd_z:.2f} m ({result.get('source_z_basis', 'given')})"
                   if sd_z else f"z {z:.2f} m (given)")
-        when = f"{f['t_s']:.3f} s" + (f" ({f['t_utc']})" if f.get("t_utc") else "")
-        echo(ctx, f"#{k} heard at {when}  ->  x {x:.2f} m, y {y:.2f} m, {height}")
-        echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} x "
+        label = fix_label(f, k)
+        span = f.get("span_s")
+        if f.get("event") is None and span and float(span[0]) == float(f["t_s"]):
+            when = f"span {float(span[0]):.3f}..{float(span[1]):.3f} s"  # not an onset
+        else:
+            when = f"heard at {f['t_s']:.3f} s"
+        when += f" ({f['t_utc']})" if f.get("t_utc") else ""
+        echo(ctx, f"#{label} {when}  ->  x {x:.2f} m, y {y:.2f} m, {height}")
+        echo(ctx, f"   95 % ellipse {fmt_length(e['semi_major_m'])} × "
                   f"{fmt_length(e['semi_minor_m'])} "
                   f"(half-axes), long axis {e['azimuth_deg']:.0f}° from north; timing residual "
-                  f"{f['residual_rms_s'] * 1e6:.1f} us; mics used {' '.join(f['used_mics'])}"
+                  f"{f['residual_rms_s'] * 1e6:.1f} µs; mics used {' '.join(f['used_mics'])}"
                   + (f"; rejected {' '.join(f['rejected_mics'])}" if f["rejected_mics"] else ""))
-        if f.get("uncertainty_budget"):
+        if f.get("uncertainty_budget") and not long_run:  # long runs: in the JSON only
             from locate.accuracy.budget import budget_summary
             echo(ctx, "   " + budget_summary(f["uncertainty_budget"]))
         for w in f["warnings"]:
-            warn(f"#{k}: {w}")
+            if long_run:
+                said.setdefault(w, []).append(label)
+            else:
+                warn(f"#{label}: {w}")
+    for w, labels in said.items():
+        if len(labels) == 1:
+            warn(f"#{labels[0]}: {w}")
+        else:
+            shown = ", ".join(f"#{v}" for v in labels[:5]) + (", …" if len(labels) > 5 else "")
+            warn(f"{len(labels)} fixes ({shown}): {w}")
+    if long_run:
+        echo(ctx, run_summary(result))
 
 
+def run_summary(result) -> str:
+    """The closing line of a long run: fixes, spans that gave none, fixes with warnings, and
+    the spread of the 95 % semi-majors."""
+    import numpy as np
+
+    fixes = result.get("fixes") or []
+    warned = sum(1 for f in fixes if f.get("warnings"))
+    refused = int(result.get("spans_without_fix") or 0)
+    majors = np.array([(f.get("ellipse95") or {}).get("semi_major_m") or np.nan
+                       for f in fixes], dtype=float)
+    majors = majors[np.isfinite(majors)]
+    text = (f"Summary: {len(fixes)} fix(es), {refused} span(s) without a fix, {warned} fix(es) "
+            "with a warning")
+    if majors.size:
+        text += (f"; 95 % semi-major median {fmt_length(float(np.median(majors)))}, largest "
+                 f"{fmt_length(float(majors.max()))}")
+    return text
 
 
 fmt_length = format_length  # the package's one length formatter

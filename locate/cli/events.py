@@ -6,6 +6,7 @@ import click
 
 from locate.cli.common import (
     FINITE,
+    announce,
     check_band,
     check_outputs,
     check_span_args,
@@ -56,16 +57,19 @@ def events(ctx, site_path, start_s, stop_s, band, threshold_db, json_path, timel
               + (f" ({result['span_utc'][0]} .. {result['span_utc'][1]})"
                  if result.get("span_utc") else ""))
     clock = any(r.get("t_utc") for r in rows)
-    echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'above bg':>9} {'mics':>5}  first mic"
+    echo(ctx, f"{'#':>3} {'first heard':>12} {'length':>8} {'over noise':>10} {'mics':>5}"
+              "  first mic"
               + ("  clock time (UTC)" if clock else ""))
     for k, r in enumerate(rows, 1):
-        echo(ctx, f"{k:>3} {r['t_s']:>10.3f} s {r['duration_s']:>6.3f} s {r['level_db']:>6.1f} dB "
+        echo(ctx, f"{k:>3} {r['t_s']:>10.3f} s {r['duration_s']:>6.3f} s "
+                  f"{r['level_db']:>7.1f} dB "
                   f"{r['n_mics']:>5}  {r['first_mic']}"
                   + (f"  {r['t_utc']}" if r.get("t_utc") else ""))
     for w in rec.warnings:
         warn(w)
     if json_path:
         write_json(json_path, result)
+        announce(ctx, f"Result written to {json_path}")
     if timeline_path:
         draw_timeline(ctx, rec, result, timeline_path)
     return rows

@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from locate.cli.common import (
+    announce,
     check_outputs,
     echo,
     fmt_db,
@@ -63,6 +64,7 @@ def level(ctx, site_path, result_path, fix_no, hemisphere, ground, json_path):
          + "no meteorology or reflections); not a compliance measurement.")
     if json_path:
         write_json(json_path, doc)
+        announce(ctx, f"Result written to {json_path}")
     return out
 
 
@@ -85,7 +87,8 @@ def _echo_level(ctx, lev, head):
     echo(ctx, "   band Hz   " + " ".join(f"{b:>6}" for b in lev["bands_hz"]))
     echo(ctx, "   Lw        " + " ".join(f"{_bound(v, u):>6}"
                                          for v, u in zip(lev["source_lw_db"], ups)))
-    echo(ctx, "   mic spread" + " ".join(f"{fmt_db(v):>6}" for v in lev["mic_spread_db"]))
+    echo(ctx, "   ±mics     " + " ".join(f"{fmt_db(v):>6}" for v in lev["mic_spread_db"]))
+    echo(ctx, "   (±mics: how far the mics' own estimates of Lw spread, dB)")
     if any(u is not None for u in ups):
         echo(ctx, "   (<N: the source's part is below N dB; the band is not clearly above the "
                   "noise)")

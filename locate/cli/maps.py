@@ -167,19 +167,19 @@ def _print_track(ctx, site, cond, doc, bearing_from_name):
               + ("  [FLAGGED: the model does not explain the windows]"
                  if doc.get("flagged") else ""))
     if doc.get("heading_deg") is not None:
-        echo(ctx, f"Heading {doc['heading_deg']:.1f} +- {doc['heading_sd_deg']:.1f} deg, "
-                  f"speed {doc['speed_mps']:.2f} +- {doc['speed_sd_mps']:.2f} m/s "
+        echo(ctx, f"Heading {doc['heading_deg']:.1f}° ± {doc['heading_sd_deg']:.1f}° from north, "
+                  f"speed {doc['speed_mps']:.2f} ± {doc['speed_sd_mps']:.2f} m/s "
                   f"({doc['speed_mps'] * 3.6:.1f} km/h)")
     elif pts:
         hs = [p["heading_deg"] for p in pts if p.get("heading_deg") is not None]
         vs = [p["speed_mps"] for p in pts if p.get("speed_mps") is not None]
         if hs and vs:
             echo(ctx, f"Heading and speed change along the track (per point in the result): "
-                      f"heading {hs[0]:.1f} -> {hs[-1]:.1f} deg, speed {min(vs):.2f} to "
+                      f"heading {hs[0]:.1f}° → {hs[-1]:.1f}°, speed {min(vs):.2f} to "
                       f"{max(vs):.2f} m/s")
     for t in doc.get("turns", []):
         if t.get("is_turn"):
-            echo(ctx, f"  turn of {t['heading_change_deg']:+.0f} deg at emission time "
+            echo(ctx, f"  turn of {t['heading_change_deg']:+.0f}° at emission time "
                       f"{t['t_s']:.2f} s")
     note = (doc.get("uncertainty") or {}).get("note")
     if note:
@@ -187,15 +187,15 @@ def _print_track(ctx, site, cond, doc, bearing_from_name):
     if pts:
         lag = max(p["lag_m"] for p in pts)
         ang = max(abs(p["lag_bearing_deg"]) for p in pts)
-        echo(ctx, f"Heard-from vs is-now: up to {lag:.1f} m and {ang:.1f} deg of bearing seen "
-                  f"from {bearing_from_name}")
+        echo(ctx, f"Where it was when the sound left vs where it is when heard: up to "
+                  f"{lag:.1f} m apart, {ang:.1f}° of bearing seen from {bearing_from_name}")
     for c in doc.get("closest_approach", []):
         echo(ctx, f"  closest to {c['name']}: {c['distance_m']:.1f} m at emission time "
                   f"{c['t_s']:.2f} s (heard {c['t_heard_s']:.2f} s)"
                   + ("" if c.get("within_span", True) else "  [outside the analysed span]"))
     dop = doc.get("doppler")
     if isinstance(dop, dict) and dop.get("speed_mps") is not None:
-        echo(ctx, f"Doppler speed {dop['speed_mps']:.2f} +- {dop.get('speed_sd_mps', 0):.2f} "
+        echo(ctx, f"Doppler speed {dop['speed_mps']:.2f} ± {dop.get('speed_sd_mps', 0):.2f} "
                   "m/s (independent check)")
 
 

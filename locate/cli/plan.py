@@ -12,6 +12,7 @@ from locate.cli.common import (
     fmt_length,
     load,
     parse_band,
+    progress_bar,
     site_inputs,
     transactional,
 )
@@ -78,20 +79,25 @@ def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duratio
         timing_sd_s = DEFAULT_TIMING_SD_S
         echo(ctx, f"No timing given: assuming {timing_sd_s * 1e6:g} µs per mic (use "
                   "--timing-sd or --band/--snr/--duration).")
-    res = plan_site(site, timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
-                    duration_s=duration_s, grid_step_m=grid_step_m, extent_m=ext,
-                    candidates=None if candidates == "none" else candidates, region=region,
-                    dims=dims, source_z_m=source_z_m, objective=objective,
-                    n_propose=n_propose if candidates != "none" else 0,
-                    max_semi_major_m=target_m)
+    with progress_bar(ctx, 2 if out_path else 1, "Planning") as bar:
+        res = plan_site(site, timing_sd_s=timing_sd_s, band_hz=band_hz, snr_db=snr_db,
+                        duration_s=duration_s, grid_step_m=grid_step_m, extent_m=ext,
+                        candidates=None if candidates == "none" else candidates, region=region,
+                        dims=dims, source_z_m=source_z_m, objective=objective,
+                        n_propose=n_propose if candidates != "none" else 0,
+                        max_semi_major_m=target_m)
+        bar.update(1)
+        if out_path:
+            from locate.draw import figures as plot
+            from locate.draw.plan import plan_figure
+            plot.save_figure(plan_figure(res, site), out_path)
+            bar.update(1)
     doc = res.to_dict()
     echo(ctx, _plan_summary(doc))
     if json_path:
         write_json(json_path, doc)
+        announce(ctx, f"Result written to {json_path}")
     if out_path:
-        from locate.draw import figures as plot
-        from locate.draw.plan import plan_figure
-        plot.save_figure(plan_figure(res, site), out_path)
         announce(ctx, f"Planning map written to {out_path}")
     return doc
 

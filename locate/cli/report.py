@@ -6,6 +6,7 @@ import click
 
 from locate.cli.common import (
     announce,
+    progress_bar,
     transactional,
 )
 
@@ -24,6 +25,8 @@ def report(ctx, site_path, result_paths, out_path, title):
     from the site file and its fix, track and level results."""
     from locate.report.build import make_report
 
-    path = make_report(site_path, list(result_paths), out_path, title=title)
+    with progress_bar(ctx, 1, "Drawing and writing the report") as bar:
+        path = make_report(site_path, list(result_paths), out_path, title=title)
+        bar.update(1)
     announce(ctx, f"Report written to {path}")
     return path

@@ -15,6 +15,7 @@ from locate.cli.common import (
     echo,
     load,
     parse_band,
+    progress_bar,
     site_inputs,
     transactional,
     warn,
@@ -85,7 +86,9 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
     rec = open_recordings(site)
     check_band(band_hz, rec.sample_rate_hz)
     cond = conditions_for(site)
-    fit, reports = calibrate(site, rec, cond, spans, points, band_hz=band_hz, point_sd_m=at_sd_m)
+    with progress_bar(ctx, 2 * len(spans), "Measuring the reference sound(s)") as bar:
+        fit, reports = calibrate(site, rec, cond, spans, points, band_hz=band_hz,
+                                 point_sd_m=at_sd_m, passes=2, progress=bar.update)
     write_atomic(out_path, synced_site_text(site, fit, out_path))
     staged = OutputSet.current().staged(out_path)
     load(staged or out_path)  # the new file must read back (before it is put in place)
@@ -96,5 +99,6 @@ def sync(ctx, site_path, at, start_s, stop_s, at2, start2_s, stop2_s, at_sd_m, b
         warn(w)
     if json_path:
         write_json(json_path, report)
+        announce(ctx, f"Result written to {json_path}")
     announce(ctx, f"New site file written to {out_path}")
     return report

@@ -83,9 +83,17 @@ def _caption_words(air, result, c, entries, kind):
     if kind == "track":
         words.append("track points are where the sound was emitted; time labels are emission "
                      "times")
-        words.append("95 % ellipses at intervals from each point's covariance (χ², 2 dof); "
-                     "arcs lead from an emission position to where the source is when its "
-                     "sound is heard")
+        grown = max([e.get("grown", 1.0) for e in entries] or [1.0])
+        majors = [e["e95"]["semi_major_m"] for e in entries if e["e95"] is not None]
+        if not math.isfinite(grown):
+            words.append("95 % ellipses (χ², 2 dof) are too small to draw at this scale: the "
+                         f"largest semi-major is {mk.format_length(max(majors))}")
+        else:
+            words.append("95 % ellipses at intervals from each point's covariance (χ², 2 dof)"
+                         + (f", drawn {grown:g} times enlarged as they would hide under the "
+                            "track" if grown > 1.0 else ""))
+        words.append("the arrows beside the track run from where a sound left the source to "
+                     "where the source is when that sound is heard")
         tr = result.get("track") or {}
         if tr.get("model"):
             words.append(f"motion model {tr['model']}")
@@ -300,7 +308,8 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
                 lab.protect(e["mirror_m"][:2], 5.0)
     for n in clipped:
         k = ell_of[n]
-        notes.append(f"the 95 % ellipse of {'fix' if kind == 'fix' else 'point'} {k + 1} "
+        notes.append(f"the 95 % ellipse of {'fix' if kind == 'fix' else 'point'} "
+                     f"{entries[k].get('label', k + 1) if kind == 'fix' else k + 1} "
                      f"(semi-major {mk.format_length(entries[k]['e95']['semi_major_m'])}) "
                      "reaches beyond the view")
 
@@ -327,7 +336,8 @@ def _compose(names, mics, result, entries, sketch, receivers, barriers, air, win
         for k in (ell_of if many else shown):
             g = 1.0 if many else grown[k]
             lab.point_label(entries[k]["position_m"][:2],
-                            str(k + 1) + (f" (×{g:g})" if g > 1.0 else ""), prefer=(1, 1),
+                            entries[k].get("label", str(k + 1))
+                            + (f" (×{g:g})" if g > 1.0 else ""), prefer=(1, 1),
                             dist_pt=5, fontsize=8, fontweight="bold", color=color)
     if len(lines) <= 15:
         for cs, text, at in lines:
@@ -446,7 +456,11 @@ def _draw_points(ax, lab, names, mics, rec, rejected, dead):
     for nm, p in zip(names, mics, strict=True):
         d = p[:2] - centre
         off = nm in rejected or nm in dead
-        lab.point_label(p[:2], nm, prefer=(1 if d[0] >= 0 else -1, 1 if d[1] >= 0 else -1),
+        sx, sy = (1 if d[0] >= 0 else -1), (1 if d[1] >= 0 else -1)
+        # beside the marker first (reads as its name), then above/below, diagonals last
+        order = [(sx, 0), (-sx, 0), (0, 1.3 * sy), (0, -1.3 * sy), (sx, sy), (sx, -sy),
+                 (-sx, sy), (-sx, -sy)]
+        lab.point_label(p[:2], nm, prefer=order[0], offsets=order, dist_pt=5.5,
                         fontsize=8.5, fontweight="bold",
                         color=PALETTE["rejected"] if off else PALETTE["mic"],
                         fontstyle="italic" if off else "normal")

@@ -13,7 +13,7 @@ from locate.draw import kit as mk
 from locate.draw.kit import ellipse_axes
 from locate.errors import ResultFileError
 from locate.physics.air import travel_time_s, wind_vector_mps
-from locate.results.documents import SCHEMA, check_schema
+from locate.results.documents import SCHEMA, check_schema, fix_label
 
 __all__ = ["SCHEMA", "check_result", "pair_used", "used_pairs", "delay_misfit_field", "mics_of",
            "wind_of"]
@@ -77,7 +77,8 @@ def check_result(result, *, file=None, kinds=("fix", "track")):
                                                                    f["used_mics"]],
              "used": bool(f.get("used", True)),
              "delays": list(f.get("delays") or []), "correlations": f.get("correlations"),
-             "mirror_m": None, "now_m": None, "e50": None, "e95": None}
+             "mirror_m": None, "now_m": None, "e50": None, "e95": None,
+             "label": fix_label(f, n + 1)}
         if e["span_s"] is None and e["t_s"] is not None and f.get("duration_s") is not None:
             e["span_s"] = [float(e["t_s"]), float(e["t_s"]) + float(f["duration_s"])]
         for src, dst in (("mirror_position_m", "mirror_m"), ("position_now_m", "now_m")):

@@ -127,11 +127,12 @@ def _compose(e, fix_index, delays, curves, pred, res):
     _residual_bars(fig.add_subplot(outer[nrows, :], label="residuals"), delays, used, res,
                    names, rotate)
     t = e["t_s"]
-    fig.text(0.075, 1 - 0.13 / fig_h, f"Pair diagnostics — fix {fix_index + 1}"
+    fig.text(0.075, 1 - 0.13 / fig_h, f"Pair diagnostics — fix {e.get('label', fix_index + 1)}"
              + (f", t {float(t):.2f} s" if t is not None else ""), ha="left", va="top",
              fontsize=10.5, fontweight="bold", color=PALETTE["ink"])
-    note = ("GCC-PHAT against lag, delay = t(second mic) − t(first). Shaded: search window; "
-            "small panel: about ±1 ms around the peak, with Δ = measured − predicted delay. "
+    note = ("GCC-PHAT against lag (ms), delay = t(second mic) − t(first). Dashed grey lines: the "
+            "edges of the search window (shaded beyond it); small panel: about ±1 ms around "
+            "the peak (bar under it: its lag scale), headed by Δ = measured − predicted delay. "
             "▼ and solid line: measured delay; dashed teal: delay predicted from the fix; "
             "grey: pair not used in the fix.")
     fig.text(0.075, 0.12 / fig_h, "\n".join(textwrap.wrap(note, 140)), ha="left",
@@ -152,10 +153,10 @@ def _pair_panel(ax, zx, d, cv, used, pred):
                       zorder=1.5)
     zx.set_yticks([])
     zx.set_xticks([])
-    if delay is not None and pred is not None:
-        zx.text(0.5, 0.03, f"Δ {(delay - pred) * 1e6:+.0f} µs", transform=zx.transAxes,
-                ha="center", va="bottom", fontsize=6.5, color=PALETTE["ink"],
-                path_effects=mk.HALO, zorder=6)
+    if delay is not None and pred is not None:  # above the panel, never over the curve
+        off_us = int(round((delay - pred) * 1e6))
+        zx.set_title("Δ " + (f"{off_us:+d}".replace("-", "−") if off_us else "0") + " µs",
+                     fontsize=6.8, pad=2, color=PALETTE["ink"])
     if cv is not None:
         lags = np.asarray(cv["lags_s"], dtype=float)
         corr = np.asarray(cv["correlation"], dtype=float)
@@ -165,13 +166,21 @@ def _pair_panel(ax, zx, d, cv, used, pred):
             ax.set_ylim(bottom - 0.05 * (top - bottom), top + 0.25 * (top - bottom))
         if lo_hi is not None and lags.size:
             width = lo_hi[1] - lo_hi[0]
-            ax.set_xlim(max(lags.min(), lo_hi[0] - 0.1 * width) * 1e3,
-                        min(lags.max(), lo_hi[1] + 0.1 * width) * 1e3)
+            ax.set_xlim(min(lags.min(), lo_hi[0] - 0.12 * width) * 1e3,
+                        max(lags.max(), lo_hi[1] + 0.12 * width) * 1e3)
         if marks and lags.size:
             mid = 0.5 * (min(marks) + max(marks))
             half = max(0.6e-3, 0.5 * (max(marks) - min(marks)) + 0.35e-3)
             sel = (lags >= mid - half) & (lags <= mid + half)
             zx.set_xlim((mid - half) * 1e3, (mid + half) * 1e3)
+            # an x scale under the zoom: a 0.5 ms bar (tick numbers would not fit)
+            bar_ms = 0.5 if half >= 0.4e-3 else 0.2
+            x_a = (mid - half) * 1e3 + 0.1 * 2 * half * 1e3
+            zx.plot([x_a, x_a + bar_ms], [-0.07, -0.07], color=PALETTE["ink"], lw=1.6,
+                    transform=zx.get_xaxis_transform(), clip_on=False, solid_capstyle="butt")
+            zx.text(x_a + bar_ms + 0.04 * 2 * half * 1e3, -0.07, f"{bar_ms:g} ms", fontsize=6.5,
+                    va="center", ha="left", transform=zx.get_xaxis_transform(),
+                    color=PALETTE["ink"])
             if np.count_nonzero(sel) >= 8:
                 zx.plot(lags[sel] * 1e3, corr[sel], color=tone, lw=1.0, zorder=2)
                 zt, zb = float(np.nanmax(corr[sel])), float(np.nanmin(corr[sel]))
@@ -188,8 +197,12 @@ def _pair_panel(ax, zx, d, cv, used, pred):
         if lo_hi is not None:
             width = lo_hi[1] - lo_hi[0]
             ax.set_xlim((lo_hi[0] - 0.1 * width) * 1e3, (lo_hi[1] + 0.1 * width) * 1e3)
-    if lo_hi is not None:
-        ax.axvspan(lo_hi[0] * 1e3, lo_hi[1] * 1e3, color=PALETTE["window"], zorder=0, lw=0)
+    if lo_hi is not None:  # shade what lies outside the search window, edges dashed
+        x0, x1 = ax.get_xlim()
+        for u, v in ((x0, lo_hi[0] * 1e3), (lo_hi[1] * 1e3, x1)):
+            if v > u:
+                ax.axvspan(u, v, color=PALETTE["window"], zorder=0, lw=0)
+        ax.set_xlim(x0, x1)
         for edge in lo_hi:
             ax.axvline(edge * 1e3, color=PALETTE["window_edge"], lw=0.6, ls="--", zorder=1)
     if delay is not None:
@@ -234,8 +247,13 @@ def _residual_bars(ax, delays, used, res, names, rotate):
                         path_effects=mk.HALO, zorder=5)
         keep = np.isfinite(vals) & (np.abs(vals) <= lim) & (sds > 0)
         if np.any(keep):
+            # drawn over the bars in the estimate colour, with a white halo line beneath, so
+            # a ±1σ inside its own bar still shows
             ax.errorbar(xs[keep], vals[keep], yerr=sds[keep], fmt="none",
-                        ecolor=PALETTE["ink"], elinewidth=0.8, capsize=2.5, zorder=4)
+                        ecolor="white", elinewidth=3.2, capsize=4.5, capthick=3.2, zorder=4)
+            ax.errorbar(xs[keep], vals[keep], yerr=sds[keep], fmt="o", ms=2.5,
+                        color=PALETTE["estimate"], ecolor=PALETTE["estimate"], elinewidth=1.4,
+                        capsize=4, capthick=1.4, zorder=5)
     ax.set_xticks(xs, names, fontsize=6.8, rotation=35 if rotate else 0,
                   ha="right" if rotate else "center", rotation_mode="anchor")
     ax.set_xlim(-0.6, n - 0.4)

@@ -19,6 +19,10 @@ from locate.draw.mapdata import delay_misfit_field, used_pairs
 __all__ = ["draw_hyperbolae", "draw_track", "time_ticks", "side_column", "zoom_panel", "densify"]
 
 
+VISIBLE_TRACK_ELLIPSE_PT = 12.0  # a 95 % ellipse narrower than this hides under the track
+MAX_TRACK_GROWTH = 100.0  # beyond this enlargement the ellipses are not drawn, only quoted
+
+
 def draw_track(ax, lab, result, pts_e, shown, ell_of, entries, view, pt_per_m):
     """Path through the emission positions, time labels, ellipses, is-now lines, heading."""
     color = PALETTE["track"]
@@ -31,23 +35,43 @@ def draw_track(ax, lab, result, pts_e, shown, ell_of, entries, view, pt_per_m):
         ax.plot(pts[~kept, 0], pts[~kept, 1], "o", ms=4.0, mfc="white", mec=color, mew=0.9,
                 zorder=11, gid="track-unused")
     lab.protect(densify(pts), 3.5)
-    # heard-from -> is-now: on a straight track the segment lies on the path itself, so it is
-    # drawn as an arc bowed to the left of the motion, at the ellipse intervals
+    # emission -> heard: where the source has moved on to while its sound travels.  On a
+    # straight track that stretch lies on the path itself, so it is drawn as a straight
+    # "dimension line" in a lane beside the path (left of the motion), with a tick at each end
     marks = set(ell_of)
+    lane_m = 7.0 / pt_per_m
     for e, k in zip(pts_e, shown, strict=True):
         if e["now_m"] is None or k not in marks:
             continue
-        a, b = e["position_m"][:2], e["now_m"][:2]
-        if np.hypot(*(b - a)) <= 0:
+        a, b = np.asarray(e["position_m"][:2], float), np.asarray(e["now_m"][:2], float)
+        d = float(np.hypot(*(b - a)))
+        if d <= 0:
             continue
-        ax.add_patch(FancyArrowPatch(a, b, connectionstyle="arc3,rad=-0.45", arrowstyle="-|>",
-                                     mutation_scale=7, color=PALETTE["now"], lw=1.0,
-                                     shrinkA=1, shrinkB=1, zorder=9, gid=f"now:{k + 1}"))
-        ax.plot(*b, "o", ms=3.2, mfc="white", mec=PALETTE["now"], mew=0.9, zorder=9)
-        mid, perp = 0.5 * (a + b), np.array([-(b - a)[1], (b - a)[0]])
-        lab.protect(mid + 0.225 * perp, 3.0)
+        side = np.array([-(b - a)[1], (b - a)[0]]) / d * lane_m
+        for end in (a, b):
+            ax.plot([end[0], end[0] + 1.3 * side[0]], [end[1], end[1] + 1.3 * side[1]], "-",
+                    color=PALETTE["now"], lw=0.8, zorder=9)
+        ax.add_patch(FancyArrowPatch(a + side, b + side, arrowstyle="-|>", mutation_scale=7,
+                                     color=PALETTE["now"], lw=1.1, shrinkA=0, shrinkB=0,
+                                     zorder=9, gid=f"now:{k + 1}"))
+        lab.protect(np.vstack([a + side, 0.5 * (a + b) + side, b + side]), 3.0)
+    # 95 % ellipses: enlarged by one round factor when they would hide under the track dots
+    across = [2.0 * entries[k]["e95"]["semi_major_m"] * pt_per_m for k in ell_of
+              if entries[k]["e95"] is not None]
+    across = [v for v in across if v > 0]
+    grow = 1.0
+    if across and max(across) < VISIBLE_TRACK_ELLIPSE_PT:
+        grow = max(mk.nice_length(VISIBLE_TRACK_ELLIPSE_PT / max(across)), 1.0)
     for k in ell_of:
-        mk.draw_ellipse(ax, entries[k]["position_m"][:2], entries[k]["e95"], 0.95,
+        e95 = entries[k]["e95"]
+        if grow > MAX_TRACK_GROWTH:  # too small to mean anything drawn: said in the caption
+            entries[k]["grown"] = float("inf")
+            continue
+        if grow > 1.0:
+            e95 = dict(e95, semi_major_m=e95["semi_major_m"] * grow,
+                       semi_minor_m=e95["semi_minor_m"] * grow)
+            entries[k]["grown"] = grow
+        mk.draw_ellipse(ax, entries[k]["position_m"][:2], e95, 0.95,
                         PALETTE["estimate"], gid=f"ellipse95:{k + 1}", zorder=8)
     tr = result.get("track") or {}
     if tr.get("heading_deg") is not None and len(pts):
@@ -124,14 +148,17 @@ def side_column(fig, ax, result, entries, shown, rejected, dead, have_lines, rec
             h.append(Line2D([], [], ls="none", marker="o", ms=4, mfc="white",
                             mec=PALETTE["track"], label="window left out\nof the fit"))
         if any(entries[k]["now_m"] is not None for k in shown):
-            h.append(Line2D([], [], color=PALETTE["now"], lw=1.0, marker="o", ms=3,
-                            mfc="white", label="on to where it is\nwhen heard"))
+            h.append(Line2D([], [], color=PALETTE["now"], lw=1.1, marker=">", ms=4,
+                            markevery=[1], label="moves on while its\nsound travels"))
     else:
         h.append(Line2D([], [], ls="none", marker="o", ms=6.5, color=color, mec="white",
                         label="estimate"))
         h.append(Patch(facecolor="none", edgecolor=color, lw=1.5, label="50 % ellipse"))
-    h.append(Patch(facecolor=(*mk.rgb(color), 0.12), edgecolor=color, lw=1.3,
-                   ls=(0, (5, 2.2)), label="95 % ellipse"))
+    grown = max([entries[k].get("grown", 1.0) for k in shown] or [1.0])
+    if math.isfinite(grown) and any(entries[k]["e95"] is not None for k in shown):
+        h.append(Patch(facecolor=(*mk.rgb(color), 0.12), edgecolor=color, lw=1.3,
+                       ls=(0, (5, 2.2)),
+                       label="95 % ellipse" + (f"\n(drawn ×{grown:g})" if grown > 1.0 else "")))
     if any(entries[k]["mirror_m"] is not None for k in shown):
         h.append(Line2D([], [], ls="none", marker="D", ms=5, mfc="none", mec=color,
                         label="mirror solution"))
@@ -160,8 +187,8 @@ def listing(result, entries, shown):
     for k in shown[:3]:
         e = entries[k]
         x, y = e["position_m"][:2]
-        lines.append(f"fix {k + 1}" + (f" · t {float(e['t_s']):.2f} s" if e["t_s"] is not None
-                                       else ""))
+        lines.append(f"fix {e.get('label', k + 1)}"
+                     + (f" · t {float(e['t_s']):.2f} s" if e["t_s"] is not None else ""))
         lines.append(f"  x {x:.2f} m, y {y:.2f} m")
         if e["e95"] is not None:
             a, b = e["e95"]["semi_major_m"], e["e95"]["semi_minor_m"]
@@ -204,7 +231,7 @@ def zoom_panel(fig, side, list_bottom, e, k, names, mics, c, wind, file):
     zax.plot(x, y, "o", ms=4, color=PALETTE["estimate"], mec="white", mew=0.8, zorder=30)
     mk.scale_bar(zax, zv, "ll", w * fw * 72.0 / (2 * half), fraction=0.3, label_size=7,
                  label="right")
-    zax.set_title(f"fix {k + 1}, enlarged", fontsize=7.5, loc="left", pad=2,
+    zax.set_title(f"fix {e.get('label', k + 1)}, enlarged", fontsize=7.5, loc="left", pad=2,
                   color=PALETTE["ink"])
     return True
 
@@ -225,6 +252,21 @@ def draw_hyperbolae(ax, e, k, names, mics, c, wind, view, n_grid, file, *, label
     for i, j, d in used_pairs(e, names, k, file):
         f = delay_misfit_field(mics, i, j, d, e["position_m"][2], xs, ys, c, wind)
         if not (f.min() < 0 < f.max()):
+            base = mics[j, :2] - mics[i, :2]
+            base_s = float(np.hypot(*base)) / c
+            if base_s > 0 and float(np.min(np.abs(f))) < 0.05 * base_s:
+                # the delay is (nearly) the whole baseline: the hyperbola has closed onto the
+                # baseline's extension beyond the nearer mic - drawn as that ray
+                near, far = (i, j) if d > 0 else (j, i)
+                u = (mics[near, :2] - mics[far, :2]) / (base_s * c)
+                reach = float(np.hypot(view[1] - view[0], view[3] - view[2]))
+                ray = np.array([mics[near, :2], mics[near, :2] + reach * u])
+                ax.plot(ray[:, 0], ray[:, 1], color=PALETTE["hyperbola"], lw=0.9, zorder=5,
+                        gid=f"hyperbola:{k + 1}:{names[i]}-{names[j]}" if label else None)
+                notes.append(f"the {names[i]}–{names[j]} delay is close to its largest possible "
+                             f"value, so the source lies near the line through both mics beyond "
+                             f"{names[near]} (drawn as a ray from {names[near]})")
+                continue
             notes.append(f"the hyperbola of {names[i]}–{names[j]} lies outside the view")
             continue
         cs = ax.contour(xs, ys, f, levels=[0.0], colors=[PALETTE["hyperbola"]],

@@ -102,7 +102,7 @@ def _field(ax, grid, levels, norm, cmap):
     if ok.any() and inner.size:
         cs = ax.contour(xs, ys, z, levels=inner, colors=[PALETTE["ink"]], linewidths=0.45,
                         alpha=0.75, zorder=2)
-        ax.clabel(cs, fmt=format_size, fontsize=6.8, inline=False)
+        ax.clabel(cs, fmt=format_size, fontsize=7.4, inline=False)
         for t in cs.labelTexts:
             t.set_path_effects(HALO)
             t.set_color(PALETTE["ink"])
@@ -154,7 +154,7 @@ def _underlay(ax, site):
                              lw=0.8, zorder=4.1))
         if s.get("label"):
             c = v.mean(axis=0)
-            ax.text(c[0], c[1], s["label"], ha="center", va="center", fontsize=6.8,
+            ax.text(c[0], c[1], s["label"], ha="center", va="center", fontsize=7.4,
                     color=PALETTE["shape_text"], style="italic", zorder=4.2, path_effects=HALO)
     for b in getattr(site, "barriers", ()):
         ln = np.asarray(b.line_m, float)
@@ -212,7 +212,7 @@ def _points(fig, ax, res, picks, lab_all, site):
         ln = np.asarray(b.line_m, float)
         k = int(np.argmax(ln[:, 1]))
         lab.point_label(ln[k], f"{b.label} ({b.height_m:g} m)", prefer=(0, 1.3), dist_pt=3,
-                        fontsize=6.8, color=PALETTE["barrier"], fontstyle="italic")
+                        fontsize=7.4, color=PALETTE["barrier"], fontstyle="italic")
 
 
 def _pick_name(res, p):
@@ -351,7 +351,7 @@ def _compose(res, site, width_in):
     cax = fig.add_axes([pos.x1 + 0.12 / width, pos.y0, cbar / width, pos.height],
                        label="colorbar")
     cb = fig.colorbar(cf, cax=cax, ticks=levels)
-    cb.ax.set_yticklabels([format_size(v) for v in levels], fontsize=7)
+    cb.ax.set_yticklabels([format_size(v) for v in levels], fontsize=7.5)
     cb.set_label(f"{100 * res.probability:.0f} % ellipse semi-major axis", fontsize=7.5)
     cb.ax.tick_params(length=2)
     title = f"{res.title} — where this array can locate a sound"
@@ -381,5 +381,5 @@ def _compose(res, site, width_in):
                fontsize=7.8, bbox_to_anchor=(left / width, (bottom - 0.42) / height),
                handlelength=1.6, columnspacing=1.6, borderaxespad=0.0)
     fig.text(left / width, (bottom - 0.42 - legend_h) / height, "\n".join(caption),
-             ha="left", va="top", fontsize=7.2, color=PALETTE["note"], linespacing=1.3)
+             ha="left", va="top", fontsize=7.5, color=PALETTE["note"], linespacing=1.3)
     return fig

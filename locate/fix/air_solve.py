@@ -372,10 +372,10 @@ def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wi
     t_imp = implied_temperature_c(c, air) if air is not None else None
     if z_sig > DISAGREE_SIGMA:
         site_t = (f" ({air.temperature_c:g}"
-                  + (f" +/- {air.temperature_sd_c:g}" if air.temperature_sd_c else "")
-                  + " degC)") if air is not None else ""
-        imp = f"; it corresponds to about {t_imp:.1f} degC" if t_imp is not None else ""
-        warnings.append(f"the sound speed fitted from the delays, {c:.3f} +/- {sd_c:.2g} m/s, "
+                  + (f" ± {air.temperature_sd_c:g}" if air.temperature_sd_c else "")
+                  + " °C)") if air is not None else ""
+        imp = f"; it corresponds to about {t_imp:.1f} °C" if t_imp is not None else ""
+        warnings.append(f"the sound speed fitted from the delays, {c:.3f} ± {sd_c:.2g} m/s, "
                         f"disagrees with {c_site:.2f} m/s from the site's air{site_t} by "
                         f"{z_sig:.1f} standard deviations{imp}: check air.temperature_c (or the "
                         "mic positions)")
@@ -386,8 +386,8 @@ def solve_air(mic_positions_m, delays, *, start_m, sound_speed_mps, air=None, wi
         d2 = float(diff @ np.linalg.solve(s, diff)) if np.all(np.isfinite(s)) else 0.0
         if d2 > _WIND_CHI2:
             speed, sd, frm = _wind_summary(w[:2], wind_cov)
-            warnings.append(f"the wind fitted from the delays, {speed:.2f} +/- {sd:.2g} m/s "
-                            f"from {frm:.0f} deg, disagrees with the site's "
+            warnings.append(f"the wind fitted from the delays, {speed:.2f} ± {sd:.2g} m/s "
+                            f"from {frm:.0f}° (from north), disagrees with the site's "
                             f"{np.hypot(*w0[:2]):.1f} m/s: check [air] wind_speed_mps and "
                             "wind_from_deg")
     t = model.arrivals(x)
@@ -459,11 +459,11 @@ def summary_lines(result) -> list[str]:
         if not a:
             continue
         t = a["implied_temperature_c"]
-        text = (f"#{k} sound speed {a['sound_speed_mps']:.3f} +/- {a['sound_speed_sd_mps']:.2g}"
+        text = (f"#{k} sound speed {a['sound_speed_mps']:.3f} ± {a['sound_speed_sd_mps']:.2g}"
                 f" m/s fitted (site air: {a['site_sound_speed_mps']:.2f} m/s"
-                + (f"; fitted speed ~ {t:.1f} degC" if t is not None else "") + ")")
+                + (f"; fitted speed ~ {t:.1f} °C" if t is not None else "") + ")")
         if a.get("solved_wind"):
-            text += (f"; wind {a['wind_speed_mps']:.2f} +/- {a['wind_speed_sd_mps']:.2g} m/s "
-                     f"from {a['wind_from_deg']:.0f} deg")
+            text += (f"; wind {a['wind_speed_mps']:.2f} ± {a['wind_speed_sd_mps']:.2g} m/s "
+                     f"from {a['wind_from_deg']:.0f}° (from north)")
         lines.append(text)
     return lines

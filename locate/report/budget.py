@@ -10,6 +10,7 @@ and the uncertainties that were assumed.
 from __future__ import annotations
 
 from locate.report import format as rf
+from locate.results.documents import fix_label
 
 __all__ = ["COMPONENT_NAMES", "budget_sections", "assumed_text"]
 
@@ -84,7 +85,7 @@ def budget_sections(result):
         gains = b.get("resurvey_gain") or {}
         mics = [{"name": m, "share": rf.percent(v, 1), "gain": rf.percent(gains.get(m), 1)}
                 for m, v in (b.get("mic_position_shares") or {}).items()]
-        out.append({"label": result.get("_label", ""), "fix": str(k), "rows": rows,
+        out.append({"label": result.get("_label", ""), "fix": fix_label(f, k), "rows": rows,
                     "hint": b.get("hint", ""), "note": _plain_note(b),
                     "method": b.get("method", ""), "mics": mics,
                     "gains": any(rf.finite(g) and float(g) > 0 for g in gains.values()),

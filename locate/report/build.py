@@ -23,12 +23,12 @@ from locate import __version__
 from locate.errors import OptionError, SiteFileError, TdoaError
 from locate.report import context as rc
 from locate.report import format as rf
-from locate.results.documents import check_same_site, check_schema
+from locate.results.documents import check_same_site, check_schema, fix_label
 
 __all__ = ["KINDS", "SECTIONS", "build_report", "make_report", "check_same_site",
            "recordings_info"]
 
-KINDS = ("fix", "track", "level")
+KINDS = ("fix", "track", "level", "plan")
 """Result kinds a report can show."""
 
 SECTIONS = ("summary", "setup", "maps", "results", "levels", "budget", "methods", "cautions")
@@ -88,6 +88,69 @@ def _map_png(site, result, notes) -> tuple[bytes, str]:
     return plot.figure_bytes(fig, "png", dpi=200), fig.tdoa_caption
 
 
+def _plan_png(site, result, notes):
+    """The planning map of a ``plan`` result, redrawn from the site with the result's own
+    settings (the JSON holds the numbers, not the picture); None, with a note, when the
+    recomputation does not give the same proposals (the site file changed since)."""
+    from locate.accuracy.plan_site import plan_site
+    from locate.draw import figures as plot
+    from locate.draw.plan import plan_figure
+
+    timing = result.get("timing") or {}
+    sds = timing.get("arrival_sd_s") or []
+    grid = result.get("grid") or {}
+    xs, ys = grid.get("x_m") or [], grid.get("y_m") or []
+    if timing.get("kind") != "arrival_sd" or not sds or len(set(sds)) != 1 or len(xs) < 2 \
+            or len(ys) < 2:
+        notes.append(f"{result['_label']}: the planning map is not redrawn (its timing model "
+                     "is not one arrival-time uncertainty for every mic); its numbers are in "
+                     "the at-a-glance section")
+        return None
+    proposals = result.get("proposals") or []
+    region = (result.get("region") or {}).get("kind") or "auto"
+    cands = (result.get("candidates") or {}).get("kind")
+    res = plan_site(site, timing_sd_s=float(sds[0]), grid_step_m=float(xs[1] - xs[0]),
+                    extent_m=(float(xs[0]), float(xs[-1]), float(ys[0]), float(ys[-1])),
+                    candidates=cands if proposals else None,
+                    region=region if region in ("polygon", "receivers", "extent") else "auto",
+                    dims=int(result.get("dims", 2)),
+                    source_z_m=float(result.get("source_z_m", 0.0)),
+                    objective=result.get("objective", "worst"), n_propose=len(proposals),
+                    max_semi_major_m=result.get("limit_m") if result.get("target_given")
+                    else None)
+    again = [p.position_m[:2] for p in res.proposals]
+    if len(again) != len(proposals) or any(
+            float(np.hypot(*(np.asarray(a, float) - np.asarray(p["position_m"][:2], float))))
+            > 0.01 for a, p in zip(again, proposals, strict=True)):
+        notes.append(f"{result['_label']}: the planning map is not redrawn: the site file no "
+                     "longer gives the same proposal (rerun the planning)")
+        return None
+    fig = plan_figure(res, site, width_in=PRINT_WIDTH_IN)
+    caption = getattr(fig, "tdoa_caption", "")
+    return plot.figure_bytes(fig, "png", dpi=200), caption
+
+
+def _plan_summary(result):
+    """One sentence for the plan's figure caption."""
+    frac = result.get("locatable_fraction")
+    text = []
+    if result.get("target_given"):
+        text.append(f"{rf.percent(frac, 0)} of the mapped area is located to within "
+                    f"{rf.length(result.get('limit_m'))} (95 % semi-major)")
+    for r in result.get("receivers") or []:
+        if isinstance(r, dict) and r.get("name"):
+            text.append(f"at {r['name']} a fix is expected to within "
+                        f"{rf.length(r.get('semi_major_m'))} (95 % semi-major)")
+    for p in result.get("proposals") or []:
+        pos = p["position_m"]
+        text.append(f"one more microphone at ({rf.num(pos[0], 0)}, {rf.num(pos[1], 0)}) m would "
+                    f"bring the {'worst' if result.get('objective') != 'mean' else 'mean'} "
+                    f"expected semi-major over the area of interest from "
+                    f"{rf.length(p.get('metric_before_m'))} to "
+                    f"{rf.length(p.get('metric_after_m'))}")
+    return "; ".join(text)
+
+
 def _map_alt(site, result):
     names = ", ".join(site.mic_names)
     rec = ", ".join(r.name for r in site.receivers)
@@ -98,7 +161,7 @@ def _map_alt(site, result):
                 ", with 95 % confidence ellipses along it")
     else:
         fixes = result.get("fixes") or []
-        where = "; ".join(f"fix {k} at x {rf.num(f['position_m'][0], 1)} m, y "
+        where = "; ".join(f"fix {fix_label(f, k)} at x {rf.num(f['position_m'][0], 1)} m, y "
                           f"{rf.num(f['position_m'][1], 1)} m" for k, f in enumerate(fixes, 1))
         what = f"{len(fixes)} located position(s) with 95 % confidence ellipses ({where})"
     return (f"Site map of {site.title}, local metres with north up: {len(site.mics)} "
@@ -194,6 +257,20 @@ def build_report(site, results, *, title=None, files=None, recordings=None, gene
             png, details = _map_png(site, r, notes)
             maps.append({"src": _data_uri(png), "alt": _map_alt(site, r),
                          "caption": caption, "details": details, "label": r["_label"]})
+    for r in results:
+        if r["kind"] != "plan":
+            continue
+        drawn = _plan_png(site, r, notes)
+        if drawn is not None:
+            maps.append({"src": _data_uri(drawn[0]),
+                         "alt": f"Planning map of {site.title}: the expected size of the 95 % "
+                                "ellipse of a fix at each point for the microphone layout"
+                                + (" and with the proposed microphone" if r.get("proposals")
+                                   else ""),
+                         "caption": "Where this microphone layout can locate a sound, and "
+                                    "where one more microphone would help most: "
+                                    + _plan_summary(r),
+                         "details": drawn[1], "label": r["_label"]})
     fix_sets = [rc.fix_section(r, site) for r in results if r["kind"] == "fix"]
     tracks = [rc.track_section(r, site) for r in results if r["kind"] == "track"]
     levels = []

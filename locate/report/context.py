@@ -18,6 +18,7 @@ from locate.report import format as rf
 from locate.report.budget import budget_sections
 from locate.report.levels import level_entries, level_sections
 from locate.report.methods import methods_section
+from locate.results.documents import fix_label
 
 __all__ = ["wgs84_of", "setup_section", "fix_section", "track_section", "level_sections",
            "budget_sections", "level_entries", "summary_lines", "cautions_of", "methods_section",
@@ -205,7 +206,7 @@ def fix_section(result, site):
         g = wgs84_of(f, site)
         span, band = f.get("span_s"), f.get("band_hz")
         rows.append({
-            "n": str(k), "t": rf.seconds(f.get("t_s"))
+            "n": fix_label(f, k), "t": rf.seconds(f.get("t_s"))
             + (f" ({f['t_utc'].replace('T', ' ')})" if f.get("t_utc") else ""),
             "x": rf.num(x, d), "y": rf.num(y, d), "z": rf.num(z, 2),
             "z_note": _z_note(f, result),
@@ -265,7 +266,7 @@ def track_section(result, site):
     used = sum(1 for p in pts if p.get("used", True))
     emits = [p["t_emit_s"] for p in pts if rf.finite(p.get("t_emit_s"))]
     facts = [
-        ("Heading (toward)", heading_text(tr)),
+        ("Heading (direction of travel, from north)", heading_text(tr)),
         ("Speed", speed_text(tr, kmh=True)),
         ("Motion model", {"straight": "straight line at constant speed",
                           "segments": "straight segments"}.get(tr.get("model"),

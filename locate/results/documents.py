@@ -26,6 +26,7 @@ __all__ = [
     "SCHEMA",
     "CAUTIONS",
     "write_atomic",
+    "fix_label",
     "write_json",
     "read_result",
     "check_result_fields",
@@ -475,3 +476,10 @@ def check_same_site(site, result, label):
                      f"by up to {format_length(moved[k])} (mic {names[k]}): the site file was "
                      "edited after the result was made")
     return notes
+
+
+def fix_label(entry, k: int) -> str:
+    """How a fix is numbered for people: the event's own number (as ``tdoa events`` lists
+    it) when the fix is of a detected event, else its place ``k`` (1-based) in the result."""
+    no = entry.get("event") if isinstance(entry, dict) else None
+    return str(no) if isinstance(no, int) and not isinstance(no, bool) and no > 0 else str(k)

@@ -261,7 +261,7 @@ def _closest(par, th, cov, pts, c, wind, span):
 
 def stationary_message(result: TrackResult) -> str:
     """The user message for a track whose source does not appear to move."""
-    return (f"the source appears stationary (fitted speed {result.speed_mps:.2f} +/- "
+    return (f"the source appears stationary (fitted speed {result.speed_mps:.2f} ± "
             f"{result.speed_sd_mps:.2f} m/s); locate it with `tdoa fix` instead of `tdoa track`")
 
 

@@ -85,6 +85,8 @@ def run_chunk(site_path, chunk: Chunk, options: dict) -> dict:
     except NothingFoundError as exc:
         return {"index": chunk.index, "entries": [],
                 "warnings": list(getattr(exc, "warnings", []))}
+    for entry in r["fixes"]:
+        entry.pop("event", None)  # numbered within the chunk, not the recording
     return {"index": chunk.index, "entries": r["fixes"], "warnings": r["warnings"]}
 
 

@@ -114,8 +114,10 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
             events = [ev for ev in events
                       if own_s[0] <= float(np.nanmin(ev.onset_s)) < own_s[1]]
         require_events(events, a, b)
+        number = {id(ev): k for k, ev in enumerate(events, 1)}  # as `tdoa events` lists them
         events, notes = choose_events(events, events_choice)
         warnings.extend(notes)
+        event_nos = [number.get(id(ev)) for ev in events]
         spans = plan_spans(events, rec, site.positions_m, cond)
         times = [float(np.nanmin(ev.onset_s)) for ev in events]
         onsets = [ev.onset_s for ev in events]
@@ -127,12 +129,14 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         spans = [(float(a), float(a + window_s)) for a in edges]
         times = [a for a, _ in spans]
         onsets = [None] * len(spans)
+        event_nos = [None] * len(spans)
     else:
         spans, times = [(start_s, stop_s)], [start_s]
         onsets = [None]
+        event_nos = [None]
     entries = []
     with progress("Locating", len(spans)) as bar:
-        for (a, b), t, on in zip(spans, times, onsets):
+        for (a, b), t, on, no in zip(spans, times, onsets, event_nos):
             try:
                 entry, fx, ds, _ = fix_span(rec, site, cond, a, b, band_hz=band_hz, dims=dims,
                                             source_z_m=source_z_m, reject=reject,
@@ -147,9 +151,12 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
                                   site, fx, ds, cond, dims=dims, source_z_sd_m=source_z_sd_m,
                                   solve_wind=solve_wind))
             except NothingFoundError as exc:
-                warnings.append(f"span {a:.3f}..{b:.3f} s: {exc.message}")
+                warnings.append((f"event {no} " if no is not None else "")
+                                + f"span {a:.3f}..{b:.3f} s: {exc.message}")
                 bar.update(1)
                 continue
+            if no is not None:
+                entry["event"] = no
             entries.append(entry)
             bar.update(1)
     if start_s is not None and window_s is None and len(entries) == 1:
@@ -174,8 +181,10 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         raise err
     extra = ({"source_z_sd_m": source_z_sd_m, "source_z_basis": source_z_basis}
              if dims == 2 else None)
-    return add_clock_times(fix_result(site, cond, entries, warnings=warnings, dims=dims,
-                                      source_z_m=source_z_m, extra=extra), rec, site)
+    result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
+                        source_z_m=source_z_m, extra=extra)
+    result["spans_without_fix"] = len(spans) - len(entries)
+    return add_clock_times(result, rec, site)
 
 
 def list_events(site, recordings, *, start_s=None, stop_s=None, band_hz=None,

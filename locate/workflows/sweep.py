@@ -118,9 +118,12 @@ def sweep_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, *
         shifts = np.zeros(len(names))
     move = shifts[pairs[:, 1]] - shifts[pairs[:, 0]]
     entries, missing = [], 0
+    # blocks small enough for a progress bar in steps of about 2 % (never under 24 windows)
+    n_windows = max(int((stop_s - start_s - window_s) // hop_s) + 1, 1)
+    block = int(min(240, max(24, -(-n_windows // 50))))
     for wd in recording_window_delays(shifted, window_s, hop_s, max_lag_s=max_lag,
                                       band_hz=band_hz, pairs=pairs, start_s=start_s,
-                                      stop_s=stop_s):
+                                      stop_s=stop_s, block_windows=block):
         wd.delay_s += move
         cov = wd.covariance_s2 if ground is None else wd.covariance_s2 + ground[None]
         bf = locate_batch(positions, wd.delay_s, cov, cond.sound_speed_mps,

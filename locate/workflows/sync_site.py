@@ -123,7 +123,7 @@ def sound_speed_sd_mps(site) -> float:
 
 
 def calibrate(site, recordings, cond, spans, points_m, *, band_hz=None, point_sd_m=0.0,
-              passes=2):
+              passes=2, progress=None):
     """Clock fit from one or two reference sounds.
 
     Parameters
@@ -142,6 +142,9 @@ def calibrate(site, recordings, cond, spans, points_m, *, band_hz=None, point_sd
     passes : int
         The delays are measured again with the previous pass's clocks applied (a drifting
         clock stretches a long reference sound; the second pass removes that), default 2.
+    progress : callable, optional
+        Called with 1 after each reference sound of each pass (``passes * len(spans)``
+        calls), e.g. a progress bar's ``update``.
 
     Returns
     -------
@@ -153,7 +156,7 @@ def calibrate(site, recordings, cond, spans, points_m, *, band_hz=None, point_sd
     rec = recordings
     for k in range(max(int(passes), 1)):
         fit, reports = _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz,
-                                 point_sd_m)
+                                 point_sd_m, progress)
         if k == passes - 1:
             break
         offsets = rec.offsets_s + (fit.offset_s - site_offset)
@@ -184,7 +187,8 @@ def _regrade_ground_echoes(ev, point, pos, cond, names):
                            + ", ".join(left))
 
 
-def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m):
+def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m,
+              progress=None):
     names = site.mic_names
     pos = site.positions_m
     sd_c = sound_speed_sd_mps(site)
@@ -224,6 +228,8 @@ def _one_pass(site, rec, cond, spans, points_m, site_offset, band_hz, point_sd_m
                         "correction_s": delta, "correction_sd_s":
                         np.sqrt(np.clip(np.diag(np.nan_to_num(cov, nan=np.inf)), 0, None)),
                         "warnings": warnings})
+        if progress is not None:
+            progress(1)
     scale = 1.0 + rec.drift_ppm * 1e-6
     cover = np.stack([(rec.start_s - rec.offsets_s) * scale,
                       (rec.stop_s - rec.offsets_s) * scale], axis=1)
@@ -341,9 +347,9 @@ def summary_lines(site, fit: ClockFit) -> list[str]:
     for k, name in enumerate(names):
         sd = fit.offset_sd_s[k]
         text = (f"  {name:<10} offset_s {fit.offset_s[k]:+.7f} s "
-                f"(+/- {_us(sd)})")
+                f"(± {_us(sd)})")
         if two:
-            text += f"   drift_ppm {fit.drift_ppm[k]:+.3f} (+/- {fit.drift_sd_ppm[k]:.3f})"
+            text += f"   drift_ppm {fit.drift_ppm[k]:+.3f} (± {fit.drift_sd_ppm[k]:.3f})"
         if k == fit.reference:
             text += "   reference"
         lines.append(text)
@@ -353,7 +359,7 @@ def summary_lines(site, fit: ClockFit) -> list[str]:
 def _us(v) -> str:
     if not np.isfinite(v):
         return "unknown"
-    return f"{v * 1e6:.2f} us" if v < 1e-3 else f"{v * 1e3:.2f} ms"
+    return f"{v * 1e6:.2f} µs" if v < 1e-3 else f"{v * 1e3:.2f} ms"
 
 
 def sync_report(site, cond, fit: ClockFit, events) -> dict:

@@ -211,11 +211,11 @@ def test_source_outside_the_array_is_called_geometry_limited_with_a_bearing():
     assert geo["limited"] and geo["outside_array"]
     assert geo["bearing_deg"] == pytest.approx(np.degrees(np.arctan2(130.0, 45.0)), abs=0.1)
     assert geo["gdop"] > B.GDOP_LIMIT
-    assert budget["hint"].startswith("the source is outside the array (bearing 71 deg")
+    assert budget["hint"].startswith("the source is outside the array (bearing 71°")
     x, y, _ = geo["suggest_mic_m"]
     bearing = np.degrees(np.arctan2(x - 20.0, y - 15.0)) % 360
     assert abs(bearing - geo["bearing_deg"]) <= 60.0 + 0.1  # on one of the candidate rays
-    assert f"(bearing {bearing:.0f} deg; see tdoa plan)" in budget["hint"]  # its own bearing
+    assert f"(bearing {bearing:.0f}°)" in budget["hint"]  # its own bearing
 
 
 def test_source_inside_the_array_is_not_geometry_limited():

@@ -325,3 +325,62 @@ def test_unknown_figure_format_is_an_option_error(tmp_path, fix_map):
         save_figure(fix_map, tmp_path / "map.jpg")
     with pytest.raises(OptionError, match="does not exist"):
         save_figure(fix_map, tmp_path / "nowhere" / "map.png")
+
+
+def test_a_source_on_a_baseline_extension_gets_a_ray_not_an_outside_the_view_note():
+    # Geometry (from memory, any acoustics text): on the line through two mics beyond one of
+    # them the delay is the whole baseline over c, and the hyperbola closes onto that ray.
+    global SOURCE
+    keep = SOURCE
+    try:
+        SOURCE = MICS[1] + 0.5 * (MICS[1] - MICS[0])  # beyond M2 on the M1-M2 line
+        res = exact_fix_result(rejected=(), cov=COV * 0.01)
+    finally:
+        SOURCE = keep
+    fig = draw_map(MICS, NAMES, res)
+    words = " ".join(t.get_text() for t in fig.texts).replace("\n", " ")
+    assert "M1–M2 lies outside the view" not in words
+    assert "beyond M2" in words
+    (ray,) = [a for a in by_gid(axes(fig, "map"), "hyperbola:1:M1-M2")]
+    xy = np.column_stack(ray.get_data())
+    src = np.asarray(res["fixes"][0]["position_m"][:2])
+    assert distance_to_polyline(src, xy) < 0.05  # the ray passes through the source (m)
+
+
+def test_track_connectors_are_straight_beside_the_path_and_every_legend_entry_is_drawn():
+    res = exact_track_result()
+    fig = draw_map(MICS, NAMES, res)
+    ax = axes(fig, "map")
+    v = np.array([27.0, 12.0])
+    for arrow in by_gid(ax, "now:"):
+        (a, b) = arrow._posA_posB  # the arrow's two ends (straight: no connection style arc)
+        d = np.asarray(b) - np.asarray(a)
+        # parallel to the motion within 1 degree (geometry: the source moves along v)
+        cosang = d @ v / (np.hypot(*d) * np.hypot(*v))
+        assert cosang > math.cos(math.radians(1.0))
+    legend = [t.get_text() for t in axes(fig, "legend").texts] if any(
+        a.get_label() == "legend" for a in fig.axes) else [
+        t.get_text() for leg in fig.legends for t in leg.get_texts()]
+    legend = legend or [t.get_text() for a in fig.axes if a.get_legend()
+                        for t in a.get_legend().get_texts()]
+    if any("95 % ellipse" in t for t in legend):
+        assert by_gid(ax, "ellipse95:")
+    tiny = exact_track_result()
+    for p in tiny["track"]["points"]:
+        p["covariance_m2"] = (np.eye(3) * 1e-10).tolist()  # 10 µm: nothing to see at map scale
+    fig = draw_map(MICS, NAMES, tiny)
+    legend = [t.get_text() for a in fig.axes if a.get_legend()
+              for t in a.get_legend().get_texts()]
+    assert not any("95 % ellipse" in t for t in legend)
+    assert not by_gid(axes(fig, "map"), "ellipse95:")
+    words = " ".join(t.get_text() for t in fig.texts).replace("\n", " ")
+    assert "too small to draw" in words
+
+
+def test_the_zoom_panels_carry_a_lag_scale_and_the_offset_sits_above_the_curve():
+    fig = panels_figure(exact_fix_result(curves=True))
+    zooms = [a for a in fig.axes if a.get_label().startswith("peak:")]
+    assert zooms
+    for zx in zooms:
+        assert zx.get_title().startswith("Δ ")
+        assert any(t.get_text().endswith(" ms") for t in zx.texts)

@@ -309,7 +309,7 @@ def test_track_heading_speed_and_points_equal_the_result_json(survey):
     page = Page(survey["html"])
     tr = track_result()["track"]
     facts = page.facts("track-1")
-    heading = facts["Heading (toward)"]
+    heading = facts["Heading (direction of travel, from north)"]
     assert_shown(heading, tr["heading_deg"])
     assert_shown(heading.split("±")[1], tr["heading_sd_deg"])
     speed = facts["Speed"]

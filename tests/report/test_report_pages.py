@@ -100,3 +100,30 @@ def test_the_map_page_renders_and_its_figure_text_prints_at_7_pt(demo_report):
     sizes = [t.get_fontsize() * scale for t in fig.findobj(Text)
              if t.get_visible() and t.get_text().strip()]
     assert min(sizes) >= MIN_PRINT_PT, min(sizes)
+
+
+def test_a_plan_result_goes_into_the_report_with_print_sized_text(tmp_path):
+    # the planning map joins the site maps, redrawn at the printed width; every text on it is
+    # at least MIN_PRINT_PT (common practice for print), and the caption is in plain words
+    from locate.accuracy.plan_site import plan_site
+    from locate.draw.plan import plan_figure
+
+    site_path = demo_dir() / "yard.toml"
+    code, _, err = run(["-q", "plan", site_path, "--source-z", "1", "--json",
+                        tmp_path / "plan.json"])
+    assert code == 0, err
+    code, _, err = run(["-q", "report", site_path, tmp_path / "plan.json", "-o",
+                        tmp_path / "r.html"])
+    assert code == 0, err
+    html = (tmp_path / "r.html").read_text()
+    assert "Where this microphone layout can locate a sound" in html
+    assert "one more microphone at (" in html
+    assert not FORBIDDEN.search(re.sub(r"<[^>]+>", " ", html.split("<body", 1)[1]))
+    site = load_site(site_path, require_audio=False)
+    res = plan_site(site, timing_sd_s=2e-5, candidates="auto", region="auto", source_z_m=1.0,
+                    n_propose=1)
+    fig = plan_figure(res, site, width_in=PRINT_WIDTH_IN)
+    fig.canvas.draw()
+    sizes = [t.get_fontsize() for t in fig.findobj(Text)
+             if t.get_visible() and t.get_text().strip()]
+    assert min(sizes) >= MIN_PRINT_PT, min(sizes)
