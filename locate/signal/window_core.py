@@ -18,11 +18,12 @@ from scipy import fft as sfft
 from scipy.ndimage import uniform_filter1d
 
 from locate.signal.delays import (
-    _VARIANCE_MARGIN,
     AMBIGUOUS_RATIO,
+    VARIANCE_MARGIN,
     WEAK_PEAK_SCORE,
-    _coherent_band,
-    _delay_covariance,
+    coherent_band,
+    delay_covariance,
+    newton_delays,
 )
 from locate.signal.window_peaks import coarse_peaks
 
@@ -118,24 +119,6 @@ def _median_over_pairs(coh, good):
     return np.nanmedian(np.where(use[:, :, None], coh, np.nan), axis=1)
 
 
-def _newton_exact(a, omega, limit_s):
-    """Newton steps on the exact cosine sum (as estimate_delays), rows of ``a`` (R, K)."""
-    a = np.asarray(a, dtype=complex)
-    phase = np.angle(a)
-    c = np.abs(a)
-    cw1, cw2 = c * omega, c * omega**2
-    d = np.zeros(a.shape[0])
-    for _ in range(6):
-        arg = phase + omega * d[:, None]
-        g1 = np.sum(cw1 * np.sin(arg), axis=1)
-        g2 = np.sum(cw2 * np.cos(arg), axis=1)
-        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
-        d = np.clip(d - step, -limit_s, limit_s)
-        if np.all(np.abs(step) < 1e-12):
-            break
-    return d
-
-
 def _fine_delays(a, omega, limit_s, taylor_s=None):
     """Newton maximisation of Re sum_k a_k exp(i omega_k d) over |d| <= limit: shape (...).
 
@@ -189,7 +172,8 @@ def _fine_delays(a, omega, limit_s, taylor_s=None):
         if np.all(np.abs(step) < 1e-12):
             break
     if outside.any():
-        d[outside] = _newton_exact(a[outside], omega, limit_s)
+        a_out = np.asarray(a[outside], dtype=complex)
+        d[outside] = newton_delays(np.abs(a_out), np.angle(a_out), omega, limit_s)
     return d
 
 
@@ -231,7 +215,7 @@ def chunk_delays(spec, g, workers):
     if g.auto_band:
         mask, mask_q = mask.copy(), mask_q.copy()
         for c in range(c_n):  # per window: the coherent band is a cumulative search
-            new = _coherent_band(g.freqs_q, ref_q[c], g.mask_q)
+            new = coherent_band(g.freqs_q, ref_q[c], g.mask_q)
             if new is not None and new.sum() * g.q >= 8:
                 lo, hi = g.freqs_q[new].min(), g.freqs_q[new].max()
                 mask[c] = g.mask & (g.freqs >= lo) & (g.freqs <= hi)
@@ -280,7 +264,7 @@ def chunk_delays(spec, g, workers):
 
 def _covariance(g, w, coh, s_auto, s_cross, mask):
     """Delay covariance of each window on the grid bins
-    (:func:`locate.signal.delays._delay_covariance`).
+    (:func:`locate.signal.delays.delay_covariance`).
 
     The sums over bins are Riemann sums on the grid (each grid bin stands for ``q`` bins, so
     the bin count ``n_samp`` is taken ``q`` times larger).  Windows where every pair carries
@@ -298,7 +282,7 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
     fast = (d_norm > 0).all(axis=1) & g.full_design
     cov = np.zeros((c_n, n_p, n_p))
     for c in np.flatnonzero(~fast):  # rare: dead pairs, two mics
-        cov[c] = _delay_covariance(g.pairs, n_mics, w[c], coh[c], s_auto[c], s_cross[c], om,
+        cov[c] = delay_covariance(g.pairs, n_mics, w[c], coh[c], s_auto[c], s_cross[c], om,
                                    n_eff, g.nfft, mask[c])[0]
     idx = np.flatnonzero(fast)
     if idx.size == 0:
@@ -326,5 +310,5 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
     model = covf[:, diag, diag]
     ratio = np.where(model > 0, np.sqrt(np.maximum(model, carter)
                                         / np.where(model > 0, model, 1.0)), 1.0)
-    cov[idx] = covf * ratio[:, :, None] * ratio[:, None, :] * _VARIANCE_MARGIN
+    cov[idx] = covf * ratio[:, :, None] * ratio[:, None, :] * VARIANCE_MARGIN
     return cov

@@ -38,11 +38,11 @@ import numpy as np
 from scipy import fft as sfft
 
 from locate.signal.delays import (
-    _COHERENCE_DOF,
-    _MIN_BAND_COHERENCE,
+    COHERENCE_DOF,
+    MIN_BAND_COHERENCE,
     DelaySet,
-    _band_mask,
     all_pairs,
+    band_mask,
 )
 from locate.signal.window_core import chunk_delays
 
@@ -131,14 +131,14 @@ class _Setup:
         self.max_lag_samp = np.minimum(np.ceil(max_lag_s * fs).astype(int) + 1, n - 1)
         self.nfft = sfft.next_fast_len(n + int(self.max_lag_samp.max()) + 1, real=True)
         freqs = sfft.rfftfreq(self.nfft, 1.0 / fs)
-        mask = _band_mask(freqs, band_hz, fs)
+        mask = band_mask(freqs, band_hz, fs)
         if not mask.any():
             raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
         self.auto_band = band_hz is None
-        self.width = int(np.ceil(_COHERENCE_DOF * self.nfft / n))
+        self.width = int(np.ceil(COHERENCE_DOF * self.nfft / n))
         self.dof = self.width * n / self.nfft
         raw = 1.0 - 1e-3 ** (1.0 / (self.dof - 1.0))  # as in estimate_delays (Carter 1987)
-        self.threshold = max((self.dof * raw - 1.0) / (self.dof - 1.0), _MIN_BAND_COHERENCE)
+        self.threshold = max((self.dof * raw - 1.0) / (self.dof - 1.0), MIN_BAND_COHERENCE)
         k = np.flatnonzero(mask)
         kmin, kmax = int(k[0]), int(k[-1])
         margin = self.width // 2 + 2
