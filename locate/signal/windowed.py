@@ -68,6 +68,11 @@ class WindowDelays:
     band_hz : ndarray, shape (W, 2)
     sample_rate_hz : float
     max_lag_s : ndarray, shape (P,)
+    second_lag_s : ndarray, shape (W, P)
+        Lag of the next separate correlation peak (the ground-echo check).
+    spectral : list of tuple
+        Per window (freqs (B,), weights (P, B), power (N, B)): the binned fine-delay weights
+        and mic powers the reflection model uses (``DelaySet.spectral_*``).
     """
 
     pairs: np.ndarray
@@ -83,6 +88,8 @@ class WindowDelays:
     band_hz: np.ndarray
     sample_rate_hz: float
     max_lag_s: np.ndarray
+    second_lag_s: np.ndarray | None = None
+    spectral: list | None = None
 
     def __len__(self) -> int:
         return len(self.t_s)
@@ -95,7 +102,11 @@ class WindowDelays:
             second_ratio=self.second_ratio[w], quality=tuple(self.quality[w]),
             t_s=float(self.t_s[w]), duration_s=self.duration_s,
             band_hz=tuple(float(v) for v in self.band_hz[w]),
-            sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s)
+            sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s,
+            second_lag_s=None if self.second_lag_s is None else self.second_lag_s[w],
+            **({} if self.spectral is None else dict(zip(
+                ("spectral_freqs_hz", "spectral_weight", "spectral_power"),
+                self.spectral[w], strict=True))))
 
     @classmethod
     def concatenate(cls, parts) -> WindowDelays:
@@ -103,7 +114,8 @@ class WindowDelays:
         parts = list(parts)
         cat = {k: np.concatenate([getattr(p, k) for p in parts]) for k in
                ("t_s", "delay_s", "sd_s", "covariance_s2", "peak", "score", "second_ratio",
-                "quality", "band_hz")}
+                "quality", "band_hz", "second_lag_s")}
+        cat["spectral"] = [s for p in parts for s in p.spectral]
         p0 = parts[0]
         return cls(pairs=p0.pairs, duration_s=p0.duration_s, sample_rate_hz=p0.sample_rate_hz,
                    max_lag_s=p0.max_lag_s, **cat)
@@ -287,16 +299,18 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
     else:
         parts = [chunk_delays(_spectra(x, g, st, workers), g, workers) for st in groups]
     keys = ("delay_s", "sd_s", "covariance_s2", "peak", "score", "second_ratio", "quality",
-            "band_hz")
+            "band_hz", "second_lag_s")
     n_p = len(pairs)
     empty = {"delay_s": (0, n_p), "sd_s": (0, n_p), "covariance_s2": (0, n_p, n_p),
              "peak": (0, n_p), "score": (0, n_p), "second_ratio": (0, n_p),
-             "quality": (0, n_p), "band_hz": (0, 2)}
+             "quality": (0, n_p), "band_hz": (0, 2), "second_lag_s": (0, n_p)}
     out = {k: (np.concatenate([p[k] for p in parts]) if parts else
                np.zeros(empty[k], dtype="<U9" if k == "quality" else float)) for k in keys}
     if offsets_s is not None:
         off = np.asarray(offsets_s, dtype=float)
         out["delay_s"] = out["delay_s"] + (off[pairs[:, 1]] - off[pairs[:, 0]])
+        out["second_lag_s"] = out["second_lag_s"] + (off[pairs[:, 1]] - off[pairs[:, 0]])
+    out["spectral"] = [s for p in parts for s in p["spectral"]]
     return WindowDelays(pairs=pairs, t_s=float(t0_s) + starts / fs, duration_s=n / fs,
                         sample_rate_hz=fs, max_lag_s=max_lag_s, **out)
 

@@ -123,6 +123,18 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         if window_s > stop_s - start_s:
             raise OptionError(f"window {window_s:g} s is longer than the span "
                               f"{stop_s - start_s:g} s", field="window_s")
+        if not keep_curves and not solve_air:  # the batched windows (same treatment)
+            from locate.workflows.windows import window_fixes
+
+            n_win = int(np.floor((stop_s - start_s) / window_s + 1e-9))
+            with progress("Locating", n_win) as bar:
+                entries, notes = window_fixes(
+                    rec, site, cond, start_s, stop_s, window_s, band_hz=band_hz, dims=dims,
+                    source_z_m=source_z_m, source_z_sd_m=source_z_sd_m, reject=reject,
+                    progress=bar.update)
+            warnings.extend(notes)
+            return _finish(site, rec, cond, entries, warnings, dims, source_z_m,
+                           source_z_sd_m, source_z_basis)
         edges = np.arange(start_s, stop_s - window_s + 1e-9, window_s)
         spans = [(float(a), float(a + window_s)) for a in edges]
         times = [a for a, _ in spans]
@@ -152,6 +164,12 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
                 continue
             entries.append(entry)
             bar.update(1)
+    return _finish(site, rec, cond, entries, warnings, dims, source_z_m, source_z_sd_m,
+                   source_z_basis)
+
+
+def _finish(site, rec, cond, entries, warnings, dims, source_z_m, source_z_sd_m,
+            source_z_basis):
     # the reads' channel notes, unless a fix already said the same (its own figures)
     said = ({same_shape(w) for e in entries for w in e["warnings"]}
             | {same_shape(w) for w in warnings})
