@@ -204,8 +204,9 @@ def chunk_delays(spec, g, workers):
     norm = 2.0 * np.count_nonzero(g.mask) / g.m  # irfft(mask)[0]: no DC or Nyquist bin
     r = _inverse(cross, g.mask / (np.maximum(mag, tiny) * norm), g, workers)
     # (this pass's score only picks the pairs for the consensus below: a sparser floor will do)
+    first = g.first_band if g.auto_band else lo_hi
     lag0, peak, score, second, second_lag = coarse_peaks(
-        r, g, np.broadcast_to(lo_hi, (c_n, 2)), stride=6)
+        r, g, np.broadcast_to(first, (c_n, 2)), stride=6)
 
     # 2. coherence after removing the coarse lag; consensus over the pairs that look good
     rot = cross * _linear_phase(g.omega, lag0).astype(cross.dtype)

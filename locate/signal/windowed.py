@@ -134,7 +134,7 @@ class _Setup:
     """Sizes, bins and grids shared by every window of one call."""
 
     def __init__(self, fs, n, hop, n_mics, pairs, max_lag_s, band_hz, oversample, step=None,
-                 single=None):
+                 single=None, search_hz=None):
         self.fs, self.n, self.hop = fs, n, hop
         self.pairs = pairs
         self.ii, self.jj = pairs[:, 0], pairs[:, 1]
@@ -143,10 +143,15 @@ class _Setup:
         self.max_lag_samp = np.minimum(np.ceil(max_lag_s * fs).astype(int) + 1, n - 1)
         self.nfft = sfft.next_fast_len(n + int(self.max_lag_samp.max()) + 1, real=True)
         freqs = sfft.rfftfreq(self.nfft, 1.0 / fs)
-        mask = band_mask(freqs, band_hz, fs)
+        full = band_mask(freqs, None, fs)
+        # the first (PHAT) pass's band for the main-lobe exclusion, as estimate_delays
+        self.first_band = np.array([freqs[full].min(), freqs[full].max()])
+        mask = band_mask(freqs, band_hz if band_hz is not None else search_hz, fs)
         if not mask.any():
             raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
         self.auto_band = band_hz is None
+        if self.auto_band:  # the band found bin for bin, as estimate_delays
+            step = 1
         self.width = int(np.ceil(COHERENCE_DOF * self.nfft / n))
         self.dof = self.width * n / self.nfft
         raw = 1.0 - 1e-3 ** (1.0 / (self.dof - 1.0))  # as in estimate_delays (Carter 1987)
@@ -233,7 +238,8 @@ def _spectra(x, g: _Setup, starts, workers):
 
 def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag_s,
                             band_hz=None, pairs=None, offsets_s=None, t0_s=0.0, workers=None,
-                            chunk=8, oversample=1.25, coherence_step=None) -> WindowDelays:
+                            chunk=8, oversample=1.25, coherence_step=None,
+                            search_band_hz=None) -> WindowDelays:
     """Delays, uncertainties and quality of every pair in sliding windows.
 
     Parameters
@@ -260,6 +266,10 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
         Windows processed together (memory ~ chunk x P x band bins x 16 bytes x 12).
     oversample : float
         Sampling of the decimated correlation relative to its Nyquist rate (>= 1.2).
+    search_band_hz : (float, float), optional
+        Without ``band_hz``: where the band is searched for (default 20 Hz .. 0.45 fs, as
+        ``estimate_delays``).  A sound known to stay below some frequency (a first pass over
+        the span) lets the inverse transforms run at a decimated size.
     coherence_step : int, optional
         Evaluate the smoothed coherence, the weights and the covariance integrands on every
         this-many bins (default: an eighth of the smoothing width when the band is given,
@@ -287,7 +297,8 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
     starts = window_starts(x.shape[1], n, hop)
     pairs = all_pairs(x.shape[0]) if pairs is None else np.asarray(pairs, int).reshape(-1, 2)
     max_lag_s = np.broadcast_to(np.asarray(max_lag_s, float), (len(pairs),)).copy()
-    g = _Setup(fs, n, hop, x.shape[0], pairs, max_lag_s, band_hz, oversample, coherence_step)
+    g = _Setup(fs, n, hop, x.shape[0], pairs, max_lag_s, band_hz, oversample, coherence_step,
+               search_hz=search_band_hz)
     workers = workers if workers is not None else -1
     chunk = max(int(chunk), 1)
     groups = [starts[k:k + chunk] for k in range(0, len(starts), chunk)]

@@ -169,6 +169,9 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
         shifted, shifts = recordings, np.zeros(len(names))
     move = shifts[pairs[:, 1]] - shifts[pairs[:, 0]]
     lag = max_lag if not np.any(move) else np.maximum(max_lag - np.abs(move), 0.0) + 1e-3
+    # without a band: searched for in every window, up to half again the first pass's top
+    # (a steady source keeps its band; the inverse transforms then run at a decimated size)
+    search = None if band_hz is not None else (20.0, min(1.5 * pilot.band_hz[1], 0.45 * fs))
     sds, models = fix_sds(site, dims, source_z_sd_m)
     z_sd = source_z_sd_m if dims == 2 else 0.0
     kw = dict(dims=dims, source_z_m=source_z_m, reject=reject, mic_names=names,
@@ -183,7 +186,7 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
         block, res = shifted.read(a_s, b_s)
         wd = estimate_delays_windows(block, fs, n / fs, hop / fs, max_lag_s=lag,
                                      band_hz=band_hz, pairs=pairs, offsets_s=res + shifts,
-                                     t0_s=a_s, workers=workers)
+                                     t0_s=a_s, workers=workers, search_band_hz=search)
         del block
         spans = [(float(t), float(t) + n / fs) for t in wd.t_s]
         absent = [bool(_absent_mics(recordings, site, cond, a, b)) for a, b in spans]
