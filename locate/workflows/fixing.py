@@ -6,7 +6,7 @@ fix, events) over a :class:`locate.io.audio.Recordings` reader.  Nothing here wr
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 
 import numpy as np
 
@@ -19,6 +19,7 @@ from locate.results.geojson import add_wgs84_positions
 from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
 from locate.signal.echoes import onset_mismatch
 from locate.signal.event_scan import scan_recordings
+from locate.workflows.conditions import Conditions, conditions_for
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
            "delay_warnings", "fix_sds", "finish_entry", "search_lags_s",
@@ -26,39 +27,6 @@ __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_resul
            "air_fit_extra"]
 
 MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
-
-
-@dataclass
-class Conditions:
-    """Propagation conditions of a run."""
-
-    sound_speed_mps: float
-    wind_mps: np.ndarray
-    temperature_c: float
-    relative_humidity: float
-    wind_speed_mps: float
-    wind_from_deg: float
-    notes: list = field(default_factory=list)
-
-    def to_dict(self) -> dict:
-        return {
-            "sound_speed_mps": round(self.sound_speed_mps, 3),
-            "temperature_c": self.temperature_c,
-            "relative_humidity": self.relative_humidity,
-            "wind_speed_mps": self.wind_speed_mps,
-            "wind_from_deg": self.wind_from_deg,
-        }
-
-
-def conditions_for(site, sound_speed_mps=None) -> Conditions:
-    """Sound speed and wind for a site (``sound_speed_mps`` overrides the air model)."""
-    air = site.air
-    c = float(sound_speed_mps) if sound_speed_mps is not None else air.sound_speed_mps()
-    if not 250.0 <= c <= 400.0:
-        raise OptionError(f"sound speed {c:g} m/s is not plausible for air (250-400 m/s)",
-                          field="sound_speed_mps")
-    return Conditions(c, air.wind_mps(), air.temperature_c, air.relative_humidity,
-                      air.wind_speed_mps, air.wind_from_deg)
 
 
 def _array_spread_s(positions_m, cond):

@@ -24,6 +24,7 @@ from locate.workflows.fixing import (
     require_events,
     scan_events,
 )
+from locate.workflows.progress import no_progress
 
 __all__ = ["locate_recordings", "list_events", "same_shape", "no_progress"]
 
@@ -31,23 +32,6 @@ __all__ = ["locate_recordings", "list_events", "same_shape", "no_progress"]
 def same_shape(message: str) -> str:
     """A warning with its numbers blanked: the same note about other figures compares equal."""
     return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
-
-
-class _Quiet:
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        return False
-
-    def update(self, n):
-        pass
-
-
-def no_progress(label, total):
-    """The default progress: nothing shown (``progress(label, total)`` -> context manager with
-    ``update(n)``)."""
-    return _Quiet()
 
 
 def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=None,
