@@ -50,9 +50,9 @@ from locate.workflows.fixing import (
 
 __all__ = ["window_fixes", "BLOCK_WINDOWS"]
 
-BLOCK_WINDOWS = 32
-"""Windows analysed together: a block of 8 channels of 0.5 s windows at 48 kHz holds ~16 s of
-audio (~50 MB in float64 with its band spectra): memory does not grow with the span."""
+BLOCK_WINDOWS = 16
+"""Windows analysed together: a block of 8 channels of 0.5 s windows at 48 kHz holds ~8 s of
+audio (~25 MB in float64 with its band spectra): memory does not grow with the span."""
 
 
 def _batched_fix(bf, w, names, dims):
@@ -159,7 +159,7 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
     max_lag = search_lags_s(site, cond, pairs)
     # each mic's windows cut at its arrival offset (locate.fix.align), from a first pass over
     # the start of the span (as one span's second pass, with the offsets of the first)
-    pilot_stop = min(stop_s, start_s + max(2.0, 4.0 * window_s))
+    pilot_stop = min(stop_s, start_s + max(1.0, 2.0 * window_s))
     signals, residual = recordings.read(start_s, pilot_stop)
     pilot = estimate_delays(signals, fs, max_lag_s=max_lag, band_hz=band_hz, pairs=pairs,
                             offsets_s=residual)
