@@ -39,6 +39,7 @@ from locate.signal.delays import all_pairs, estimate_delays
 from locate.signal.windowed import estimate_delays_windows
 from locate.workflows.fixing import (
     _absent_mics,
+    _aligned_delays,
     delay_warnings,
     finish_entry,
     fix_sds,
@@ -190,10 +191,13 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
         del block
         spans = [(float(t), float(t) + n / fs) for t in wd.t_s]
         absent = [bool(_absent_mics(recordings, site, cond, a, b)) for a, b in spans]
-        sets = []
-        for w in range(len(wd)):
-            ds = replace(wd.window(w), max_lag_s=max_lag)
-            sets.append(ds)
+        sets = [replace(wd.window(w), max_lag_s=max_lag) for w in range(len(wd))]
+        if not np.any(shifts):  # no steady sound at the first pass: as one span, window by
+            for w, (a, b) in enumerate(spans):  # window (a sound across a window's ends)
+                if not absent[w]:
+                    samples, _ = recordings.read(a, b)
+                    sets[w] = _aligned_delays(recordings, samples, sets[w], a, b, band_hz,
+                                              max_lag, False)
         # 1. the ground reflection at a first, timing-only fix (batched)
         if ground_datum_m(site) is not None:
             first = locate_batch(positions, wd.delay_s, wd.covariance_s2, cond.sound_speed_mps,
