@@ -120,15 +120,13 @@ def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_m
                if sd > 0 else np.array([max(src[2], _MIN_SOURCE_Z_M)]))
     lags, ratios = _ground_paths(src, mics[ok], heights, sound_speed_mps, wind_mps)
 
-    def rss(model):  # model (n, B); common spectrum per bin and level per mic removed
-        r = log_p - model
-        r = r - r.mean(axis=0, keepdims=True)
-        r = r - r.mean(axis=1, keepdims=True)
-        return float(np.sum(r**2))
-
-    table = np.array([[rss(np.log(np.abs(1.0 + q * g[:, None] * np.exp(
-        -1j * om[None, :] * lag[:, None])) ** 2)) for q in _Q_GRID]
-        for lag, g in zip(lags, ratios, strict=True)])  # (H, Q)
+    # every height and q at once: |1 + q g e^{-i omega lag}|^2 = 1 + (q g)^2 + 2 q g cos(omega lag)
+    cos = np.cos(om[None, None, :] * lags[:, :, None])  # (H, n, B)
+    qg = _Q_GRID[None, :, None, None] * ratios[:, None, :, None]  # (H, Q, n, 1)
+    r = log_p - np.log(np.maximum(1.0 + qg**2 + 2.0 * qg * cos[:, None], 1e-300))
+    r -= r.mean(axis=-2, keepdims=True)  # common spectrum per bin removed
+    r -= r.mean(axis=-1, keepdims=True)  # level per mic removed
+    table = np.einsum("hqnb,hqnb->hq", r, r)  # (H, Q) residual sums of squares
     best = float(np.min(table))
     n_res = log_p.size - log_p.shape[1] - log_p.shape[0]
     sigma2 = best / max(n_res, 1)

@@ -53,7 +53,7 @@ def usability_notes(rec, span_m, sound_speed_mps):
 def check(ctx, site_path, dims, timeline_path=None):
     """Validate the site file and recordings; print geometry and warnings."""
     from locate.io.audio import open_recordings
-    from locate.workflows.fixing import conditions_for
+    from locate.workflows.conditions import conditions_for
 
     site = load(site_path, dims)
     if timeline_path:

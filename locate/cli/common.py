@@ -132,7 +132,7 @@ def progress_bar(ctx, length, label):
     show = sys.stderr.isatty() and not ctx.obj.get("quiet")
     if show:
         return click.progressbar(length=max(int(length), 1), label=label, file=sys.stderr)
-    from locate.workflows.locating import no_progress
+    from locate.workflows.progress import no_progress
 
     return no_progress(label, length)
 

@@ -43,9 +43,8 @@ from locate.errors import NothingFoundError, OptionError
 @click.option("--hop", "hop_s", type=FINITE, default=None,
               help="With --window --sweep: step between windows (s; default: the window).")
 @click.option("--sweep", is_flag=True,
-              help="With --window: the fast path for one steady source over a long span "
-                   "(windowed delays, batched locator; no per-window echo check or budget) "
-                   "and a summary on screen.")
+              help="With --window: a summary on screen and compact JSON (the same windows, "
+                   "checks and budget as --window alone); allows --hop.")
 @click.option("--threshold", "threshold_db", type=FINITE, default=10.0, show_default=True,
               help="Event detection: dB above the background.")
 @click.option("--panels", "panels_path", type=click.Path(dir_okay=False), default=None,
@@ -112,7 +111,7 @@ def fix(ctx, site_path, start_s, stop_s, band, dims, source_z_m, sound_speed_mps
         warnings = list(site.warnings) + list(rec.warnings)
         return run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims,
                          source_z_m, not no_reject, warnings, json_path, csv_path, geojson_path,
-                         map_path)
+                         map_path, source_z_sd_m=source_z_sd_m)
     if scheduler is not None and chunk_s is None:
         raise OptionError("--scheduler runs the chunks of --chunk: give --chunk SECONDS",
                           field="--scheduler")

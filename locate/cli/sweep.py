@@ -1,5 +1,8 @@
-"""``tdoa fix --window W --sweep``: option checks and the run (see
-:mod:`locate.workflows.sweep`)."""
+"""``tdoa fix --window W --sweep``: option checks and the run.
+
+The windows are those of ``fix --window`` (:func:`locate.workflows.windows.window_fixes`,
+each with its delays, checks and budget); ``--sweep`` only chooses the output: a summary on
+screen, compact JSON, and ``--hop`` for overlapping windows."""
 
 from __future__ import annotations
 
@@ -26,25 +29,27 @@ def check_sweep_args(window_s, hop_s, sweep, start_s, solve_air, panels_path):
 
 
 def run_sweep(ctx, rec, site, cond, start_s, stop_s, window_s, hop_s, band_hz, dims, source_z_m,
-           reject, warnings, json_path, csv_path, geojson_path, map_path):
-    """``fix --window W --sweep``: every window at once (locate.workflows.sweep), summary on
-    screen."""
+              reject, warnings, json_path, csv_path, geojson_path, map_path, source_z_sd_m=0.0):
+    """``fix --window W --sweep``: the windows of ``fix --window``, a summary on screen and
+    compact JSON."""
     from locate.workflows.fixing import add_clock_times, fix_result
-    from locate.workflows.sweep import SWEEP_NOTE, sweep_fixes, sweep_summary_lines, sweep_verdict
+    from locate.workflows.sweep import sweep_summary_lines, sweep_verdict
+    from locate.workflows.windows import window_fixes
 
     hop_s = window_s if hop_s is None else hop_s
     n_windows = int((stop_s - start_s - window_s) // hop_s) + 1
     with progress_bar(ctx, n_windows, "Locating windows") as bar:
-        entries, notes = sweep_fixes(rec, site, cond, start_s, stop_s, window_s, hop_s,
-                                     band_hz=band_hz, dims=dims, source_z_m=source_z_m,
-                                     reject=reject, progress=bar.update)
+        entries, notes = window_fixes(rec, site, cond, start_s, stop_s, window_s, hop_s,
+                                      band_hz=band_hz, dims=dims, source_z_m=source_z_m,
+                                      source_z_sd_m=source_z_sd_m, reject=reject,
+                                      progress=bar.update)
     warnings = warnings + notes + [w for w in rec.warnings if w not in warnings]
     if not entries:
         for w in warnings:
             warn(w)
         raise NothingFoundError("no window gave a usable fix (see the warnings above)")
     verdict = sweep_verdict(entries)
-    result = fix_result(site, cond, entries, warnings=verdict + warnings + [SWEEP_NOTE],
+    result = fix_result(site, cond, entries, warnings=verdict + warnings,
                         dims=dims, source_z_m=source_z_m)
     add_clock_times(result, rec, site)
     lines, window_warnings = sweep_summary_lines(entries, window_s, hop_s, length=fmt_length)

@@ -119,7 +119,7 @@ def _standardised_residuals(d, q, a, tau, cov):
 
 def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, pairs=None,
                  wind_mps=None, dims=2, source_z_m=0.0, reject=True, fallback=True,
-                 reject_p_value=REJECT_P_VALUE) -> BatchFix:
+                 reject_p_value=REJECT_P_VALUE, extra_covariance_s2=None) -> BatchFix:
     """Locate a stationary source for each of W delay sets.
 
     Parameters
@@ -143,6 +143,10 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
         :func:`locate.fix.solver.locate_source`; otherwise they keep the batched answer (flagged by
         their p-value and ``converged``).
     reject_p_value : float
+    extra_covariance_s2 : array_like, shape (W, P, P) or (P, P), optional
+        Added to the delay covariance after the closure test, as in ``locate_source``: a
+        closure misfit scales the measurement part only, never the declared survey, clock
+        and air part.
 
     Returns
     -------
@@ -188,6 +192,12 @@ def locate_batch(mic_positions_m, delays_s, covariance_s2, sound_speed_mps, *, p
             inflation[scale] = chi2_c[scale] / dof_c
             cov_u[scale] *= inflation[scale][:, None, None]
             single[f[drop]] = True
+        if extra_covariance_s2 is not None:  # measurement part (scaled) + the declared part
+            extra = np.broadcast_to(np.asarray(extra_covariance_s2, dtype=float),
+                                    (n_w, n_p, n_p))
+            q = q * inflation[:, None, None] + extra
+            t, cu, _ = _arrival_times(d[ok], q[ok], a)
+            tau[ok], cov_u[ok] = t, cu
     c, wind = float(sound_speed_mps), None if wind_mps is None else np.asarray(wind_mps, float)
     tau_f = np.zeros((n_w, n_mics))
     tau_f[:, 1:] = tau

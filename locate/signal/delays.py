@@ -40,6 +40,15 @@ __all__ = [
     "multipath_bias_s",
     "WEAK_PEAK_SCORE",
     "AMBIGUOUS_RATIO",
+    # shared with the windowed estimator (locate.signal.windowed) and the onset delays
+    "band_mask",
+    "coherent_band",
+    "delay_covariance",
+    "binned_weights",
+    "newton_delays",
+    "COHERENCE_DOF",
+    "MIN_BAND_COHERENCE",
+    "VARIANCE_MARGIN",
 ]
 
 WEAK_PEAK_SCORE = 6.0
@@ -48,9 +57,11 @@ WEAK_PEAK_SCORE = 6.0
 AMBIGUOUS_RATIO = 0.7
 """A separate correlation peak at least this fraction of the highest makes a pair 'ambiguous'."""
 
-_COHERENCE_DOF = 32.0  # degrees of freedom of the frequency-smoothed coherence estimate
-_MIN_BAND_COHERENCE = 0.05  # bias-corrected coherence below which a bin carries no signal
-_VARIANCE_MARGIN = 1.1
+COHERENCE_DOF = 32.0
+"""Degrees of freedom of the frequency-smoothed coherence estimate."""
+MIN_BAND_COHERENCE = 0.05
+"""Bias-corrected coherence below which a bin carries no signal."""
+VARIANCE_MARGIN = 1.1
 """Factor on the modelled delay variance.  Calibrated by Monte Carlo on the simulator: at high
 coherence the linearised model misses a few per cent (weights estimated from the same data,
 signal self-noise); over 0-20 dB SNR, bursts and bangs, the scatter/model sd ratio is then
@@ -195,7 +206,7 @@ def geometric_max_lag_s(mic_positions_m, pairs, sound_speed_mps, *, wind_speed_m
     return dist / c_slow * 1.02 + np.asarray(margin_s, dtype=float)
 
 
-def _band_mask(freqs_hz, band_hz, sample_rate_hz):
+def band_mask(freqs_hz, band_hz, sample_rate_hz):
     lo, hi = (20.0, 0.45 * sample_rate_hz) if band_hz is None else band_hz
     return (freqs_hz >= lo) & (freqs_hz <= hi)
 
@@ -230,7 +241,7 @@ def gcc_phat(x, y, sample_rate_hz, *, max_lag_s=None, band_hz=None):
     fs = float(sample_rate_hz)
     nfft = sfft.next_fast_len(x.size + y.size - 1, real=True)
     freqs = sfft.rfftfreq(nfft, 1.0 / fs)
-    mask = _band_mask(freqs, band_hz, fs)
+    mask = band_mask(freqs, band_hz, fs)
     g = np.conj(sfft.rfft(x, nfft)) * sfft.rfft(y, nfft)
     g = np.where(mask, g / np.maximum(np.abs(g), 1e-300), 0.0)
     r = sfft.irfft(g, nfft) / max(sfft.irfft(mask.astype(float), nfft)[0], 1e-300)
@@ -241,7 +252,7 @@ def gcc_phat(x, y, sample_rate_hz, *, max_lag_s=None, band_hz=None):
     return lags / fs, r[lags % nfft]
 
 
-def _coherent_band(freqs, coherence, mask):
+def coherent_band(freqs, coherence, mask):
     """Contiguous band holding the coherent signal: 0.5 %..99.5 % of the coherent weight.
 
     ``coherence`` is the (bias-corrected) median coherence over pairs, shape (K,).  Scattered
@@ -249,7 +260,7 @@ def _coherent_band(freqs, coherence, mask):
     does not stretch to reach them.
     """
     wts = np.where(mask, coherence / (1.0 - coherence), 0.0)
-    wts = np.where(coherence > 2 * _MIN_BAND_COHERENCE, wts, 0.0)
+    wts = np.where(coherence > 2 * MIN_BAND_COHERENCE, wts, 0.0)
     total = wts.sum()
     if total <= 0 or np.count_nonzero(wts) < 8:
         return None
@@ -258,6 +269,41 @@ def _coherent_band(freqs, coherence, mask):
     hi = freqs[min(np.searchsorted(cum, 0.995), len(freqs) - 1)]
     # widen by 5 % each side so the band edges keep their (small) coherent contribution
     return mask & (freqs >= lo / 1.05) & (freqs <= hi * 1.05)
+
+
+def newton_delays(weight, phase, omega, limit_s, steps=6):
+    """Fine delays: Newton steps on the continuous weighted correlation.
+
+    Maximises ``sum_k weight_k cos(phase_k + omega_k d)`` over ``|d| <= limit_s`` for every
+    row, starting at d = 0, on the exact cosine sums (no interpolation bias); stops when every
+    step is below 1 ps.  A row without curvature stays at 0.
+
+    Parameters
+    ----------
+    weight, phase : ndarray, shape (R, K)
+    omega : ndarray, shape (K,)
+        Angular frequencies, rad/s.
+    limit_s : float
+    steps : int
+        Most Newton steps.
+
+    Returns
+    -------
+    ndarray, shape (R,)
+    """
+    weight = np.asarray(weight, dtype=float)
+    d = np.zeros(weight.shape[0])
+    cw1 = weight * omega
+    cw2 = cw1 * omega
+    for _ in range(int(steps)):
+        arg = phase + omega[None, :] * d[:, None]
+        g1 = np.sum(cw1 * np.sin(arg), axis=1)
+        g2 = np.sum(cw2 * np.cos(arg), axis=1)
+        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
+        d = np.clip(d - step, -limit_s, limit_s)
+        if np.all(np.abs(step) < 1e-12):
+            break
+    return d
 
 
 def _smooth(a, width, axis=-1):
@@ -372,13 +418,13 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
         lo_hi = (float(freqs[mask].min()), float(freqs[mask].max())) if mask.any() else (0, fs / 2)
         return _coarse_peaks(r, max_lag_samp, fs, lo_hi), lo_hi
 
-    mask = _band_mask(freqs, band_hz, fs)
+    mask = band_mask(freqs, band_hz, fs)
     if not mask.any():
         raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
     (lag0, peak, score, second, seg, lags, inside, second_lag), lo_hi = phat_peaks(mask)
 
     # Coherence after removing the coarse lag (frequency smoothing, Daniell estimator).
-    width = int(np.ceil(_COHERENCE_DOF * nfft / n_samp))
+    width = int(np.ceil(COHERENCE_DOF * nfft / n_samp))
     dof = width * n_samp / nfft
     rot = cross * np.exp(1j * omega[None, :] * lag0[:, None])
     s_cross = _smooth(rot.real, width) + 1j * _smooth(rot.imag, width)
@@ -391,11 +437,11 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     # degrees of freedom exceeds x with probability (1 - x)^(n - 1) (Carter 1987); the
     # bias-corrected threshold below corresponds to a 1e-3 false-alarm probability per cell.
     raw_threshold = 1.0 - 1e-3 ** (1.0 / (dof - 1.0))
-    threshold = max((dof * raw_threshold - 1.0) / (dof - 1.0), _MIN_BAND_COHERENCE)
+    threshold = max((dof * raw_threshold - 1.0) / (dof - 1.0), MIN_BAND_COHERENCE)
     good = (score >= WEAK_PEAK_SCORE) & (second < AMBIGUOUS_RATIO)
     ref = np.median(coh[good] if good.any() else coh, axis=0)  # consensus coherence (K,)
     if band_hz is None:
-        new_mask = _coherent_band(freqs, ref, mask)
+        new_mask = coherent_band(freqs, ref, mask)
         if new_mask is not None and new_mask.sum() >= 8:
             mask = new_mask
             lo_hi = (float(freqs[mask].min()), float(freqs[mask].max()))
@@ -430,29 +476,16 @@ def estimate_delays(signals, sample_rate_hz, *, max_lag_s, band_hz=None, pairs=N
     # Fine delay: maximise sum c_k cos(phi_k + omega_k d) with c_k = w_k |G_k| / |G_smooth|,
     # over the bins that carry weight only.
     kb = np.flatnonzero(np.any(w > 0, axis=0))
-    om_b = omega[kb]
-    phase = np.angle(rot[:, kb])
     c = w[:, kb] * mag[:, kb] / np.maximum(np.abs(s_cross[:, kb]), 1e-300)
-    d = np.zeros(n_pairs)
-    cw1 = c * om_b
-    cw2 = cw1 * om_b
-    for _ in range(6):
-        arg = phase + om_b[None, :] * d[:, None]
-        g1 = np.sum(cw1 * np.sin(arg), axis=1)
-        g2 = np.sum(cw2 * np.cos(arg), axis=1)
-        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
-        d = np.clip(d - step, -1.5 / fs, 1.5 / fs)
-        if np.all(np.abs(step) < 1e-12):
-            break
-    delay = lag0 + d
-    cov, nsr = _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft,
+    delay = lag0 + newton_delays(c, np.angle(rot[:, kb]), omega[kb], 1.5 / fs)
+    cov, nsr = delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft,
                                  mask)
     # each mic's power without its noise (signal share 1 / (1 + noise-to-signal ratio)), so
     # that the notches of a reflection are not filled by the noise floor
     power = np.abs(spec[:, kb]) ** 2
     if nsr is not None and nsr.shape == power.shape:
         power = power / (1.0 + nsr)
-    spec_f, spec_w, spec_p = _binned_weights(freqs[kb], c, power)
+    spec_f, spec_w, spec_p = binned_weights(freqs[kb], c, power)
     sd = np.sqrt(np.diag(cov))
 
     quality = []
@@ -494,7 +527,7 @@ _COARSE_BINS = 128  # bins for the modelled correlation curve (resolves lags of 
 _MAX_MULTIPATH_LAG_S = 4e-3  # second paths later than this give a separate peak (not a bias)
 
 
-def _binned_weights(freqs_hz, c, power):
+def binned_weights(freqs_hz, c, power):
     """The fine-delay weights c_k of every pair summed, and each mic's smoothed power averaged,
     into at most ``_SPECTRAL_BINS`` bins.
 
@@ -597,7 +630,7 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain, *, coarse=True):
     return d
 
 
-def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):
+def delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nfft, mask):
     """Covariance of the fine delays from the linearised phase-error model, and the per-mic
     noise-to-signal ratio of every weighted bin (N, K_w) it was built on.
 
@@ -657,7 +690,7 @@ def _delay_covariance(pairs, n_mics, w, coh, s_auto, s_cross, omega, n_samp, nff
     ratio = np.where(usable & (model > 0), np.sqrt(np.maximum(model, carter)
                                                    / np.where(model > 0, model, 1.0)), 1.0)
     cov = cov * np.outer(ratio, ratio)
-    cov *= _VARIANCE_MARGIN
+    cov *= VARIANCE_MARGIN
     bad = ~usable
     if bad.any():
         cov[bad, :] = 0.0

@@ -35,7 +35,13 @@ from __future__ import annotations
 import numpy as np
 from scipy import fft as sfft
 
-from locate.signal.delays import AMBIGUOUS_RATIO, WEAK_PEAK_SCORE, DelaySet, all_pairs
+from locate.signal.delays import (
+    AMBIGUOUS_RATIO,
+    WEAK_PEAK_SCORE,
+    DelaySet,
+    all_pairs,
+    newton_delays,
+)
 
 __all__ = ["onset_delays", "ONSET_GUARD_S", "GATE_S", "MIN_BACKGROUND_S"]
 
@@ -185,17 +191,7 @@ def onset_delays(signals, sample_rate_hz, onset_index, *, max_lag_s, pairs=None,
 
     # fine delay: Newton on sum w cos(phi + omega (lag0 + d))
     phase = np.angle(cross * np.exp(1j * omega[None, :] * lag0[:, None]))
-    d = np.zeros(n_pairs)
-    cw1, cw2 = w * omega, w * omega**2
-    for _ in range(8):
-        arg = phase + omega[None, :] * d[:, None]
-        g1 = np.sum(cw1 * np.sin(arg), axis=1)
-        g2 = np.sum(cw2 * np.cos(arg), axis=1)
-        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
-        d = np.clip(d - step, -1.5 / fs, 1.5 / fs)
-        if np.all(np.abs(step) < 1e-12):
-            break
-    delay = lag0 + d
+    delay = lag0 + newton_delays(w, phase, omega, 1.5 / fs, steps=8)
 
     cov = _covariance(pairs, n_mics, w, snr, omega, length, nfft) * _VARIANCE_MARGIN
     sd = np.sqrt(np.diag(cov))

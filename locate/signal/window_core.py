@@ -18,11 +18,13 @@ from scipy import fft as sfft
 from scipy.ndimage import uniform_filter1d
 
 from locate.signal.delays import (
-    _VARIANCE_MARGIN,
     AMBIGUOUS_RATIO,
+    VARIANCE_MARGIN,
     WEAK_PEAK_SCORE,
-    _coherent_band,
-    _delay_covariance,
+    binned_weights,
+    coherent_band,
+    delay_covariance,
+    newton_delays,
 )
 from locate.signal.window_peaks import coarse_peaks
 
@@ -118,24 +120,6 @@ def _median_over_pairs(coh, good):
     return np.nanmedian(np.where(use[:, :, None], coh, np.nan), axis=1)
 
 
-def _newton_exact(a, omega, limit_s):
-    """Newton steps on the exact cosine sum (as estimate_delays), rows of ``a`` (R, K)."""
-    a = np.asarray(a, dtype=complex)
-    phase = np.angle(a)
-    c = np.abs(a)
-    cw1, cw2 = c * omega, c * omega**2
-    d = np.zeros(a.shape[0])
-    for _ in range(6):
-        arg = phase + omega * d[:, None]
-        g1 = np.sum(cw1 * np.sin(arg), axis=1)
-        g2 = np.sum(cw2 * np.cos(arg), axis=1)
-        step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
-        d = np.clip(d - step, -limit_s, limit_s)
-        if np.all(np.abs(step) < 1e-12):
-            break
-    return d
-
-
 def _fine_delays(a, omega, limit_s, taylor_s=None):
     """Newton maximisation of Re sum_k a_k exp(i omega_k d) over |d| <= limit: shape (...).
 
@@ -189,7 +173,8 @@ def _fine_delays(a, omega, limit_s, taylor_s=None):
         if np.all(np.abs(step) < 1e-12):
             break
     if outside.any():
-        d[outside] = _newton_exact(a[outside], omega, limit_s)
+        a_out = np.asarray(a[outside], dtype=complex)
+        d[outside] = newton_delays(np.abs(a_out), np.angle(a_out), omega, limit_s)
     return d
 
 
@@ -219,7 +204,9 @@ def chunk_delays(spec, g, workers):
     norm = 2.0 * np.count_nonzero(g.mask) / g.m  # irfft(mask)[0]: no DC or Nyquist bin
     r = _inverse(cross, g.mask / (np.maximum(mag, tiny) * norm), g, workers)
     # (this pass's score only picks the pairs for the consensus below: a sparser floor will do)
-    lag0, peak, score, second = coarse_peaks(r, g, np.broadcast_to(lo_hi, (c_n, 2)), stride=6)
+    first = g.first_band if g.auto_band else lo_hi
+    lag0, peak, score, second, second_lag = coarse_peaks(
+        r, g, np.broadcast_to(first, (c_n, 2)), stride=6)
 
     # 2. coherence after removing the coarse lag; consensus over the pairs that look good
     rot = cross * _linear_phase(g.omega, lag0).astype(cross.dtype)
@@ -231,7 +218,7 @@ def chunk_delays(spec, g, workers):
     if g.auto_band:
         mask, mask_q = mask.copy(), mask_q.copy()
         for c in range(c_n):  # per window: the coherent band is a cumulative search
-            new = _coherent_band(g.freqs_q, ref_q[c], g.mask_q)
+            new = coherent_band(g.freqs_q, ref_q[c], g.mask_q)
             if new is not None and new.sum() * g.q >= 8:
                 lo, hi = g.freqs_q[new].min(), g.freqs_q[new].max()
                 mask[c] = g.mask & (g.freqs >= lo) & (g.freqs <= hi)
@@ -247,9 +234,10 @@ def chunk_delays(spec, g, workers):
     factor = v[:, None, :] * isq[:, ii] * isq[:, jj]
     norm2 = 2.0 * np.einsum("cpk,cpk->cp", factor, mag) / g.m
     r2 = _inverse(cross, factor / np.maximum(norm2, tiny)[..., None], g, workers)
-    lag2, _, score2, second2 = coarse_peaks(r2, g, bands)
+    lag2, _, score2, second2, second_lag2 = coarse_peaks(r2, g, bands)
     score = np.where(second_pass[:, None], score2, 0.0)
     second = np.where(second_pass[:, None], second2, second)
+    second_lag = np.where(second_pass[:, None], second_lag2, second_lag)
     moved = second_pass[:, None] & (np.abs(lag2 - lag0) > max(0.5 / g.fs, 0.5 * g.step_s))
     if moved.any():
         cw, pw = np.nonzero(moved)
@@ -265,22 +253,43 @@ def chunk_delays(spec, g, workers):
     kb = np.flatnonzero(np.any(w > 0, axis=(0, 1)))
     kb = slice(int(kb[0]), int(kb[-1]) + 1) if kb.size else slice(0, 0)  # zero weights: no-ops
     limit = 1.5 * max(g.step_s, 1.0 / g.fs)
-    d = _fine_delays(w[..., kb] * rot[..., kb] / np.maximum(np.abs(s_cross[..., kb]), tiny),
-                     g.omega[kb], limit, taylor_s=limit / 3.0)
+    a_fine = w[..., kb] * rot[..., kb] / np.maximum(np.abs(s_cross[..., kb]), tiny)
+    d = _fine_delays(a_fine, g.omega[kb], limit, taylor_s=limit / 3.0)
     delay = lag0 + d
     w_q, coh_q, s_cross_q = w[..., grid], coh[..., grid], s_cross[..., grid]
 
-    cov = _covariance(g, w_q, coh_q, s_auto_q, s_cross_q, mask_q)
+    cov, nsr = _covariance(g, w_q, coh_q, s_auto_q, s_cross_q, mask_q)
     sd = np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
     quality = np.where(second >= AMBIGUOUS_RATIO, "ambiguous",
                        np.where((score < WEAK_PEAK_SCORE) | ~np.isfinite(sd), "weak", "good"))
+    spectral = _spectral(g, spec, w, np.abs(a_fine), kb, nsr)
     return dict(delay_s=delay, sd_s=sd, covariance_s2=cov, peak=peak, score=score,
-                second_ratio=second, quality=quality.astype("<U9"), band_hz=bands)
+                second_ratio=second, quality=quality.astype("<U9"), band_hz=bands,
+                second_lag_s=second_lag, spectral=spectral)
+
+
+def _spectral(g, spec, w, c_abs, kb, nsr):
+    """Each window's fine-delay weights and noise-free mic power, binned as in
+    ``estimate_delays`` (:func:`locate.signal.delays.binned_weights`): a list of
+    (freqs (B,), weights (P, B), power (N, B)) for the reflection model."""
+    out = []
+    for c in range(spec.shape[0]):
+        own = np.flatnonzero(np.any(w[c, :, kb] > 0, axis=0))  # this window's weighted bins
+        if own.size == 0:
+            out.append(binned_weights(np.zeros(0), np.zeros((w.shape[1], 0)),
+                                      np.zeros((spec.shape[1], 0))))
+            continue
+        k = own + kb.start
+        power = np.abs(spec[c][:, k].astype(complex)) ** 2
+        if nsr[c] is not None:
+            power = power / (1.0 + _interp(nsr[c], g)[:, k])
+        out.append(binned_weights(g.freqs[k], c_abs[c][:, own].astype(float), power))
+    return out
 
 
 def _covariance(g, w, coh, s_auto, s_cross, mask):
     """Delay covariance of each window on the grid bins
-    (:func:`locate.signal.delays._delay_covariance`).
+    (:func:`locate.signal.delays.delay_covariance`).
 
     The sums over bins are Riemann sums on the grid (each grid bin stands for ``q`` bins, so
     the bin count ``n_samp`` is taken ``q`` times larger).  Windows where every pair carries
@@ -297,18 +306,26 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
     d_norm = np.sum(w * om**2, axis=-1)  # (C, P)
     fast = (d_norm > 0).all(axis=1) & g.full_design
     cov = np.zeros((c_n, n_p, n_p))
+    nsr = [None] * c_n  # per-mic noise-to-signal ratio on the grid bins, (N, Kq)
     for c in np.flatnonzero(~fast):  # rare: dead pairs, two mics
-        cov[c] = _delay_covariance(g.pairs, n_mics, w[c], coh[c], s_auto[c], s_cross[c], om,
-                                   n_eff, g.nfft, mask[c])[0]
+        cov[c], a_c = delay_covariance(g.pairs, n_mics, w[c], coh[c], s_auto[c], s_cross[c],
+                                       om, n_eff, g.nfft, mask[c])
+        bins = np.flatnonzero(mask[c] & np.any(w[c] > 0, axis=0))
+        if a_c is not None and a_c.shape[1] == bins.size:
+            full = np.zeros((n_mics, om.size))
+            full[:, bins] = a_c
+            nsr[c] = full
     idx = np.flatnonzero(fast)
     if idx.size == 0:
-        return cov
+        return cov, nsr
     wf = w[idx]
     log_cross = np.log(np.maximum(np.abs(s_cross[idx]), _TINY))  # (F, P, Kq)
     log_sig = np.einsum("np,fpk->fnk", g.design_pinv, log_cross)
     with np.errstate(invalid="ignore", over="ignore"):
         a = s_auto[idx] / np.exp(log_sig) - 1.0
     a = np.where(np.isfinite(a), np.clip(a, 1e-6, 1e6), 1e6)  # (F, N, Kq)
+    for r, c in enumerate(idx):
+        nsr[c] = a[r]
     covf = np.zeros((idx.size, n_p, n_p))
     for u in range(n_mics):
         sel = np.flatnonzero((ii == u) | (jj == u))
@@ -326,5 +343,5 @@ def _covariance(g, w, coh, s_auto, s_cross, mask):
     model = covf[:, diag, diag]
     ratio = np.where(model > 0, np.sqrt(np.maximum(model, carter)
                                         / np.where(model > 0, model, 1.0)), 1.0)
-    cov[idx] = covf * ratio[:, :, None] * ratio[:, None, :] * _VARIANCE_MARGIN
-    return cov
+    cov[idx] = covf * ratio[:, :, None] * ratio[:, None, :] * VARIANCE_MARGIN
+    return cov, nsr

@@ -82,7 +82,8 @@ def coarse_peaks(r, setup, bands_hz, stride=3):
 
     Returns
     -------
-    lag_s, peak, score, second_ratio : ndarray, shape (C, P)
+    lag_s, peak, score, second_ratio, second_lag_s : ndarray, shape (C, P)
+        ``second_lag_s``: the lag of the next separate maximum (as ``estimate_delays``).
     """
     g = setup
     lags = g.lags
@@ -123,6 +124,7 @@ def coarse_peaks(r, setup, bands_hz, stride=3):
     cand = np.where(locmax, mid, -np.inf)
     j = np.argmax(cand, axis=-1)[..., None]
     second = np.take_along_axis(cand, j, axis=-1)[..., 0]
+    second_lag_s = lags[j[..., 0] + 1] * g.step_s
     if g.decimated:  # vertex height of the highest separate maximum
         a0 = np.take_along_axis(r, j, axis=-1)[..., 0]
         a2 = np.take_along_axis(r, j + 2, axis=-1)[..., 0]
@@ -131,4 +133,4 @@ def coarse_peaks(r, setup, bands_hz, stride=3):
             top = second - 0.125 * (a2 - a0) ** 2 / np.where(d2 < 0, d2, -1.0)
         second = np.where(np.isfinite(second) & (d2 < 0), top, second)
     ratio = np.where(np.isfinite(second) & (peak > 0), second / np.maximum(peak, 1e-12), 0.0)
-    return lag_s, peak, score, np.clip(ratio, 0.0, None)
+    return lag_s, peak, score, np.clip(ratio, 0.0, None), second_lag_s

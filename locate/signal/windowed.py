@@ -38,11 +38,11 @@ import numpy as np
 from scipy import fft as sfft
 
 from locate.signal.delays import (
-    _COHERENCE_DOF,
-    _MIN_BAND_COHERENCE,
+    COHERENCE_DOF,
+    MIN_BAND_COHERENCE,
     DelaySet,
-    _band_mask,
     all_pairs,
+    band_mask,
 )
 from locate.signal.window_core import chunk_delays
 
@@ -68,6 +68,11 @@ class WindowDelays:
     band_hz : ndarray, shape (W, 2)
     sample_rate_hz : float
     max_lag_s : ndarray, shape (P,)
+    second_lag_s : ndarray, shape (W, P)
+        Lag of the next separate correlation peak (the ground-echo check).
+    spectral : list of tuple
+        Per window (freqs (B,), weights (P, B), power (N, B)): the binned fine-delay weights
+        and mic powers the reflection model uses (``DelaySet.spectral_*``).
     """
 
     pairs: np.ndarray
@@ -83,6 +88,8 @@ class WindowDelays:
     band_hz: np.ndarray
     sample_rate_hz: float
     max_lag_s: np.ndarray
+    second_lag_s: np.ndarray | None = None
+    spectral: list | None = None
 
     def __len__(self) -> int:
         return len(self.t_s)
@@ -95,7 +102,11 @@ class WindowDelays:
             second_ratio=self.second_ratio[w], quality=tuple(self.quality[w]),
             t_s=float(self.t_s[w]), duration_s=self.duration_s,
             band_hz=tuple(float(v) for v in self.band_hz[w]),
-            sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s)
+            sample_rate_hz=self.sample_rate_hz, max_lag_s=self.max_lag_s,
+            second_lag_s=None if self.second_lag_s is None else self.second_lag_s[w],
+            **({} if self.spectral is None else dict(zip(
+                ("spectral_freqs_hz", "spectral_weight", "spectral_power"),
+                self.spectral[w], strict=True))))
 
     @classmethod
     def concatenate(cls, parts) -> WindowDelays:
@@ -103,7 +114,8 @@ class WindowDelays:
         parts = list(parts)
         cat = {k: np.concatenate([getattr(p, k) for p in parts]) for k in
                ("t_s", "delay_s", "sd_s", "covariance_s2", "peak", "score", "second_ratio",
-                "quality", "band_hz")}
+                "quality", "band_hz", "second_lag_s")}
+        cat["spectral"] = [s for p in parts for s in p.spectral]
         p0 = parts[0]
         return cls(pairs=p0.pairs, duration_s=p0.duration_s, sample_rate_hz=p0.sample_rate_hz,
                    max_lag_s=p0.max_lag_s, **cat)
@@ -122,7 +134,7 @@ class _Setup:
     """Sizes, bins and grids shared by every window of one call."""
 
     def __init__(self, fs, n, hop, n_mics, pairs, max_lag_s, band_hz, oversample, step=None,
-                 single=None):
+                 single=None, search_hz=None):
         self.fs, self.n, self.hop = fs, n, hop
         self.pairs = pairs
         self.ii, self.jj = pairs[:, 0], pairs[:, 1]
@@ -131,14 +143,19 @@ class _Setup:
         self.max_lag_samp = np.minimum(np.ceil(max_lag_s * fs).astype(int) + 1, n - 1)
         self.nfft = sfft.next_fast_len(n + int(self.max_lag_samp.max()) + 1, real=True)
         freqs = sfft.rfftfreq(self.nfft, 1.0 / fs)
-        mask = _band_mask(freqs, band_hz, fs)
+        full = band_mask(freqs, None, fs)
+        # the first (PHAT) pass's band for the main-lobe exclusion, as estimate_delays
+        self.first_band = np.array([freqs[full].min(), freqs[full].max()])
+        mask = band_mask(freqs, band_hz if band_hz is not None else search_hz, fs)
         if not mask.any():
             raise ValueError(f"band_hz {band_hz!r} holds no frequency bin at {fs:g} Hz")
         self.auto_band = band_hz is None
-        self.width = int(np.ceil(_COHERENCE_DOF * self.nfft / n))
+        if self.auto_band:  # the band found bin for bin, as estimate_delays
+            step = 1
+        self.width = int(np.ceil(COHERENCE_DOF * self.nfft / n))
         self.dof = self.width * n / self.nfft
         raw = 1.0 - 1e-3 ** (1.0 / (self.dof - 1.0))  # as in estimate_delays (Carter 1987)
-        self.threshold = max((self.dof * raw - 1.0) / (self.dof - 1.0), _MIN_BAND_COHERENCE)
+        self.threshold = max((self.dof * raw - 1.0) / (self.dof - 1.0), MIN_BAND_COHERENCE)
         k = np.flatnonzero(mask)
         kmin, kmax = int(k[0]), int(k[-1])
         margin = self.width // 2 + 2
@@ -221,7 +238,8 @@ def _spectra(x, g: _Setup, starts, workers):
 
 def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag_s,
                             band_hz=None, pairs=None, offsets_s=None, t0_s=0.0, workers=None,
-                            chunk=8, oversample=1.25, coherence_step=None) -> WindowDelays:
+                            chunk=8, oversample=1.25, coherence_step=None,
+                            search_band_hz=None) -> WindowDelays:
     """Delays, uncertainties and quality of every pair in sliding windows.
 
     Parameters
@@ -248,6 +266,10 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
         Windows processed together (memory ~ chunk x P x band bins x 16 bytes x 12).
     oversample : float
         Sampling of the decimated correlation relative to its Nyquist rate (>= 1.2).
+    search_band_hz : (float, float), optional
+        Without ``band_hz``: where the band is searched for (default 20 Hz .. 0.45 fs, as
+        ``estimate_delays``).  A sound known to stay below some frequency (a first pass over
+        the span) lets the inverse transforms run at a decimated size.
     coherence_step : int, optional
         Evaluate the smoothed coherence, the weights and the covariance integrands on every
         this-many bins (default: an eighth of the smoothing width when the band is given,
@@ -275,7 +297,8 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
     starts = window_starts(x.shape[1], n, hop)
     pairs = all_pairs(x.shape[0]) if pairs is None else np.asarray(pairs, int).reshape(-1, 2)
     max_lag_s = np.broadcast_to(np.asarray(max_lag_s, float), (len(pairs),)).copy()
-    g = _Setup(fs, n, hop, x.shape[0], pairs, max_lag_s, band_hz, oversample, coherence_step)
+    g = _Setup(fs, n, hop, x.shape[0], pairs, max_lag_s, band_hz, oversample, coherence_step,
+               search_hz=search_band_hz)
     workers = workers if workers is not None else -1
     chunk = max(int(chunk), 1)
     groups = [starts[k:k + chunk] for k in range(0, len(starts), chunk)]
@@ -287,16 +310,18 @@ def estimate_delays_windows(signals, sample_rate_hz, window_s, hop_s, *, max_lag
     else:
         parts = [chunk_delays(_spectra(x, g, st, workers), g, workers) for st in groups]
     keys = ("delay_s", "sd_s", "covariance_s2", "peak", "score", "second_ratio", "quality",
-            "band_hz")
+            "band_hz", "second_lag_s")
     n_p = len(pairs)
     empty = {"delay_s": (0, n_p), "sd_s": (0, n_p), "covariance_s2": (0, n_p, n_p),
              "peak": (0, n_p), "score": (0, n_p), "second_ratio": (0, n_p),
-             "quality": (0, n_p), "band_hz": (0, 2)}
+             "quality": (0, n_p), "band_hz": (0, 2), "second_lag_s": (0, n_p)}
     out = {k: (np.concatenate([p[k] for p in parts]) if parts else
                np.zeros(empty[k], dtype="<U9" if k == "quality" else float)) for k in keys}
     if offsets_s is not None:
         off = np.asarray(offsets_s, dtype=float)
         out["delay_s"] = out["delay_s"] + (off[pairs[:, 1]] - off[pairs[:, 0]])
+        out["second_lag_s"] = out["second_lag_s"] + (off[pairs[:, 1]] - off[pairs[:, 0]])
+    out["spectral"] = [s for p in parts for s in p["spectral"]]
     return WindowDelays(pairs=pairs, t_s=float(t0_s) + starts / fs, duration_s=n / fs,
                         sample_rate_hz=fs, max_lag_s=max_lag_s, **out)
 

@@ -6,7 +6,7 @@ fix, events) over a :class:`locate.io.audio.Recordings` reader.  Nothing here wr
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 
 import numpy as np
 
@@ -19,45 +19,14 @@ from locate.results.geojson import add_wgs84_positions
 from locate.signal.delays import all_pairs, estimate_delays, geometric_max_lag_s
 from locate.signal.echoes import onset_mismatch
 from locate.signal.event_scan import scan_recordings
+from locate.workflows.conditions import Conditions, conditions_for
 
 __all__ = ["Conditions", "conditions_for", "scan_events", "fix_span", "fix_result",
+           "delay_warnings", "fix_sds", "finish_entry", "search_lags_s",
            "plan_spans", "add_clock_times", "resolve_source_height", "reflection_uncertainty",
            "air_fit_extra"]
 
 MIN_SPAN_SAMPLES = 64  # a shorter span cannot hold a correlation peak and its floor
-
-
-@dataclass
-class Conditions:
-    """Propagation conditions of a run."""
-
-    sound_speed_mps: float
-    wind_mps: np.ndarray
-    temperature_c: float
-    relative_humidity: float
-    wind_speed_mps: float
-    wind_from_deg: float
-    notes: list = field(default_factory=list)
-
-    def to_dict(self) -> dict:
-        return {
-            "sound_speed_mps": round(self.sound_speed_mps, 3),
-            "temperature_c": self.temperature_c,
-            "relative_humidity": self.relative_humidity,
-            "wind_speed_mps": self.wind_speed_mps,
-            "wind_from_deg": self.wind_from_deg,
-        }
-
-
-def conditions_for(site, sound_speed_mps=None) -> Conditions:
-    """Sound speed and wind for a site (``sound_speed_mps`` overrides the air model)."""
-    air = site.air
-    c = float(sound_speed_mps) if sound_speed_mps is not None else air.sound_speed_mps()
-    if not 250.0 <= c <= 400.0:
-        raise OptionError(f"sound speed {c:g} m/s is not plausible for air (250-400 m/s)",
-                          field="sound_speed_mps")
-    return Conditions(c, air.wind_mps(), air.temperature_c, air.relative_humidity,
-                      air.wind_speed_mps, air.wind_from_deg)
 
 
 def _array_spread_s(positions_m, cond):
@@ -289,23 +258,11 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     delays = reflection_uncertainty(delays, positions, cond, dims=dims, source_z_m=source_z_m,
                                     source_z_sd_m=source_z_sd_m if dims == 2 else 0.0,
                                     mic_names=names, ground_z_m=ground_datum_m(site))
-    weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
-            if q == "weak"]
-    amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
-           if q == "ambiguous"]
-    if weak:
-        warnings.append("weak correlation for pair(s) " + ", ".join(weak))
-    if amb:
-        warnings.append("ambiguous correlation (several near-equal peaks: a tonal sound or a "
-                        "strong echo?) for pair(s) " + ", ".join(amb)
-                        + ": a broadband part of the sound or a --band around it would help")
-    from locate.accuracy.budget import declared_sds, extra_covariance_hook, uncertainty_budget
-    from locate.accuracy.inputs import with_source_height
-
-    sds = declared_sds(site)
-    sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0, ground_datum_m(site))
-    models = model_error_sds(site, sds, dims)
+    warnings.extend(delay_warnings(delays, names))
+    sds, models = fix_sds(site, dims, source_z_sd_m)
     if extra_covariance is None:  # declared survey/clock/air uncertainties (none: no change)
+        from locate.accuracy.budget import extra_covariance_hook
+
         extra_covariance = extra_covariance_hook(positions, sds, dims=dims,
                                                  source_z_m=source_z_m, reject=reject,
                                                  mic_names=names, model_sds=models)
@@ -313,35 +270,77 @@ def fix_span(recordings, site, cond, start_s, stop_s, *, band_hz=None, dims=2, s
     fix = locate_source(positions, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
                         dims=dims, source_z_m=source_z_m, reject=reject, mic_names=names,
                         extra_covariance_s2=extra, model_sds=models)
-    if len(amb) > len(delays.pairs) // 2:
-        fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
-                            "do not rely on it without a broadband sound")
+    entry = finish_entry(fix, delays, signals, recordings.sample_rate_hz, site, cond, sds,
+                         warnings, t_s=start_s if t_s is None else t_s,
+                         span_s=(start_s, stop_s))
+    return entry, fix, delays, entry["warnings"]
+
+
+def delay_warnings(delays, names) -> list[str]:
+    """The warnings about weak and ambiguous pairs of a delay set, with the site's mic names."""
+    out = []
+    weak = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
+            if q == "weak"]
+    amb = [f"{names[i]}-{names[j]}" for (i, j), q in zip(delays.pairs, delays.quality)
+           if q == "ambiguous"]
+    if weak:
+        out.append("weak correlation for pair(s) " + ", ".join(weak))
+    if amb:
+        out.append("ambiguous correlation (several near-equal peaks: a tonal sound or a "
+                   "strong echo?) for pair(s) " + ", ".join(amb)
+                   + ": a broadband part of the sound or a --band around it would help")
+    return out
+
+
+def fix_sds(site, dims, source_z_sd_m):
+    """(declared sds with the source height, model-error sds) of a fix (budget inputs)."""
+    from locate.accuracy.budget import declared_sds
+    from locate.accuracy.inputs import with_source_height
+
+    sds = declared_sds(site)
+    sds = with_source_height(sds, source_z_sd_m if dims == 2 else 0.0, ground_datum_m(site))
+    return sds, model_error_sds(site, sds, dims)
+
+
+def finish_entry(fix, delays, signals, sample_rate_hz, site, cond, sds, warnings, *, t_s,
+                 span_s) -> dict:
+    """The result entry of a fix: the geometry notes (ambiguous pairs, mirror, end-fire), the
+    first-arrival (echo) check on the span's samples, the uncertainty budget and the warnings
+    (``warnings`` so far + the fix's), named with the site's mics.  Shared by one span
+    (:func:`fix_span`) and the windows of :mod:`locate.workflows.windows`."""
+    from locate.accuracy.budget import uncertainty_budget
     from locate.geometry.layout import endfire_pairs, mirror_note
 
+    positions, names = site.positions_m, site.mic_names
+    warnings = list(warnings)
+    n_amb = sum(q == "ambiguous" for q in delays.quality)
+    if n_amb > len(delays.pairs) // 2:
+        fix.warnings.append("most pairs are ambiguous: this position may be one of several; "
+                            "do not rely on it without a broadband sound")
+    used = np.asarray(fix.used, bool)
     used_names = [n for n, u in zip(names, fix.used) if u]
-    mirror = mirror_note(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
+    mirror = mirror_note(positions[used], fix.position_m, used_names)
     if mirror:
         fix.warnings.append(mirror)
     if ((any("nearly undetermined" in w for w in fix.warnings) or _elongated(fix))
             and not any("near the extension" in w for w in fix.warnings)):
-        ends = endfire_pairs(positions[np.asarray(fix.used, bool)], fix.position_m, used_names)
+        ends = endfire_pairs(positions[used], fix.position_m, used_names)
         if ends:  # say why, as the linearity check does
             fix.warnings.append(f"the source is near the extension of the line through mics "
                                 f"{', '.join(ends)} (their delay is at its largest and says "
                                 "little about the position): a mic off that line, toward the "
                                 "source, would help")
-    echo = onset_mismatch(signals, recordings.sample_rate_hz, positions, fix.position_m,
+    echo = onset_mismatch(signals, sample_rate_hz, positions, fix.position_m,
                           cond.sound_speed_mps, names, wind_mps=cond.wind_mps, used=fix.used)
     if echo:
         fix.warnings.append(echo)
     warnings.extend(fix.warnings)
-    entry = fix_to_dict(fix, delays, names, t_s=start_s if t_s is None else t_s,
-                        span_s=(start_s, stop_s))
+    entry = fix_to_dict(fix, delays, names, t_s=t_s, span_s=span_s)
     entry["uncertainty_budget"] = uncertainty_budget(
         fix, delays, positions, cond.sound_speed_mps, sds=sds, wind_mps=cond.wind_mps,
         mic_names=names)
     entry["warnings"] = list(dict.fromkeys(warnings))
-    return entry, fix, delays, entry["warnings"]
+    return entry
 
 
 def _elongated(fix, ratio=10.0):
@@ -410,11 +409,13 @@ def ground_datum_m(site):
 
 
 def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
-                           source_z_sd_m=0.0, mic_names=None, ground_z_m=0.0):
+                           source_z_sd_m=0.0, mic_names=None, ground_z_m=0.0, first=None):
     """``delays`` with the ground-reflection bias term in their covariance
     (:mod:`locate.accuracy.reflections`), evaluated at a first, timing-only fix; unchanged when
     no first fix can be made.  ``ground_z_m``: z of the ground (None: not known, a WGS84
-    site - taken a typical mic height below the lowest mic)."""
+    site - taken a typical mic height below the lowest mic).  ``first`` ((position (3,),
+    covariance (3, 3))) is that fix when it is already known (the batched first fixes of many
+    windows)."""
     from locate.accuracy.reflections import (
         TYPICAL_MIC_HEIGHT_M,
         ground_echo_pairs,
@@ -422,23 +423,26 @@ def reflection_uncertainty(delays, positions_m, cond, *, dims=2, source_z_m=0.0,
     )
     from locate.errors import TdoaError
 
-    try:
-        first = locate_source(positions_m, delays, cond.sound_speed_mps, wind_mps=cond.wind_mps,
-                              dims=dims, source_z_m=source_z_m, reject=True,
-                              mic_names=mic_names)
-    except (TdoaError, ValueError, np.linalg.LinAlgError):
-        return delays
-    if not np.all(np.isfinite(first.position_m)):
+    if first is None:
+        try:
+            fx = locate_source(positions_m, delays, cond.sound_speed_mps,
+                               wind_mps=cond.wind_mps, dims=dims, source_z_m=source_z_m,
+                               reject=True, mic_names=mic_names)
+        except (TdoaError, ValueError, np.linalg.LinAlgError):
+            return delays
+        first = (fx.position_m, fx.covariance_m2)
+    position, cov = (np.asarray(v, dtype=float) for v in first)
+    if not np.all(np.isfinite(position)):
         return delays
     sd = float(source_z_sd_m) if dims == 2 else float(np.sqrt(max(
-        first.covariance_m2[2, 2], 0.0)) if np.isfinite(first.covariance_m2[2, 2]) else 0.0)
-    out = ground_reflection_term(delays, first.position_m, positions_m, cond.sound_speed_mps,
+        cov[2, 2], 0.0)) if np.isfinite(cov[2, 2]) else 0.0)
+    out = ground_reflection_term(delays, position, positions_m, cond.sound_speed_mps,
                                  cond.wind_mps, ground_z_m=ground_z_m, source_z_sd_m=sd)
     pos = np.array(positions_m, dtype=float)
     ground = (float(np.min(pos[:, 2])) - TYPICAL_MIC_HEIGHT_M if ground_z_m is None
               else float(ground_z_m))
     pos[:, 2] -= ground
-    src = np.array(first.position_m, dtype=float)
+    src = np.array(position, dtype=float)
     src[2] = max(src[2] - ground, 0.0)
     echo = ground_echo_pairs(out, src, pos, cond.sound_speed_mps, cond.wind_mps,
                              source_z_sd_m=sd)

@@ -24,6 +24,7 @@ from locate.workflows.fixing import (
     require_events,
     scan_events,
 )
+from locate.workflows.progress import no_progress
 
 __all__ = ["locate_recordings", "list_events", "same_shape", "no_progress"]
 
@@ -31,23 +32,6 @@ __all__ = ["locate_recordings", "list_events", "same_shape", "no_progress"]
 def same_shape(message: str) -> str:
     """A warning with its numbers blanked: the same note about other figures compares equal."""
     return re.sub(r"[-+]?\d+(\.\d+)?", "#", message)
-
-
-class _Quiet:
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        return False
-
-    def update(self, n):
-        pass
-
-
-def no_progress(label, total):
-    """The default progress: nothing shown (``progress(label, total)`` -> context manager with
-    ``update(n)``)."""
-    return _Quiet()
 
 
 def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=None,
@@ -125,6 +109,18 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
         if window_s > stop_s - start_s:
             raise OptionError(f"window {window_s:g} s is longer than the span "
                               f"{stop_s - start_s:g} s", field="window_s")
+        if not keep_curves and not solve_air:  # the batched windows (same treatment)
+            from locate.workflows.windows import window_fixes
+
+            n_win = int(np.floor((stop_s - start_s) / window_s + 1e-9))
+            with progress("Locating", n_win) as bar:
+                entries, notes = window_fixes(
+                    rec, site, cond, start_s, stop_s, window_s, band_hz=band_hz, dims=dims,
+                    source_z_m=source_z_m, source_z_sd_m=source_z_sd_m, reject=reject,
+                    progress=bar.update)
+            warnings.extend(notes)
+            return _finish(site, rec, cond, entries, warnings, dims, source_z_m,
+                           source_z_sd_m, source_z_basis, n_win)
         edges = np.arange(start_s, stop_s - window_s + 1e-9, window_s)
         spans = [(float(a), float(a + window_s)) for a in edges]
         times = [a for a, _ in spans]
@@ -171,6 +167,12 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
                                 source_z_m=source_z_m if dims == 2 else e["position_m"][2])
         if note:  # the fix's own warning (printed with it)
             e["warnings"].append(note)
+    return _finish(site, rec, cond, entries, warnings, dims, source_z_m, source_z_sd_m,
+                   source_z_basis, len(spans))
+
+
+def _finish(site, rec, cond, entries, warnings, dims, source_z_m, source_z_sd_m,
+            source_z_basis, n_spans):
     # the reads' channel notes, unless a fix already said the same (its own figures)
     said = ({same_shape(w) for e in entries for w in e["warnings"]}
             | {same_shape(w) for w in warnings})
@@ -183,7 +185,7 @@ def locate_recordings(site, recordings, *, start_s=None, stop_s=None, window_s=N
              if dims == 2 else None)
     result = fix_result(site, cond, entries, warnings=warnings, dims=dims,
                         source_z_m=source_z_m, extra=extra)
-    result["spans_without_fix"] = len(spans) - len(entries)
+    result["spans_without_fix"] = max(int(n_spans) - len(entries), 0)
     return add_clock_times(result, rec, site)
 
 
