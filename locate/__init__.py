@@ -21,7 +21,8 @@ The package's rooms (subpackages) are listed in docs/architecture.md.
 __version__ = "0.1.0"
 
 __all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "locate_sources",
-           "detect_events", "sound_levels", "plan", "read_result", "write_result", "sound_speed_mps",
+           "detect_events", "sound_levels", "plan", "read_result", "write_result",
+           "sound_speed_mps",
            "demo_dir"]
 
 

@@ -25,7 +25,8 @@ from locate.signal.delays import estimate_delays
 from locate.workflows.locating import list_events, locate_recordings
 
 __all__ = ["load_site", "open_recordings", "estimate_delays", "locate", "locate_sources",
-           "detect_events", "sound_levels", "plan", "write_result", "read_result", "sound_speed_mps",
+           "detect_events", "sound_levels", "plan", "write_result", "read_result",
+           "sound_speed_mps",
            "demo_dir"]
 
 
