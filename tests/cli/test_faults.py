@@ -299,12 +299,13 @@ def test_os_refusals_are_one_line_naming_the_file(earlier, tmp_path):
 
 def test_an_unexpected_exception_is_internal_error_exit_1_and_debug_shows_it(scene,
                                                                               monkeypatch):
-    import locate.workflows.fixing as fixing
+    # `check` reads the site's conditions from workflows.conditions (it loads no solver).
+    import locate.workflows.conditions as conditions
 
     def broken(*a, **k):
         raise TypeError("unsupported operand")
 
-    monkeypatch.setattr(fixing, "conditions_for", broken)
+    monkeypatch.setattr(conditions, "conditions_for", broken)
     code, _, err = run(["check", scene])
     line = _one_line_error(code, err, want=1)
     assert line.startswith("tdoa: error: internal error: TypeError"), line
