@@ -3,8 +3,8 @@
 The windowed delays carry only the correlation (timing) noise.  The path also depends on
 nuisance inputs known to a declared standard deviation (the site's ``[survey]``; the dict of
 :func:`locate.accuracy.inputs.declared_sds`): mic positions, recorder clock offsets, the sound
-speed and a uniform wind.  They are common to every window, so their effect is a correlated
-shift of the whole path, not extra scatter per window.
+speed, a uniform wind and (2-D tracks) the source height.  They are common to every window,
+so their effect is a correlated shift of the whole path, not extra scatter per window.
 
 Method - law of propagation of uncertainty to first order (JCGM 100:2008, GUM, 5.1.2 eq. (10);
 5.2.2 eq. (13) for outputs that share inputs), as the stationary budget does:
@@ -23,17 +23,24 @@ Method - law of propagation of uncertainty to first order (JCGM 100:2008, GUM, 5
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 
 from locate.track.pathfit import whitening
 from locate.track.retarded import predict_delays
 
-__all__ = ["COMPONENTS", "has_declared", "nuisance_columns", "track_budget", "TIMING_ONLY_NOTE"]
+__all__ = ["COMPONENTS", "has_declared", "timing_only", "nuisance_columns", "track_budget",
+           "TIMING_ONLY_NOTE", "TIMING_AND_HEIGHT_NOTE"]
 
-COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind")
+COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind", "source_height")
 TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertainty is declared "
                     "in the site file ([survey]), so the ellipses, heading and speed "
                     "uncertainties hold only if the mic positions, clocks and air are exact")
+TIMING_AND_HEIGHT_NOTE = ("timing only, plus the source height: no survey, clock, temperature "
+                          "or wind uncertainty is declared in the site file ([survey]), so the "
+                          "ellipses, heading and speed uncertainties hold only if the mic "
+                          "positions, clocks and air are exact")
 _H_POS = 0.01  # central-difference steps: m, s, m/s (the delays are smooth in all of them)
 _H_CLK = 1e-5
 _H_C = 0.05
@@ -41,7 +48,16 @@ _H_W = 0.05
 
 
 def has_declared(sds) -> bool:
-    return sds is not None and any(bool(v) for v in sds.get("declared", {}).values())
+    """Any declared nuisance, the source height of a 2-D track included."""
+    return sds is not None and (any(bool(v) for v in sds.get("declared", {}).values())
+                                or float(sds.get("source_height_m", 0.0)) > 0)
+
+
+def timing_only(sds) -> bool:
+    """True when no survey, clock or air uncertainty is declared (the source height, which
+    a 2-D track always assumes or profiles, does not count)."""
+    d = {} if sds is None else sds.get("declared", {})
+    return not any(d.get(k) for k in ("mic_positions", "clocks", "sound_speed", "wind"))
 
 
 def nuisance_columns(sds, n_mics):
@@ -62,6 +78,8 @@ def nuisance_columns(sds, n_mics):
     if sds["wind_mps"] > 0:
         for axis in (0, 1):
             cols.append(("wind", "wind", axis, float(sds["wind_mps"])))
+    if float(sds.get("source_height_m", 0.0)) > 0:  # the height of a 2-D track
+        cols.append(("source_height", "z", None, float(sds["source_height_m"])))
     return cols
 
 
@@ -78,9 +96,9 @@ def _perturbed(kind, index, h, mics, c, wind, t_h, ref):
         th = t_h + shift[ref]  # the reference mic's clock moves the heard times too
     elif kind == "c":
         cc = c + h
-    else:
+    elif kind == "wind":
         w[index] += h
-    return m, cc, w, th, shift
+    return m, cc, w, th, shift  # "z": the path's height moves (track_budget)
 
 
 def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed_mps,
@@ -120,18 +138,24 @@ def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed
     point_cov = np.zeros((n_w, 3, 3))
     by = {}
     for comp, kind, index, sd in nuisance_columns(sds, len(mics)):
-        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
+        if kind == "z" and par.dims != 2:
+            continue  # a 3-D track solves its height
+        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W, "z": _H_POS}[kind]
         d_pred, d_pt = [], []
         for sign in (1.0, -1.0):
             m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h, ref)
-            d = predict_delays(par, theta, th[sel], m, pairs, cc, w, jacobian=False, **kw)[0]
+            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
+                   if kind == "z" else par)
+            d = predict_delays(p_k, theta, th[sel], m, pairs, cc, w, jacobian=False, **kw)[0]
             d = d + (shift[pairs[:, 1]] - shift[pairs[:, 0]])
             d_pred.append(d)
         g = (d_pred[0] - d_pred[1]) / (2 * h)  # (W_sel, P) per unit nuisance
         dtheta = -solve @ np.einsum("wqp,wp->wq", m_w, g).reshape(-1)  # (n,)
         for sign in (1.0, -1.0):
             # the point at its stated emission time (as locate.track.tracker.describe_fit)
-            d_pt.append(par.path(theta + sign * h * dtheta).position_m(fit.t_emit_s))
+            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
+                   if kind == "z" else par)
+            d_pt.append(p_k.path(theta + sign * h * dtheta).position_m(fit.t_emit_s))
         dp = (d_pt[0] - d_pt[1]) / (2 * h)  # (W, 3)
         dp = np.where(np.isfinite(dp), dp, 0.0)
         theta_cov += sd**2 * np.outer(dtheta, dtheta)
