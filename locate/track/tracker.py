@@ -25,6 +25,7 @@ import numpy as np
 from locate.errors import NothingFoundError, OptionError, TdoaError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
+from locate.track import bands as track_bands
 from locate.track import budget as track_budget
 from locate.track import delays as track_delays
 from locate.track import doppler
@@ -117,6 +118,7 @@ class TrackResult:
     uncertainty: dict = field(default_factory=dict)
     t_emit_sd_s: np.ndarray | None = None
     heard_covariance_m2: np.ndarray | None = None
+    band_hz: tuple | None = None
 
     def point_heading_speed(self):
         """Per point: heading, its sd, speed, its sd (arrays of shape (W,))."""
@@ -343,12 +345,34 @@ def overlap_factor(window_s, hop_s):
 
 
 def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, **kwargs):
+    """Reconstruct a moving source's track (:func:`_track_recording`, whose parameters it takes).
+
+    With the automatic band (``band_hz`` None): when the whole band gives no track, or a track
+    whose model misfit is gross (reduced chi-square above :data:`GROSS_MISFIT`: delays picked
+    on side lobes), and the sound has harmonic lines (an engine or a propeller), the track is
+    tried again in the band above its lines (:func:`locate.track.bands.band_above_lines_hz`);
+    the result says which band it used and why.  A refusal names the band to try, or says that
+    the band above the lines gave no track either.
+    """
+    auto = kwargs.get("band_hz") is None
     try:
-        return _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
-                                **kwargs)
+        res = _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                               **kwargs)
     except NothingFoundError as exc:
-        # found nothing with the automatic band: say which band the mics agree in
-        if kwargs.get("band_hz") is not None or "stationary" in exc.message:
+        if not auto or "stationary" in exc.message:
+            raise
+        lines = _lines_band(signals, sample_rate_hz)
+        if lines is not None:
+            alt, why = _in_band(lines, signals, sample_rate_hz, mic_positions_m,
+                                sound_speed_mps, kwargs)
+            if alt is not None:
+                alt.warnings.insert(0, f"the whole band gave no track ({exc.message}); "
+                                       + _lines_note(lines))
+                return alt
+            exc.message += (f"; the sound has harmonic lines up to {lines[2]:.0f} Hz (an "
+                            f"engine's or a propeller's), and the band above them, "
+                            f"{lines[0]:.0f}-{lines[1]:.0f} Hz, gave no track either ({why}): "
+                            "the sound is probably too weak at these mics for a track")
             raise
         try:
             best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m,
@@ -356,12 +380,57 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
         except (ValueError, FloatingPointError, TdoaError):
             best = None
         if best is None:
-            exc.message += "; no octave band is coherent between the mics either"
+            exc.message += "; no octave band shows the same sound at the mics either"
         else:
             exc.message += (f"; the mics agree best in {best[0]:.0f}-{best[1]:.0f} Hz "
                             f"(correlation peaks {best[2]:.0f} robust sd above the floor): "
                             f"try band_hz {best[0]:.0f}:{best[1]:.0f}")
         raise
+    if auto and not res.adequate and _reduced(res) > GROSS_MISFIT:
+        lines = _lines_band(signals, sample_rate_hz)
+        if lines is not None:
+            alt, _ = _in_band(lines, signals, sample_rate_hz, mic_positions_m,
+                              sound_speed_mps, kwargs)
+            if alt is not None and (alt.adequate or _reduced(alt) < _reduced(res)):
+                alt.warnings.insert(0, f"the whole band gave delays that no path explains "
+                                       f"(reduced chi-square {_reduced(res):.0f}); "
+                                       + _lines_note(lines))
+                return alt
+    if not auto:
+        res.band_hz = tuple(float(b) for b in kwargs["band_hz"])
+    return res
+
+
+GROSS_MISFIT = 100.0  # reduced chi-square past any model error the widening should cover
+
+
+def _reduced(res):
+    red = res.misfit.get("chi2_reduced") if res.misfit else None
+    return float(red) if red is not None else 0.0
+
+
+def _lines_band(signals, sample_rate_hz):
+    try:
+        return track_bands.band_above_lines_hz(signals, sample_rate_hz)
+    except (ValueError, FloatingPointError):
+        return None
+
+
+def _lines_note(lines):
+    return (f"the sound has harmonic lines up to {lines[2]:.0f} Hz (an engine's or a "
+            "propeller's), whose correlation repeats at their spacing and drifts with the "
+            f"Doppler shift: tracked in {lines[0]:.0f}-{lines[1]:.0f} Hz, above them")
+
+
+def _in_band(lines, signals, sample_rate_hz, mic_positions_m, sound_speed_mps, kwargs):
+    """The track in the band above the lines, or (None, why not)."""
+    try:
+        res = _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                               **dict(kwargs, band_hz=(lines[0], lines[1])))
+    except NothingFoundError as exc:
+        return None, exc.message.split(";")[0]
+    res.band_hz = (float(lines[0]), float(lines[1]))
+    return res, ""
 
 
 def coherent_band_hz(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *,
@@ -515,7 +584,7 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
     if good.sum() < 3:
         raise NothingFoundError(
             f"only {int(good.sum())} of the {len(plain_c)} start windows of {plain_w:g} s hold a "
-            f"sound that the mics hear coherently (a track needs {MIN_START_WINDOWS}); check "
+            f"sound that all the mics hear alike (a track needs {MIN_START_WINDOWS}); check "
             "start_s/stop_s (is the source audible then?) and band_hz")
     origin = mics.mean(axis=0)
     u = fix_m - origin
@@ -851,6 +920,7 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
     holds = result.straight_holds
     return {
         "points": pts,
+        "band_hz": None if result.band_hz is None else list(result.band_hz),
         "heading_deg": result.heading_deg if holds else None,
         "heading_sd_deg": result.heading_sd_deg if holds else None,
         "speed_mps": result.speed_mps if holds else None,
