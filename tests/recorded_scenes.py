@@ -62,10 +62,18 @@ def scene(name):
     raise KeyError(name)
 
 
-def write_scene(folder, name, seed=1, *, t_stop_s=None, ground=0.7):
-    """Simulate scene ``name`` and write its site + WAV; returns (site, path, span, dims, z)."""
+def write_scene(folder, name, seed=1, *, ground=0.7, short=False, keep=(0, 1, 3, 5)):
+    """Simulate scene ``name`` and write its site + WAV; returns (site, path, span, dims, z).
+
+    ``short``: a cheap variant of a road vehicle's pass: 4 mics, 5 s around the closest
+    approach (span 0.5-4.5 s).
+    """
     sound, mics, path, t_stop, fs, snr, dims, span, z = scene(name)
-    t_stop = t_stop if t_stop_s is None else t_stop_s
+    if short:
+        mics = mics[list(keep)]
+        shift = 0.5 * t_stop - 2.5  # the closest approach at 2.5 s
+        path = synth.StraightPath(path.position_m(shift), path.velocity_mps(shift))
+        t_stop, span = 5.0, (0.5, 4.5)
     sim = synth.simulate_moving(mics, path, recorded(sound), t_start_s=0.0, t_stop_s=t_stop,
                                 sample_rate_hz=fs, snr_db=snr, ground_reflection=ground,
                                 absorption=True, rng=np.random.default_rng(seed))

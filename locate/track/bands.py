@@ -21,13 +21,15 @@ LINE_DB = 10.0    # a line stands this far above the spectrum's running median (
 FLOOR_DB = 6.0    # the band must stand this far above the background floor (common practice)
 
 
-def band_above_lines_hz(signals, sample_rate_hz, *, resolution_hz=4.0, min_octaves=0.5):
+def band_above_lines_hz(signals, sample_rate_hz, *, resolution_hz=4.0, block_s=1.0,
+                        min_octaves=0.5):
     """The broadband stretch above a sound's harmonic lines, or None.
 
-    The mean Welch power spectrum of the mics (scipy.signal.welch, Hann, ``resolution_hz``
-    bins) is compared with its running median over 25 bins: a bin more than :data:`LINE_DB`
-    above it is a line.  The band starts above the highest line (by 1/6 octave) and ends where
-    the spectrum, smoothed over 1/3 octave, falls to within :data:`FLOOR_DB` of its lowest value
+    The Welch power spectrum (scipy.signal.welch, Hann, ``resolution_hz`` bins) of each mic in
+    each ``block_s`` block is compared with its running median over 25 bins: a bin more than
+    :data:`LINE_DB` above it is a line; so is one of the mean spectrum of the mics over the
+    whole span.  The band starts above the highest line (by 1/6 octave) and ends where the
+    spectrum, smoothed over 1/3 octave, falls to within :data:`FLOOR_DB` of its lowest value
     below 0.45 fs (the background floor).
 
     Parameters
@@ -36,6 +38,8 @@ def band_above_lines_hz(signals, sample_rate_hz, *, resolution_hz=4.0, min_octav
     sample_rate_hz : float
     resolution_hz : float
         Bin width of the spectrum.
+    block_s : float
+        Length of the blocks searched for lines.
     min_octaves : float
         Narrowest band worth proposing.
 
@@ -54,11 +58,21 @@ def band_above_lines_hz(signals, sample_rate_hz, *, resolution_hz=4.0, min_octav
     f, p = f[keep], p[keep]
     if f.size < 50:
         return None
+    # lines block by block (``block_s``), each mic on its own: a moving source's Doppler shift
+    # changes over the span and differs between mics, which smears its lines in a long average
+    n_blk = max(1, int(x.shape[-1] // int(block_s * fs)))
     db = 10.0 * np.log10(np.maximum(p, 1e-300))
-    lines = db - ndimage.median_filter(db, size=25, mode="nearest") > LINE_DB
-    if not np.any(lines):
+    hit = np.flatnonzero(db - ndimage.median_filter(db, size=25, mode="nearest") > LINE_DB)
+    top = float(f[hit[-1]]) if hit.size else 0.0
+    for blk in np.array_split(x, n_blk, axis=-1):
+        _, pb = ssig.welch(blk, fs, nperseg=min(nper, blk.shape[-1]), axis=-1)
+        db = 10.0 * np.log10(np.maximum(pb[:, keep], 1e-300))
+        lines = db - ndimage.median_filter(db, size=(1, 25), mode="nearest") > LINE_DB
+        hit = np.flatnonzero(lines.any(axis=0))
+        if hit.size:
+            top = max(top, float(f[hit[-1]]))
+    if top == 0.0:
         return None
-    top = float(f[np.flatnonzero(lines)[-1]])
     # 1/3-octave smoothing: mean power over [f 2^-1/6, f 2^1/6]
     cum = np.concatenate([[0.0], np.cumsum(p)])
     a = np.searchsorted(f, f * 2 ** (-1 / 6))

@@ -361,40 +361,35 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
     except NothingFoundError as exc:
         if not auto or "stationary" in exc.message:
             raise
-        lines = _lines_band(signals, sample_rate_hz)
-        if lines is not None:
-            alt, why = _in_band(lines, signals, sample_rate_hz, mic_positions_m,
-                                sound_speed_mps, kwargs)
+        # the automatic band found nothing: try the bands the sound itself points to, and
+        # propose none that did not give a track here
+        tried = []
+        for band, why in _candidate_bands(signals, sample_rate_hz, mic_positions_m,
+                                          sound_speed_mps):
+            alt, fail = _in_band(band, signals, sample_rate_hz, mic_positions_m,
+                                 sound_speed_mps, kwargs)
             if alt is not None:
                 alt.warnings.insert(0, f"the whole band gave no track ({exc.message}); "
-                                       + _lines_note(lines))
+                                       f"tracked in {band[0]:.0f}-{band[1]:.0f} Hz, {why}")
                 return alt
-            exc.message += (f"; the sound has harmonic lines up to {lines[2]:.0f} Hz (an "
-                            f"engine's or a propeller's), and the band above them, "
-                            f"{lines[0]:.0f}-{lines[1]:.0f} Hz, gave no track either ({why}): "
-                            "the sound is probably too weak at these mics for a track")
-            raise
-        try:
-            best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m,
-                                    sound_speed_mps)
-        except (ValueError, FloatingPointError, TdoaError):
-            best = None
-        if best is None:
-            exc.message += "; no octave band shows the same sound at the mics either"
+            tried.append(f"{band[0]:.0f}-{band[1]:.0f} Hz ({why}) gave none either: {fail}")
+        if tried:
+            exc.message += "; " + "; ".join(tried) + ("; no band to propose: none of those "
+                                                      "gave a track")
         else:
-            exc.message += (f"; the mics agree best in {best[0]:.0f}-{best[1]:.0f} Hz "
-                            f"(correlation peaks {best[2]:.0f} robust sd above the floor): "
-                            f"try band_hz {best[0]:.0f}:{best[1]:.0f}")
+            exc.message += ("; no band shows the same sound at the mics (no clear correlation "
+                            "peak in any octave)")
         raise
     if auto and not res.adequate and _reduced(res) > GROSS_MISFIT:
         lines = _lines_band(signals, sample_rate_hz)
         if lines is not None:
-            alt, _ = _in_band(lines, signals, sample_rate_hz, mic_positions_m,
+            band = (lines[0], lines[1])
+            alt, _ = _in_band(band, signals, sample_rate_hz, mic_positions_m,
                               sound_speed_mps, kwargs)
             if alt is not None and (alt.adequate or _reduced(alt) < _reduced(res)):
                 alt.warnings.insert(0, f"the whole band gave delays that no path explains "
-                                       f"(reduced chi-square {_reduced(res):.0f}); "
-                                       + _lines_note(lines))
+                                       f"(reduced chi-square {_reduced(res):.0f}); tracked in "
+                                       f"{band[0]:.0f}-{band[1]:.0f} Hz, " + _lines_note(lines))
                 return alt
     if not auto:
         res.band_hz = tuple(float(b) for b in kwargs["band_hz"])
@@ -417,19 +412,36 @@ def _lines_band(signals, sample_rate_hz):
 
 
 def _lines_note(lines):
-    return (f"the sound has harmonic lines up to {lines[2]:.0f} Hz (an engine's or a "
+    return (f"above the sound's harmonic lines (up to {lines[2]:.0f} Hz: an engine's or a "
             "propeller's), whose correlation repeats at their spacing and drifts with the "
-            f"Doppler shift: tracked in {lines[0]:.0f}-{lines[1]:.0f} Hz, above them")
+            "Doppler shift")
 
 
-def _in_band(lines, signals, sample_rate_hz, mic_positions_m, sound_speed_mps, kwargs):
-    """The track in the band above the lines, or (None, why not)."""
+def _candidate_bands(signals, sample_rate_hz, mic_positions_m, sound_speed_mps):
+    """Bands to try when the whole band gives no track: [((lo, hi), why), ...]."""
+    out = []
+    lines = _lines_band(signals, sample_rate_hz)
+    if lines is not None:
+        out.append(((lines[0], lines[1]), _lines_note(lines)))
+    try:
+        best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m, sound_speed_mps)
+    except (ValueError, FloatingPointError, TdoaError):
+        best = None
+    if best is not None and (lines is None or abs(np.log2(best[0] / lines[0])) > 0.25
+                             or abs(np.log2(best[1] / lines[1])) > 0.25):
+        out.append(((best[0], best[1]), f"where the mics' correlation peaks stand highest "
+                                        f"({best[2]:.0f} robust sd above the floor)"))
+    return out
+
+
+def _in_band(band, signals, sample_rate_hz, mic_positions_m, sound_speed_mps, kwargs):
+    """The track in ``band`` (lo, hi), or (None, why not)."""
     try:
         res = _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
-                               **dict(kwargs, band_hz=(lines[0], lines[1])))
+                               **dict(kwargs, band_hz=(band[0], band[1])))
     except NothingFoundError as exc:
         return None, exc.message.split(";")[0]
-    res.band_hz = (float(lines[0]), float(lines[1]))
+    res.band_hz = (float(band[0]), float(band[1]))
     return res, ""
 
 
