@@ -28,12 +28,16 @@ import numpy as np
 from locate.track.pathfit import whitening
 from locate.track.retarded import predict_delays
 
-__all__ = ["COMPONENTS", "has_declared", "nuisance_columns", "track_budget", "TIMING_ONLY_NOTE"]
+__all__ = ["COMPONENTS", "has_declared", "nuisance_columns", "track_budget", "TIMING_ONLY_NOTE",
+           "GROUND_NOTE"]
 
 COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind")
 TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertainty is declared "
                     "in the site file ([survey]), so the ellipses, heading and speed "
                     "uncertainties hold only if the mic positions, clocks and air are exact")
+GROUND_NOTE = ("; the pull of a ground reflection on the delays of a source near the ground is "
+               "not included (a reflecting ground can leave the points a few centimetres "
+               "outside their ellipses: docs/methods.md)")
 _H_POS = 0.01  # central-difference steps: m, s, m/s (the delays are smooth in all of them)
 _H_CLK = 1e-5
 _H_C = 0.05

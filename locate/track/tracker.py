@@ -750,6 +750,8 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.uncertainty = {"declared": False, "timing_only": True,
                               "note": track_budget.TIMING_ONLY_NOTE}
+    if dims == 2:
+        result.uncertainty["note"] += track_budget.GROUND_NOTE
     eps, cov_w, ok_w, warp_used = meas
     wpar = _par_of(warp_used, dims, source_z_m)
     pred_w = predict_delays(wpar, wpar.theta(warp_used), centres, mics, pairs, c, wind_mps,
