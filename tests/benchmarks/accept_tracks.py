@@ -131,7 +131,7 @@ def run_scene(name, spec, seed):
             one_line = stderr.count("\n") == 1 and not row["traceback"]
             misleading = fam == "short" and "coherent" in row["reason"]
             row["verdict"] = ("PASS (refused: reason given)" if one_line and not misleading
-                              and fam in ("short", "engine", "hard") else "FAIL")
+                              and fam in ("short", "engine", "hard", "recorded") else "FAIL")
             return row
         doc = json.loads(out.read_text())
         tr = doc["track"]
