@@ -369,7 +369,9 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             alt, fail = _in_band(band, signals, sample_rate_hz, mic_positions_m,
                                  sound_speed_mps, kwargs)
             if alt is not None:
-                alt.warnings.insert(0, f"the whole band gave no track ({exc.message}); "
+                alt.warnings.insert(0, "the whole band gave no track ("
+                                       + exc.message.split(";")[0].split(": the whole")[0]
+                                       + "); "
                                        f"tracked in {band[0]:.0f}-{band[1]:.0f} Hz, {why}")
                 return alt
             tried.append(f"{band[0]:.0f}-{band[1]:.0f} Hz ({why}) gave none either: {fail}")
