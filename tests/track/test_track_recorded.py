@@ -82,3 +82,32 @@ def test_harmonic_engine_is_tracked_above_its_lines_when_the_whole_band_fails(tm
     err, m2, _ = _scores(doc, path)
     assert err.max() <= 1.0  # m, issue 16 acceptance
     assert np.mean(m2 < CHI2_95_2D) >= 0.85
+
+
+def test_a_refusal_with_the_automatic_band_proposes_no_band_it_did_not_try(tmp_path):
+    # Independent noise at every mic (no common sound: nothing to track, common practice):
+    # one line, exit 1, no traceback; any band it names is one it tried and says gave nothing.
+    from tests.cli_helpers import write_site
+
+    x = np.random.default_rng(5).normal(size=(6, 32000))
+    site = write_site(tmp_path, rs.VEHICLE_MICS, x, 8000.0)
+    code, _, stderr = run(["track", site, "--from", 0.5, "--to", 3.5, "--source-z", 1.0])
+    assert code == 1 and stderr.count("\n") == 1 and "Traceback" not in stderr
+    assert "coherent" not in stderr
+    assert "try band" not in stderr and "try --band" not in stderr
+    if "Hz (" in stderr:  # a band was tried
+        assert "gave none either" in stderr and "no band to propose" in stderr
+    else:
+        assert "no band shows the same sound at the mics" in stderr
+
+
+def test_a_one_and_a_half_second_span_of_a_pass_is_refused_in_plain_words(tmp_path):
+    # Issue 16: the refusal of a 1.5 s span (too short for the start search to find the path)
+    # names the span and uses plain words (no "coherent").
+    from tests.track.test_track_cli import _write
+
+    site, _, _, _ = _write(tmp_path, "beside")
+    code, _, stderr = run(["track", site, "--from", 5.0, "--to", 6.5, "--source-z", 0.5])
+    assert code == 1 and stderr.count("\n") == 1 and "Traceback" not in stderr
+    assert "coherent" not in stderr
+    assert "span (1.5 s) is probably too short" in stderr and "--from/--to" in stderr
