@@ -379,8 +379,7 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
             exc.message += "; " + "; ".join(tried) + ("; no band to propose: none of those "
                                                       "gave a track")
         else:
-            exc.message += ("; no band shows the same sound at the mics (no clear correlation "
-                            "peak in any octave)")
+            exc.message += "; no octave band gave a clear correlation peak between the mics either"
         raise
     if auto and not res.adequate and _reduced(res) > GROSS_MISFIT:
         lines = _lines_band(signals, sample_rate_hz)
