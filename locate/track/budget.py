@@ -36,7 +36,7 @@ TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertai
                     "in the site file ([survey]), so the ellipses, heading and speed "
                     "uncertainties hold only if the mic positions, clocks and air are exact")
 GROUND_NOTE = ("; the pull of a ground reflection on the delays of a source near the ground is "
-               "not included (a reflecting ground can leave the points a few centimetres "
+               "not included (a reflecting ground can leave the points centimetres to decimetres "
                "outside their ellipses: docs/methods.md)")
 _H_POS = 0.01  # central-difference steps: m, s, m/s (the delays are smooth in all of them)
 _H_CLK = 1e-5
