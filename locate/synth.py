@@ -45,7 +45,7 @@ block's mean distance.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import fft as sfft
@@ -65,7 +65,7 @@ _HALF_TAPS = 8           # kernel half-width, oversampled samples (16 taps)
 _KAISER_BETA = 18.0      # chosen by measurement (max error 1.1e-8 rms, module docstring)
 _PHASES = 8192           # kernel table resolution per tap
 _MAX_BAND = 0.45         # highest content as a fraction of the output sample rate
-_KINDS = ("noise", "impulse", "chirp", "tone")
+_KINDS = ("noise", "impulse", "chirp", "tone", "recording")
 
 
 @dataclass(frozen=True)
@@ -74,10 +74,13 @@ class Waveform:
 
     Parameters
     ----------
-    kind : {'noise', 'impulse', 'chirp', 'tone'}
+    kind : {'noise', 'impulse', 'chirp', 'tone', 'recording'}
         Band-limited noise burst; decaying band-limited noise bang (-60 dB at ``duration_s``);
         linear chirp from ``band_hz[0]`` to ``band_hz[1]``; sum of harmonics of
-        ``fundamental_hz`` with relative amplitudes ``harmonics``.
+        ``fundamental_hz`` with relative amplitudes ``harmonics``; a recorded sound
+        (``samples`` at ``samples_rate_hz``), resampled (scipy.signal.resample_poly), cut to
+        below 0.45 of the output sample rate and looped (overlap-added over ``taper_s``, the
+        length of the fades the excerpt must carry at both ends) to cover the emission.
     band_hz : (float, float)
         Band for noise, impulse and chirp, Hz; below 0.45 of the output sample rate.  Noise
         spectra fall off with raised-cosine edges inside the band (10 % of its width).
@@ -90,6 +93,8 @@ class Waveform:
         Raised-cosine fade at each end, s (impulse: the fade at its end only).
     fundamental_hz, harmonics
         For ``kind='tone'``.
+    samples, samples_rate_hz
+        For ``kind='recording'``: the recorded sound, shape (n,), and its sample rate, Hz.
     """
 
     kind: str = "noise"
@@ -99,6 +104,33 @@ class Waveform:
     taper_s: float = 0.005
     fundamental_hz: float = 500.0
     harmonics: tuple[float, ...] = (1.0,)
+    samples: np.ndarray | None = field(default=None, compare=False, repr=False)
+    samples_rate_hz: float = 0.0
+
+
+def _recorded(wf, rate_hz, n, max_hz):
+    """``wf.samples`` at ``rate_hz``, below ``max_hz``, looped to ``n`` samples (Waveform)."""
+    from fractions import Fraction
+
+    from scipy.signal import resample_poly
+
+    if wf.samples is None or not wf.samples_rate_hz > 0:
+        raise ValueError("a 'recording' waveform needs samples and samples_rate_hz > 0")
+    q = Fraction(float(rate_hz) / float(wf.samples_rate_hz)).limit_denominator(1000)
+    y = resample_poly(np.asarray(wf.samples, float), q.numerator, q.denominator)
+    m = sfft.next_fast_len(y.size, real=True)
+    spec = sfft.rfft(y, m)
+    spec[sfft.rfftfreq(m, 1.0 / rate_hz) >= 0.98 * max_hz] = 0.0  # below the simulator limit
+    y = sfft.irfft(spec, m)[:y.size]
+    lap = int(round(wf.taper_s * rate_hz))
+    period = y.size - lap
+    if period < 1:
+        raise ValueError(f"the recording ({y.size / rate_hz:.3g} s) must be longer than "
+                         f"taper_s ({wf.taper_s!r} s)")
+    out = np.zeros(n + y.size)
+    for k in range(0, n, period):  # the excerpt's end fade overlaps the next copy's start fade
+        out[k:k + y.size] += y
+    return out[:n]
 
 
 @dataclass(frozen=True)
@@ -192,7 +224,11 @@ def _one_waveform(wf, rate_hz, rng, duration_s, max_hz):
     u = np.arange(n) / rate_hz
     n_taper = min(int(round(wf.taper_s * rate_hz)), n // 2)
     fade = _ramp(n_taper, n) * _ramp(n_taper, n)[::-1]
-    if wf.kind == "tone":
+    if wf.kind == "recording":
+        top = 0.0
+        x = _recorded(wf, rate_hz, n, max_hz)
+        fade = np.ones(n)
+    elif wf.kind == "tone":
         k = np.arange(1, len(wf.harmonics) + 1)
         top = k[-1] * wf.fundamental_hz
         x = np.sum(np.asarray(wf.harmonics, float)[:, None]

@@ -288,3 +288,31 @@ def test_moving_scene_probes_and_noise_follow_the_definitions():
     gap = true_t - te - np.linalg.norm(noisy.probe_positions_m - MICS[:3, None, :],
                                        axis=-1) / noisy.sound_speed_mps
     assert np.max(np.abs(gap)) < 1 * NS
+
+
+def test_recorded_waveform_is_the_recording_resampled_and_looped():
+    # A 'recording' waveform is the excerpt resampled by scipy.signal.resample_poly (the
+    # reference library) and repeated with its fades overlap-added; its rms is the one asked.
+    from scipy.signal import resample_poly
+
+    rng = np.random.default_rng(3)
+    fs_in, rate = 16000.0, 32000.0
+    x = rng.standard_normal(8000) * np.hanning(8000) ** 0.05  # 0.5 s, faded ends
+    wf = synth.Waveform("recording", samples=x, samples_rate_hz=fs_in, taper_s=0.02,
+                        rms_pa_at_1m=2.0)
+    y = synth.emitted_signal(wf, rate, rng, duration_s=1.2, max_hz=7000.0)
+    ref = resample_poly(x, 2, 1)
+    ref_f = np.fft.rfft(ref)
+    ref_f[np.fft.rfftfreq(ref.size, 1 / rate) >= 0.98 * 7000.0] = 0.0
+    ref = np.fft.irfft(ref_f, ref.size)
+    scale = y[2000:6000] @ ref[2000:6000] / (ref[2000:6000] @ ref[2000:6000])
+    assert np.allclose(y[640:15000], scale * ref[640:15000], atol=1e-6 * np.abs(y).max())
+    period = ref.size - 640  # 20 ms of overlap at 32 kHz
+    assert np.allclose(y[period + 640:period + 15000], y[640:15000], atol=1e-9)
+    assert np.sqrt(np.mean(y**2)) == pytest.approx(2.0, rel=1e-9)
+
+
+def test_recorded_waveform_needs_its_samples():
+    with pytest.raises(ValueError, match="samples"):
+        synth.emitted_signal(synth.Waveform("recording"), 8000.0, np.random.default_rng(0),
+                             duration_s=0.5)

@@ -7,4 +7,5 @@
 * :mod:`~locate.track.pathfit` - weighted least-squares path fit.
 * :mod:`~locate.track.tracker` - the whole track: path, heading, speed, points.
 * :mod:`~locate.track.doppler` - a speed check from a tone's Doppler shift.
+* :mod:`~locate.track.bands` - the band above an engine's harmonic lines.
 """

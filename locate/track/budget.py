@@ -31,7 +31,7 @@ from locate.track.pathfit import whitening
 from locate.track.retarded import predict_delays
 
 __all__ = ["COMPONENTS", "has_declared", "timing_only", "nuisance_columns", "track_budget",
-           "TIMING_ONLY_NOTE", "TIMING_AND_HEIGHT_NOTE"]
+           "TIMING_ONLY_NOTE", "TIMING_AND_HEIGHT_NOTE", "GROUND_NOTE"]
 
 COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind", "source_height")
 TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertainty is declared "
@@ -41,6 +41,9 @@ TIMING_AND_HEIGHT_NOTE = ("timing only, plus the source height: no survey, clock
                           "or wind uncertainty is declared in the site file ([survey]), so the "
                           "ellipses, heading and speed uncertainties hold only if the mic "
                           "positions, clocks and air are exact")
+GROUND_NOTE = ("; the pull of a ground reflection on the delays of a source near the ground is "
+               "not included (a reflecting ground can leave the points centimetres to decimetres "
+               "outside their ellipses: docs/methods.md)")
 _H_POS = 0.01  # central-difference steps: m, s, m/s (the delays are smooth in all of them)
 _H_CLK = 1e-5
 _H_C = 0.05

@@ -25,6 +25,7 @@ import numpy as np
 from locate.errors import NothingFoundError, OptionError, TdoaError
 from locate.physics import air
 from locate.signal.delays import geometric_max_lag_s
+from locate.track import bands as track_bands
 from locate.track import budget as track_budget
 from locate.track import delays as track_delays
 from locate.track import doppler
@@ -118,6 +119,7 @@ class TrackResult:
     t_emit_sd_s: np.ndarray | None = None
     heard_covariance_m2: np.ndarray | None = None
     source_height: dict | None = None
+    band_hz: tuple | None = None
 
     def point_heading_speed(self):
         """Per point: heading, its sd, speed, its sd (arrays of shape (W,))."""
@@ -428,36 +430,119 @@ def height_profile(result: TrackResult, mic_positions_m, sound_speed_mps, wind_m
 
 def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *,
                     source_z_sd_m=None, **kwargs):
-    """Reconstruct a moving source's track (:func:`_track_recording` documents the parameters).
+    """Reconstruct a moving source's track (:func:`_track_recording`, whose parameters it takes).
 
     ``source_z_sd_m`` (2-D tracks): the uncertainty of ``source_z_m`` (given or assumed).
     Then the height is also read from the delays (:func:`height_profile`): when they point
     elsewhere the track is made again at that height, and the remaining height uncertainty
     enters the points, heading and speed (:mod:`locate.track.budget`).  The result's
     ``source_height`` says which.  None: the height is exact.
+
+    With the automatic band (``band_hz`` None): when the whole band gives no track, or a track
+    whose model misfit is gross (reduced chi-square above :data:`GROSS_MISFIT`: delays picked
+    on side lobes), and the sound has harmonic lines (an engine or a propeller), the track is
+    tried again in the band above its lines (:func:`locate.track.bands.band_above_lines_hz`);
+    the result says which band it used and why.  A refusal names the band to try, or says that
+    the band above the lines gave no track either.
     """
+    auto = kwargs.get("band_hz") is None
     try:
-        if source_z_sd_m is None or float(source_z_sd_m) <= 0 or kwargs.get("dims", 2) != 2:
-            return _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
-                                    **kwargs)
-        return _track_with_height(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
-                                  float(source_z_sd_m), kwargs)
+        res = _track_one(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                         source_z_sd_m, kwargs)
     except NothingFoundError as exc:
-        # found nothing with the automatic band: say which band the mics agree in
-        if kwargs.get("band_hz") is not None or "stationary" in exc.message:
+        if not auto or "stationary" in exc.message:
             raise
-        try:
-            best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m,
-                                    sound_speed_mps)
-        except (ValueError, FloatingPointError, TdoaError):
-            best = None
-        if best is None:
-            exc.message += "; no octave band is coherent between the mics either"
+        # the automatic band found nothing: try the bands the sound itself points to, and
+        # propose none that did not give a track here
+        tried = []
+        for band, why in _candidate_bands(signals, sample_rate_hz, mic_positions_m,
+                                          sound_speed_mps):
+            alt, fail = _in_band(band, signals, sample_rate_hz, mic_positions_m,
+                                 sound_speed_mps, source_z_sd_m, kwargs)
+            if alt is not None:
+                alt.warnings.insert(0, "the whole band gave no track ("
+                                       + exc.message.split(";")[0].split(": the whole")[0]
+                                       + "); "
+                                       f"tracked in {band[0]:.0f}-{band[1]:.0f} Hz, {why}")
+                return alt
+            tried.append(f"{band[0]:.0f}-{band[1]:.0f} Hz ({why}) gave none either: {fail}")
+        if tried:
+            exc.message += "; " + "; ".join(tried) + ("; no band to propose: none of those "
+                                                      "gave a track")
         else:
-            exc.message += (f"; the mics agree best in {best[0]:.0f}-{best[1]:.0f} Hz "
-                            f"(correlation peaks {best[2]:.0f} robust sd above the floor): "
-                            f"try band_hz {best[0]:.0f}:{best[1]:.0f}")
+            exc.message += "; no octave band gave a clear correlation peak between the mics either"
         raise
+    if auto and not res.adequate and _reduced(res) > GROSS_MISFIT:
+        lines = _lines_band(signals, sample_rate_hz)
+        if lines is not None:
+            band = (lines[0], lines[1])
+            alt, _ = _in_band(band, signals, sample_rate_hz, mic_positions_m,
+                              sound_speed_mps, source_z_sd_m, kwargs)
+            if alt is not None and (alt.adequate or _reduced(alt) < _reduced(res)):
+                alt.warnings.insert(0, f"the whole band gave delays that no path explains "
+                                       f"(reduced chi-square {_reduced(res):.0f}); tracked in "
+                                       f"{band[0]:.0f}-{band[1]:.0f} Hz, " + _lines_note(lines))
+                return alt
+    if not auto:
+        res.band_hz = tuple(float(b) for b in kwargs["band_hz"])
+    return res
+
+
+GROSS_MISFIT = 100.0  # reduced chi-square past any model error the widening should cover
+
+
+def _reduced(res):
+    red = res.misfit.get("chi2_reduced") if res.misfit else None
+    return float(red) if red is not None else 0.0
+
+
+def _lines_band(signals, sample_rate_hz):
+    try:
+        return track_bands.band_above_lines_hz(signals, sample_rate_hz)
+    except (ValueError, FloatingPointError):
+        return None
+
+
+def _lines_note(lines):
+    return (f"above the sound's harmonic lines (up to {lines[2]:.0f} Hz: an engine's or a "
+            "propeller's), whose correlation repeats at their spacing and drifts with the "
+            "Doppler shift")
+
+
+def _candidate_bands(signals, sample_rate_hz, mic_positions_m, sound_speed_mps):
+    """Bands to try when the whole band gives no track: [((lo, hi), why), ...]."""
+    out = []
+    lines = _lines_band(signals, sample_rate_hz)
+    if lines is not None:
+        out.append(((lines[0], lines[1]), _lines_note(lines)))
+    try:
+        best = coherent_band_hz(signals, sample_rate_hz, mic_positions_m, sound_speed_mps)
+    except (ValueError, FloatingPointError, TdoaError):
+        best = None
+    if best is not None and (lines is None or abs(np.log2(best[0] / lines[0])) > 0.25
+                             or abs(np.log2(best[1] / lines[1])) > 0.25):
+        out.append(((best[0], best[1]), f"where the mics' correlation peaks stand highest "
+                                        f"({best[2]:.0f} robust sd above the floor)"))
+    return out
+
+
+def _track_one(signals, fs, mics, c, source_z_sd_m, kwargs):
+    """One track in the kwargs' band: the height read from the delays too when uncertain."""
+    if source_z_sd_m is None or float(source_z_sd_m) <= 0 or kwargs.get("dims", 2) != 2:
+        return _track_recording(signals, fs, mics, c, **kwargs)
+    return _track_with_height(signals, fs, mics, c, float(source_z_sd_m), kwargs)
+
+
+def _in_band(band, signals, sample_rate_hz, mic_positions_m, sound_speed_mps, source_z_sd_m,
+             kwargs):
+    """The track in ``band`` (lo, hi), or (None, why not)."""
+    try:
+        res = _track_one(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                         source_z_sd_m, dict(kwargs, band_hz=(band[0], band[1])))
+    except NothingFoundError as exc:
+        return None, exc.message.split(";")[0]
+    res.band_hz = (float(band[0]), float(band[1]))
+    return res, ""
 
 
 HEIGHT_MOVE_SDS = 0.25
@@ -651,7 +736,7 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
     if good.sum() < 3:
         raise NothingFoundError(
             f"only {int(good.sum())} of the {len(plain_c)} start windows of {plain_w:g} s hold a "
-            f"sound that the mics hear coherently (a track needs {MIN_START_WINDOWS}); check "
+            f"sound that all the mics hear alike (a track needs {MIN_START_WINDOWS}); check "
             "start_s/stop_s (is the source audible then?) and band_hz")
     origin = mics.mean(axis=0)
     u = fix_m - origin
@@ -808,6 +893,8 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.uncertainty = {"declared": False, "timing_only": True,
                               "note": track_budget.TIMING_ONLY_NOTE}
+    if dims == 2:
+        result.uncertainty["note"] += track_budget.GROUND_NOTE
     eps, cov_w, ok_w, warp_used = meas
     wpar = _par_of(warp_used, dims, source_z_m)
     pred_w = predict_delays(wpar, wpar.theta(warp_used), centres, mics, pairs, c, wind_mps,
@@ -990,6 +1077,7 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
     holds = result.straight_holds
     return {
         "points": pts,
+        "band_hz": None if result.band_hz is None else list(result.band_hz),
         "heading_deg": result.heading_deg if holds else None,
         "heading_sd_deg": result.heading_sd_deg if holds else None,
         "speed_mps": result.speed_mps if holds else None,
