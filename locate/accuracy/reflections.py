@@ -39,7 +39,7 @@ from __future__ import annotations
 import numpy as np
 
 from locate.physics.air import travel_time_s
-from locate.signal.delays import DelaySet, multipath_bias_s
+from locate.signal.delays import DelaySet, multipath_biases_s
 
 __all__ = ["ground_reflection_term", "TYPICAL_MIC_HEIGHT_M", "estimate_ground_q",
            "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR", "ground_bias_covariance",
@@ -191,9 +191,9 @@ def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_sp
             lags.append(np.where(ok, lag, 0.0))
             gains.append(np.where(ok, q * ratio, 0.0))
             weights.append(wh / len(q_nodes))
-    b_all = multipath_bias_s(delays, np.array(lags), np.array(gains))  # (S, P)
+    # (S, P): with the coarse peak choice, and the fine step alone from the true delay
+    b_all, b = multipath_biases_s(delays, np.array(lags), np.array(gains))
     b_all = np.where(np.isfinite(b_all), b_all, 0.0)
-    b = multipath_bias_s(delays, np.array(lags), np.array(gains), coarse=False)
     b = np.where(np.isfinite(b), b, 0.0)
     wts = np.asarray(weights)
     m = (b * wts[:, None]).T @ b
