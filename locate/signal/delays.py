@@ -653,38 +653,44 @@ def multipath_biases_s(delays: DelaySet, lag_s, gain):
     # +-1.5 samples of it (the same iteration estimate_delays runs on the measured phases).
     # To first order about the delay this is b = -sum c omega dphi / sum c omega^2.
     u = _unit_phasors(om, lag, g)
-    cv = c[None] * (u[:, jj, :] * np.conj(u[:, ii, :]))  # (S, P, B): c e^{i dphi}
-    direct = _newton_from(cv.reshape(n_s * n_pairs, -1), om, np.zeros(n_s * n_pairs), fs)
+    cu = np.conj(u)
+    om_max = float(np.max(om))
+    lim = 1.5 / fs  # the steps stay within +-1.5 samples of their start
+    n_k = _taylor_terms(om_max * lim) + 2
+    powers = ((om / om_max)[:, None] ** np.arange(n_k + 1)[None, :]).astype(complex)
+    moments = np.empty((n_s, n_pairs, n_k + 1), complex)
+    for a in range(0, n_s, 8):  # a few scenarios at a time: the temporaries stay small
+        cv = c[None] * (u[a:a + 8][:, jj] * cu[a:a + 8][:, ii])  # c e^{i dphi}
+        moments[a:a + 8] = cv @ powers
+    direct = _newton_moments(moments.reshape(n_s * n_pairs, -1), om_max, lim)
     direct = direct.reshape(n_s, n_pairs)
     jumped = direct.copy()
-    moved = np.flatnonzero(d0.ravel() != 0.0)
-    if moved.size:
-        start = d0.ravel()[moved]
-        rows = cv.reshape(n_s * n_pairs, -1)[moved] * np.exp(1j * om[None, :] * start[:, None])
-        jumped.reshape(-1)[moved] = start + _newton_from(rows, om, np.zeros(moved.size), fs)
+    s_m, p_m = np.nonzero(d0 != 0.0)
+    if s_m.size:
+        start = d0[s_m, p_m]
+        cv = c[p_m] * (u[s_m, jj[p_m]] * cu[s_m, ii[p_m]]) * np.exp(
+            1j * om[None, :] * start[:, None])
+        jumped[s_m, p_m] = start + _newton_moments(cv @ powers, om_max, lim)
     return jumped, direct
 
 
-def _newton_from(cv, om, d, fs):
-    """Newton steps on sum_b Re(cv_b e^{i omega_b d}) (the weighted cosine sum), from ``d``
-    (R,), each kept within +-1.5 samples of its start; returns the maxima (R,) s."""
-    lim = 1.5 / fs
-    om_max = float(np.max(om))
-    n_k = _taylor_terms(om_max * lim) + 2
-    w = om / om_max
-    moments = cv @ (w[:, None] ** np.arange(n_k + 1)[None, :])  # (R, K+1): sum cv w^k
+def _newton_moments(moments, om_max, lim):
+    """Newton steps on the weighted cosine sum f(delta) = sum_b Re(cv_b e^{i omega_b delta})
+    from delta = 0, kept within +-lim, given its Taylor moments M_k = sum_b cv_b
+    (omega_b / om_max)^k (R, K+1); returns the maxima delta (R,) s.
+
+    f' = -sum cv omega sin, f'' = -sum cv omega^2 cos; e^{i omega delta} as its series in
+    x = om_max delta (|x| <= om_max lim, summed to rounding by K terms)."""
+    n_k = moments.shape[1] - 1
     k = np.arange(n_k - 1)
     fact = np.cumprod(np.concatenate([[1.0], np.arange(1, n_k - 1)]))
-    d0 = d.copy()
+    d = np.zeros(moments.shape[0])
     for _ in range(8):
-        x = om_max * (d - d0)
-        series = (1j * x[:, None]) ** k[None, :] / fact[None, :]  # e^{i omega_max w x / ..}
-        s1 = np.sum(series * moments[:, 1:n_k], axis=1)  # sum cv w e^{i omega (d - d0)}
-        s2 = np.sum(series * moments[:, 2:n_k + 1], axis=1)
-        g1 = om_max * s1.imag
-        g2 = om_max**2 * s2.real
+        series = (1j * om_max * d[:, None]) ** k[None, :] / fact[None, :]
+        g1 = om_max * np.sum(series * moments[:, 1:n_k], axis=1).imag  # sum c omega sin
+        g2 = om_max**2 * np.sum(series * moments[:, 2:n_k + 1], axis=1).real  # c omega^2 cos
         step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
-        d = np.clip(d - step, d0 - lim, d0 + lim)
+        d = np.clip(d - step, -lim, lim)
         if np.all(np.abs(step) < 1e-12):
             break
     return d
