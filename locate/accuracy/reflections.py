@@ -39,7 +39,7 @@ from __future__ import annotations
 import numpy as np
 
 from locate.physics.air import travel_time_s
-from locate.signal.delays import DelaySet, multipath_bias_s
+from locate.signal.delays import DelaySet, multipath_biases_s
 
 __all__ = ["ground_reflection_term", "TYPICAL_MIC_HEIGHT_M", "estimate_ground_q",
            "GROUND_Q_RANGE", "MAX_MIC_HEIGHT_M", "MODEL_ERROR", "ground_bias_covariance",
@@ -79,14 +79,13 @@ _Q_GRID = np.linspace(0.0, 1.0, 21)
 
 def _ground_paths(src, mics, heights, sound_speed_mps, wind_mps):
     """Extra travel time (H, N) and amplitude ratio direct/reflected distance (H, N)."""
-    lags, ratios = [], []
-    for h in heights:
-        s = np.array([src[0], src[1], h])
-        img = np.array([src[0], src[1], -h])
-        lags.append(travel_time_s(img, mics, sound_speed_mps, wind_mps)
-                    - travel_time_s(s, mics, sound_speed_mps, wind_mps))
-        ratios.append(np.linalg.norm(mics - s, axis=1) / np.linalg.norm(mics - img, axis=1))
-    return np.array(lags), np.array(ratios)
+    heights = np.asarray(heights, dtype=float)
+    s = np.stack([np.full_like(heights, src[0]), np.full_like(heights, src[1]), heights],
+                 axis=-1)[:, None, :]  # every height at once
+    img = s * np.array([1.0, 1.0, -1.0])
+    lags = (travel_time_s(img, mics, sound_speed_mps, wind_mps)
+            - travel_time_s(s, mics, sound_speed_mps, wind_mps))
+    return lags, np.linalg.norm(mics - s, axis=-1) / np.linalg.norm(mics - img, axis=-1)
 
 
 def estimate_ground_q(delays: DelaySet, source_m, mic_positions_m, sound_speed_mps,
@@ -180,20 +179,19 @@ def ground_bias_covariance(delays: DelaySet, source_m, mic_positions_m, sound_sp
     else:
         heights = np.array([max(src[2], _MIN_SOURCE_Z_M)])
         h_weights = np.ones(1)
-    lags, gains, weights = [], [], []
-    for h, wh in zip(heights, h_weights, strict=True):
-        s = np.array([src[0], src[1], h])
-        img = np.array([src[0], src[1], -h])
-        lag = travel_time_s(img, mics, sound_speed_mps, wind_mps) - travel_time_s(
-            s, mics, sound_speed_mps, wind_mps)
-        ratio = np.linalg.norm(mics - s, axis=1) / np.linalg.norm(mics - img, axis=1)
-        for q in q_nodes:
-            lags.append(np.where(ok, lag, 0.0))
-            gains.append(np.where(ok, q * ratio, 0.0))
-            weights.append(wh / len(q_nodes))
-    b_all = multipath_bias_s(delays, np.array(lags), np.array(gains))  # (S, P)
+    # every height at once (H, N), then S = H x 4 scenarios, the q nodes inner
+    s = np.stack([np.full_like(heights, src[0]), np.full_like(heights, src[1]), heights],
+                 axis=-1)[:, None, :]
+    img = s * np.array([1.0, 1.0, -1.0])
+    lag = travel_time_s(img, mics, sound_speed_mps, wind_mps) - travel_time_s(
+        s, mics, sound_speed_mps, wind_mps)
+    ratio = np.linalg.norm(mics - s, axis=-1) / np.linalg.norm(mics - img, axis=-1)
+    lags = np.repeat(np.where(ok, lag, 0.0), len(q_nodes), axis=0)
+    gains = np.where(ok, q_nodes[None, :, None] * ratio[:, None, :], 0.0).reshape(lags.shape)
+    weights = np.repeat(np.asarray(h_weights, float) / len(q_nodes), len(q_nodes))
+    # (S, P): with the coarse peak choice, and the fine step alone from the true delay
+    b_all, b = multipath_biases_s(delays, lags, gains)
     b_all = np.where(np.isfinite(b_all), b_all, 0.0)
-    b = multipath_bias_s(delays, np.array(lags), np.array(gains), coarse=False)
     b = np.where(np.isfinite(b), b, 0.0)
     wts = np.asarray(weights)
     m = (b * wts[:, None]).T @ b

@@ -18,9 +18,16 @@ import os
 import sys
 import traceback
 
-import click
+# The commands' matrix products and factorisations are small (pairs x pairs, scenarios x
+# bins): OpenBLAS's own threads cost more than they give there, and on a shared machine far
+# more (the ground-reflection model of one window: 0.16 s wall single-threaded against
+# 0.8-1.2 s with the default threads, 2 cores under load).  Set before numpy is loaded (it is
+# not, yet: the commands import it lazily); a value the user set is kept.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
-from locate import __version__
+import click  # noqa: E402
+
+from locate import __version__  # noqa: E402
 from locate.cli.batch import batch
 from locate.cli.check import check
 from locate.cli.common import as_options, os_error_line, printable

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from locate.common import format_length, write_atomic
+from locate.common import atomic_target, format_length, write_atomic
 from locate.errors import OptionError, ResultFileError, TdoaError
 from locate.geometry.ellipses import ellipse
 
@@ -120,10 +120,40 @@ def jsonable(obj):
     return obj
 
 
+class _ReadyOneByOne(list):
+    """A long list of the document whose items are made JSON-ready (:func:`jsonable`) one at a
+    time while they are written, so that no converted copy of the whole list is held."""
+
+    def __iter__(self):
+        return (jsonable(v) for v in super().__iter__())
+
+
+def _ready_for_stream(obj):
+    """``jsonable(obj)``, except that its lists of entries stay lists of the original items,
+    converted as the encoder reaches each (same text)."""
+    if isinstance(obj, dict):
+        return {str(k): _ready_for_stream(v) for k, v in obj.items()}
+    if isinstance(obj, list) and len(obj) > 16 and all(isinstance(v, dict) for v in obj):
+        return _ReadyOneByOne(obj)
+    return jsonable(obj)
+
+
 def write_json(path, obj, *, indent=1) -> Path:
-    """Write ``obj`` as JSON (indented; ``indent=None``: compact and much faster), atomically."""
-    text = json.dumps(jsonable(obj), indent=indent, allow_nan=False)
-    return write_atomic(path, text + "\n")
+    """Write ``obj`` as JSON (indented; ``indent=None``: compact and much faster), atomically.
+
+    The text is streamed to the temporary file (``json.JSONEncoder.iterencode``), entry by
+    entry: the same text as ``json.dumps(jsonable(obj), indent=indent)``, without the whole
+    document as a string and a converted copy of it in memory (thousands of windows' fixes).
+    """
+    if indent is None:  # compact: the C encoder, which reads lists directly (no streaming)
+        return write_atomic(path, json.dumps(jsonable(obj), indent=None, allow_nan=False)
+                            + "\n")
+    encoder = json.JSONEncoder(indent=indent, allow_nan=False)
+    with atomic_target(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
+        for chunk in encoder.iterencode(_ready_for_stream(obj)):
+            fh.write(chunk)
+        fh.write("\n")
+    return Path(path)
 
 
 def _read_regular(p: Path) -> bytes:

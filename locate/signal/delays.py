@@ -38,6 +38,7 @@ __all__ = [
     "gcc_phat",
     "estimate_delays",
     "multipath_bias_s",
+    "multipath_biases_s",
     "WEAK_PEAK_SCORE",
     "AMBIGUOUS_RATIO",
     # shared with the windowed estimator (locate.signal.windowed) and the onset delays
@@ -548,6 +549,26 @@ def binned_weights(freqs_hz, c, power):
     return fsum[keep] / count[keep], w[:, keep], pw[:, keep] / count[keep]
 
 
+def _unit_phasors(om, lag, g):
+    """e^{i phi} with phi = arg(1 + g e^{-i omega lag}), (S, N, B); 1 where the sum is zero
+    (numpy.angle(0) = 0)."""
+    # the scenarios share their lags (the same height at several reflection coefficients)
+    rows, which = np.unique(lag.reshape(-1, lag.shape[-1]), axis=0, return_inverse=True)
+    turn = np.exp(-1j * om[None, None, :] * rows[..., None])[which.reshape(-1)]
+    h = 1.0 + g[..., None] * turn.reshape(lag.shape + om.shape)
+    mag = np.abs(h)
+    return np.where(mag > 0, h / np.where(mag > 0, mag, 1.0), 1.0)
+
+
+def _taylor_terms(x_max):
+    """Terms of the series of e^{i x} needed for |x| <= x_max to 1e-17 of its largest term."""
+    k, term = 0, 1.0
+    while term > 1e-17 or k < 4:
+        k += 1
+        term *= x_max / k
+    return k + 1
+
+
 def multipath_bias_s(delays: DelaySet, lag_s, gain, *, coarse=True):
     """Delay bias of every pair from a second path at each mic (ground or wall reflection).
 
@@ -580,16 +601,30 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain, *, coarse=True):
     -------
     ndarray, shape (S, P), seconds (zero when the set carries no spectral weights).
     """
+    jumped, direct = multipath_biases_s(delays, lag_s, gain)
+    return jumped if coarse else direct
+
+
+def multipath_biases_s(delays: DelaySet, lag_s, gain):
+    """Both biases of :func:`multipath_bias_s` from one model: ``(with the coarse peak choice,
+    fine step only from the true delay)``, each (S, P) seconds.
+
+    The two share the modelled phases, and where the coarse choice keeps the direct peak (most
+    scenarios) they are the same Newton run.  The Newton steps use the Taylor moments
+    M_k = sum_b c_b omega_b^k e^{i(dphi_b + omega_b d0)} about the start d0 (the steps stay
+    within +-1.5 samples of it, so the series of e^{i omega delta} is summed to rounding with
+    a few tens of terms): the same sums as the cosine sums of every bin, without
+    trigonometry per bin and step.
+    """
     lag = np.atleast_2d(np.asarray(lag_s, dtype=float))
     g = np.atleast_2d(np.asarray(gain, dtype=float))
-    n_pairs = len(delays.pairs)
+    n_s, n_pairs = lag.shape[0], len(delays.pairs)
     if delays.spectral_weight is None or delays.spectral_weight.shape[1] == 0:
-        return np.zeros((lag.shape[0], n_pairs))
+        zero = np.zeros((n_s, n_pairs))
+        return zero, zero.copy()
     om = 2 * np.pi * np.asarray(delays.spectral_freqs_hz, dtype=float)
     c = np.asarray(delays.spectral_weight, dtype=float)  # (P, B)
-    phi = np.angle(1.0 + g[..., None] * np.exp(-1j * om[None, None, :] * lag[..., None]))
     ii, jj = delays.pairs[:, 0], delays.pairs[:, 1]
-    dphi = phi[:, jj, :] - phi[:, ii, :]  # (S, P, B)
     fs = float(delays.sample_rate_hz)
     # 1. The coarse peak: the estimator takes the highest correlation lag first.  Two paths at
     # both mics give peaks at the delay, at +lag_j and at -lag_i (cross terms); with a strong
@@ -603,28 +638,59 @@ def multipath_bias_s(delays: DelaySet, lag_s, gain, *, coarse=True):
     cnt = np.bincount(grp)
     om_c = np.bincount(grp, weights=om) / cnt
     c_c = np.stack([np.bincount(grp, weights=row) for row in c])  # (P, Bc)
-    phi_c = np.angle(1.0 + g[..., None] * np.exp(-1j * om_c[None, None, :] * lag[..., None]))
-    z = c_c[None] * np.exp(1j * (phi_c[:, jj, :] - phi_c[:, ii, :]))  # (S, P, Bc)
-    corr = np.real(np.einsum("spb,bt->spt", z, np.exp(1j * om_c[:, None] * tau[None, :])))
+    u_c = _unit_phasors(om_c, lag, g)
+    z = (c_c[None] * (u_c[:, jj, :] * np.conj(u_c[:, ii, :]))).reshape(n_s * n_pairs, -1)
+    ang = om_c[:, None] * tau[None, :]  # (Bc, T): Re(z e^{i omega tau}) as real products
+    corr = (z.real @ np.cos(ang) - z.imag @ np.sin(ang)).reshape(n_s, n_pairs, -1)
     centre = np.asarray(delays.delay_s, float)
     reach = np.asarray(delays.max_lag_s, float)
     inside = np.abs(np.where(np.isfinite(centre), centre, 0.0)[:, None] + tau[None, :]) <= (
         reach[:, None] + 0.5 / fs)
     inside[:, n_lag] = True  # the direct peak is always inside
     corr = np.where(inside[None], corr, -np.inf)
-    d0 = tau[np.argmax(corr, axis=2)] if coarse else np.zeros(corr.shape[:2])  # (S, P)
+    d0 = tau[np.argmax(corr, axis=2)]  # (S, P)
     # 2. The fine step: Newton on the exact weighted cosine sum from that lag, kept within
     # +-1.5 samples of it (the same iteration estimate_delays runs on the measured phases).
     # To first order about the delay this is b = -sum c omega dphi / sum c omega^2.
-    lim = 1.5 / fs
-    cw1, cw2 = c * om[None, :], c * om[None, :] ** 2
-    d = d0.copy()
+    u = _unit_phasors(om, lag, g)
+    cu = np.conj(u)
+    om_max = float(np.max(om))
+    lim = 1.5 / fs  # the steps stay within +-1.5 samples of their start
+    n_k = _taylor_terms(om_max * lim) + 2
+    powers = ((om / om_max)[:, None] ** np.arange(n_k + 1)[None, :]).astype(complex)
+    moments = np.empty((n_s, n_pairs, n_k + 1), complex)
+    for a in range(0, n_s, 8):  # a few scenarios at a time: the temporaries stay small
+        cv = c[None] * (u[a:a + 8][:, jj] * cu[a:a + 8][:, ii])  # c e^{i dphi}
+        moments[a:a + 8] = cv @ powers
+    direct = _newton_moments(moments.reshape(n_s * n_pairs, -1), om_max, lim)
+    direct = direct.reshape(n_s, n_pairs)
+    jumped = direct.copy()
+    s_m, p_m = np.nonzero(d0 != 0.0)
+    if s_m.size:
+        start = d0[s_m, p_m]
+        cv = c[p_m] * (u[s_m, jj[p_m]] * cu[s_m, ii[p_m]]) * np.exp(
+            1j * om[None, :] * start[:, None])
+        jumped[s_m, p_m] = start + _newton_moments(cv @ powers, om_max, lim)
+    return jumped, direct
+
+
+def _newton_moments(moments, om_max, lim):
+    """Newton steps on the weighted cosine sum f(delta) = sum_b Re(cv_b e^{i omega_b delta})
+    from delta = 0, kept within +-lim, given its Taylor moments M_k = sum_b cv_b
+    (omega_b / om_max)^k (R, K+1); returns the maxima delta (R,) s.
+
+    f' = -sum cv omega sin, f'' = -sum cv omega^2 cos; e^{i omega delta} as its series in
+    x = om_max delta (|x| <= om_max lim, summed to rounding by K terms)."""
+    n_k = moments.shape[1] - 1
+    k = np.arange(n_k - 1)
+    fact = np.cumprod(np.concatenate([[1.0], np.arange(1, n_k - 1)]))
+    d = np.zeros(moments.shape[0])
     for _ in range(8):
-        arg = dphi + om[None, None, :] * d[..., None]
-        g1 = np.einsum("pb,spb->sp", cw1, np.sin(arg))
-        g2 = np.einsum("pb,spb->sp", cw2, np.cos(arg))
+        series = (1j * om_max * d[:, None]) ** k[None, :] / fact[None, :]
+        g1 = om_max * np.sum(series * moments[:, 1:n_k], axis=1).imag  # sum c omega sin
+        g2 = om_max**2 * np.sum(series * moments[:, 2:n_k + 1], axis=1).real  # c omega^2 cos
         step = np.where(g2 > 0, g1 / np.where(g2 > 0, g2, 1.0), 0.0)
-        d = np.clip(d - step, d0 - lim, d0 + lim)
+        d = np.clip(d - step, -lim, lim)
         if np.all(np.abs(step) < 1e-12):
             break
     return d

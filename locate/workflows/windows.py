@@ -31,7 +31,7 @@ from dataclasses import replace
 import numpy as np
 
 from locate.errors import NothingFoundError, TdoaError
-from locate.fix.align import aligned_recordings
+from locate.fix.align import arrival_shifts_s
 from locate.fix.batched import locate_batch
 from locate.fix.solver import REJECT_P_VALUE, Fix, locate_source
 from locate.io.audio import check_signals
@@ -167,9 +167,13 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
     pilot = estimate_delays(signals, fs, max_lag_s=max_lag, band_hz=band_hz, pairs=pairs,
                             offsets_s=residual)
     del signals
-    shifted, shifts = aligned_recordings(recordings, pilot, start_s, stop_s)
+    # windows whose shifted span would leave the recordings (the first and last few, by at
+    # most the largest shift) are not aligned by one span either: they go through fix_span
+    shifts = arrival_shifts_s(pilot, len(names))
     if shifts is None:
         shifted, shifts = recordings, np.zeros(len(names))
+    else:
+        shifted = recordings.with_clocks(recordings.offsets_s - shifts, recordings.drift_ppm)
     move = shifts[pairs[:, 1]] - shifts[pairs[:, 0]]
     lag = max_lag if not np.any(move) else np.maximum(max_lag - np.abs(move), 0.0) + 1e-3
     # without a band: searched for in every window, up to half again the first pass's top
@@ -181,9 +185,28 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
               model_sds=models)
     starts = np.arange(int(np.floor((stop_s - start_s) * fs + 1e-6) - n) // hop + 1) * hop
     entries, notes = [], []
+    t_a = start_s + starts / fs
+    inside = ((t_a + float(np.min(shifts)) >= recordings.start_s - 0.5 / fs)
+              & (t_a + n / fs + float(np.max(shifts)) <= recordings.stop_s + 0.5 / fs))
+    edge_kw = dict(band_hz=band_hz, dims=dims, source_z_m=source_z_m, reject=reject,
+                   source_z_sd_m=source_z_sd_m)
+
+    def one_span(a):
+        try:
+            entries.append(fix_span(recordings, site, cond, a, a + n / fs, t_s=a,
+                                    **edge_kw)[0])
+        except (NothingFoundError, TdoaError) as exc:
+            notes.append(f"span {a:.3f}..{a + n / fs:.3f} s: {exc.message}")
+        if progress is not None:
+            progress(1)
+
+    lead = int(np.argmax(inside)) if inside.any() else len(starts)
+    tail = len(starts) - int(np.argmax(inside[::-1])) if inside.any() else len(starts)
+    for k in range(lead):
+        one_span(float(t_a[k]))
     bw = max(int(block_windows), 1)
-    for b0 in range(0, len(starts), bw):
-        st = starts[b0:b0 + bw]
+    for b0 in range(lead, tail, bw):
+        st = starts[b0:min(b0 + bw, tail)]
         a_s = start_s + st[0] / fs
         b_s = start_s + (st[-1] + n) / fs
         block, res = shifted.read(a_s, b_s)
@@ -268,4 +291,6 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
                                         t_s=a, span_s=(a, b)))
         if progress is not None:
             progress(len(st))
+    for k in range(tail, len(starts)):
+        one_span(float(t_a[k]))
     return entries, notes

@@ -4,6 +4,9 @@
     python tests/benchmarks/bench_windows.py --minutes 2     # one length only
     python tests/benchmarks/bench_windows.py --write-docs    # also rewrite the table in
                                                              # docs/benchmarks.md
+    python tests/benchmarks/bench_windows.py --baseline /path/to/other/checkout
+                                                             # the same command from another
+                                                             # checkout, same run
 
 Scene: 8 mics x 48 kHz (PCM_16 WAV), a steady 100-3000 Hz noise source 40 m outside an
 invented 20 m array, 10 dB SNR, made by the exact simulator (:mod:`locate.synth`) in 2-minute
@@ -26,6 +29,7 @@ import argparse
 import datetime as dt
 import os
 import re
+import resource
 import shutil
 import subprocess
 import sys
@@ -91,28 +95,45 @@ def fft_floor(wav, stop_s, workers=-1):
     return spent, nfft
 
 
-def command(args):
-    """(wall s, peak MB, exit code) of ``tdoa ARGS`` in a fresh child process."""
-    t = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-c", _PEAK, *map(str, args)], cwd=ROOT,
+def _child_cpu_s():
+    use = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return use.ru_utime + use.ru_stime
+
+
+def command(args, cwd=ROOT):
+    """(wall s, peak MB, exit code, CPU s) of ``tdoa ARGS`` in a fresh child process (CPU:
+    user + system time of the child, less sensitive to other jobs on the machine than wall)."""
+    t, cpu = time.perf_counter(), _child_cpu_s()
+    proc = subprocess.run([sys.executable, "-c", _PEAK, *map(str, args)], cwd=cwd,
                           capture_output=True, text=True)
     wall = time.perf_counter() - t
     kb = [int(v.split()[1]) for v in proc.stderr.splitlines() if v.startswith("PEAK_KB")]
-    return wall, (kb[-1] / 1024.0 if kb else float("nan")), proc.returncode
+    return (wall, (kb[-1] / 1024.0 if kb else float("nan")), proc.returncode,
+            _child_cpu_s() - cpu)
 
 
-def bench_fix(folder, minutes):
+def bench_fix(folder, minutes, baseline=None):
+    """The command (and, with ``baseline``, the same command run from that checkout: the
+    package is imported from the child's working folder) between two FFT-floor runs."""
     site = write_scene(folder / f"steady-{minutes:g}", minutes)
     stop = minutes * 60.0
     load0 = os.getloadavg()[0]
     floor1, nfft = fft_floor(site.parent / "steady.wav", stop)
-    wall, mb, code = command(["fix", site, "--from", 0, "--to", stop, "--window", WINDOW_S,
-                              "--json", site.parent / "out.json", "--quiet"])
+    args = ["fix", site, "--from", 0, "--to", stop, "--window", WINDOW_S, "--json",
+            site.parent / "out.json", "--quiet"]
+    wall, mb, code, cpu = command(args)
+    base = None
+    if baseline is not None:
+        b_wall, b_mb, b_code, b_cpu = command(args, cwd=baseline)
+        rev = subprocess.run(["git", "-C", str(baseline), "rev-parse", "--short", "HEAD"],
+                             capture_output=True, text=True).stdout.strip()
+        base = {"wall_s": b_wall, "peak_mb": b_mb, "exit": b_code, "cpu_s": b_cpu,
+                "rev": rev or str(baseline)}
     floor2, _ = fft_floor(site.parent / "steady.wav", stop)
     floor = min(floor1, floor2)
     return {"minutes": minutes, "wall_s": wall, "peak_mb": mb, "exit": code, "floor_s": floor,
             "nfft": nfft, "rtf": stop / wall, "ratio": wall / floor,
-            "load": (load0 + os.getloadavg()[0]) / 2}
+            "load": (load0 + os.getloadavg()[0]) / 2, "cpu_s": cpu, "baseline": base}
 
 
 def bench_events(folder, minutes=60.0):
@@ -122,7 +143,7 @@ def bench_events(folder, minutes=60.0):
     write_recording(audio, minutes, max(2, int(8 * minutes / 60)), "wav")
     site = write_site(folder / "events.toml", site_dict(MICS6_M, temperature_c=10.0,
                                                         recording=audio.name))
-    wall, mb, code = command(["events", site])
+    wall, mb, code, _ = command(["events", site])
     return {"minutes": minutes, "wall_s": wall, "peak_mb": mb, "exit": code,
             "rtf": minutes * 60.0 / wall}
 
@@ -133,8 +154,14 @@ def table(fixes, events, fixes_per_s):
         rows.append(f"| `fix --window 0.5`, {r['minutes']:g} min, 8 ch x 48 kHz | "
                     f"{r['wall_s']:.1f} s, {r['rtf']:.1f}x real time, peak {r['peak_mb']:.0f} MB"
                     f" | {r['ratio']:.1f}x the bare float64 FFT work of the same windows "
-                    f"({r['floor_s']:.1f} s, nfft {r['nfft']}); load average {r['load']:.1f}"
-                    f"; exit {r['exit']} |")
+                    f"({r['floor_s']:.1f} s, nfft {r['nfft']}); command CPU time "
+                    f"{r['cpu_s']:.1f} s; load average {r['load']:.1f}; exit {r['exit']} |")
+        b = r.get("baseline")
+        if b:
+            rows.append(f"| the same, before (commit {b['rev']}, same run) | {b['wall_s']:.1f} s, "
+                        f"{r['minutes'] * 60 / b['wall_s']:.1f}x real time, peak "
+                        f"{b['peak_mb']:.0f} MB | {b['wall_s'] / r['floor_s']:.1f}x the FFT "
+                        f"work; command CPU time {b['cpu_s']:.1f} s; exit {b['exit']} |")
     if events:
         rows.append(f"| `events`, {events['minutes']:g} min, 6 ch x 48 kHz | "
                     f"{events['wall_s']:.0f} s, {events['rtf']:.0f}x real time, peak "
@@ -168,12 +195,14 @@ def main(argv=None):
     ap.add_argument("--minutes", type=float, action="append", default=None)
     ap.add_argument("--no-events", action="store_true")
     ap.add_argument("--write-docs", action="store_true")
+    ap.add_argument("--baseline", type=Path, default=None,
+                    help="also run the command from this checkout (e.g. the main branch)")
     args = ap.parse_args(argv)
     folder = Path(tempfile.mkdtemp(prefix="tdoa-bench-windows-"))
     try:
         fixes = []
         for minutes in args.minutes or [2.0, 30.0]:
-            fixes.append(bench_fix(folder, minutes))
+            fixes.append(bench_fix(folder, minutes, args.baseline))
             print(fixes[-1], flush=True)
         events = None if args.no_events else bench_events(folder)
         text = table(fixes, events, bench_fixes())

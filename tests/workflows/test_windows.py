@@ -39,6 +39,21 @@ def test_every_window_equals_the_single_span_fix_within_a_tenth_of_a_sd(pump):
     new, notes = window_fixes(rec, site, cond, 1.0, 6.0, 0.5, source_z_m=1.0,
                               source_z_sd_m=0.5)
     assert notes == [] and len(new) == 10
+    _same_as_single_spans(new, rec, site, cond)
+
+
+def test_windows_at_the_recording_start_equal_the_single_span_fix(pump):
+    # the first window's span shifted by the mics' arrival offsets would start before the
+    # recording: it is not aligned, as one span is not; the next one is (same reference)
+    site, rec = pump
+    cond = conditions_for(site)
+    new, notes = window_fixes(rec, site, cond, 0.0, 1.0, 0.5, source_z_m=1.0,
+                              source_z_sd_m=0.5)
+    assert notes == [] and [e["span_s"][0] for e in new] == pytest.approx([0.0, 0.5])
+    _same_as_single_spans(new, rec, site, cond)
+
+
+def _same_as_single_spans(new, rec, site, cond):
     for entry in new:
         a, b = entry["span_s"]
         ref = fix_span(rec, site, cond, a, b, t_s=a, source_z_m=1.0, source_z_sd_m=0.5)[0]
