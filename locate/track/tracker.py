@@ -482,13 +482,32 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                 alt.warnings.insert(0, f"the whole band gave delays that no path explains "
                                        f"(reduced chi-square {_reduced(res):.0f}); tracked in "
                                        f"{band[0]:.0f}-{band[1]:.0f} Hz, " + _lines_note(lines))
-                return alt
+                return _trustworthy(alt, kwargs)
     if not auto:
         res.band_hz = tuple(float(b) for b in kwargs["band_hz"])
-    return res
+    return _trustworthy(res, kwargs)
 
 
 GROSS_MISFIT = 100.0  # reduced chi-square past any model error the widening should cover
+
+
+def _trustworthy(res, kwargs):
+    """``res``, or a refusal when the data chose the model and even it leaves the delays
+    unexplained by more than :data:`GROSS_MISFIT` times their noise: a widened track that far
+    from its delays says where the source is not, not where it is.  A model the user forced
+    stays a flagged, widened track (the misfit then says the model is wrong)."""
+    if kwargs.get("model", "straight") == "auto" and _reduced(res) > GROSS_MISFIT:
+        band = (f" in {res.band_hz[0]:.0f}-{res.band_hz[1]:.0f} Hz"
+                if res.band_hz is not None else "")
+        raise NothingFoundError(
+            f"no trustworthy track{band}: no motion model explains the delays (reduced "
+            f"chi-square {_reduced(res):.0f} with the best, {res.model}; above "
+            f"{GROSS_MISFIT:g} the widened ellipses would be guesses): the mics may hear "
+            "several sources, strong reflections or a sound whose correlation repeats (an "
+            "engine's or propeller's harmonic lines); try a band around the source's sound "
+            "above its lines, a shorter span around the pass, or fix single moments with "
+            "`tdoa fix`")
+    return res
 
 
 def _reduced(res):
