@@ -75,7 +75,7 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
 
 def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
            sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
-    from locate.accuracy.inputs import declared_sds
+    from locate.accuracy.inputs import declared_sds, with_source_height
     from locate.io.audio import open_recordings
     from locate.results.documents import write_json
     from locate.track.tracker import track_recording, track_to_dict
@@ -119,6 +119,9 @@ def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_
                 state["done"] += step
 
         sds = declared_sds(site)
+        z_sd = getattr(source_z_m, "sd", None)
+        if z_sd and dims == 2:  # --source-z Z+-S: the height's uncertainty enters the budget
+            sds = with_source_height(sds, z_sd)
         res = track_recording(signals, rec.sample_rate_hz, site.positions_m,
                               cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
                               hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,

@@ -553,6 +553,12 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
             x, fs, t0_s, centres, window_s, warp, mics, pairs, c, wind_mps=wind_mps,
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
+        if track_budget.has_terms(nuisance_sds):
+            # the declared errors' share of each window's delay error (locate.track.budget)
+            wpar = _par_of(warp, dims, source_z_m)
+            cov_w = cov_w + track_budget.window_covariance_s2(
+                wpar, wpar.theta(warp), centres, mics, pairs, c, wind_mps, nuisance_sds,
+                reference_mic=reference_mic)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
             short = len(centres) < 2 * MIN_TRACK_WINDOWS
             raise NothingFoundError(
@@ -652,7 +658,7 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
     # Ann. Statist. 17(3)) sees them; the larger of the two covariances is kept.
     fit = _block_jackknife(fit, centres, meas, mics, pairs, c, fit_kw)
     describe_kw = dict(bearing_from_m=bearing_from_m, points_m=points_m, model=chosen.model)
-    if track_budget.has_declared(nuisance_sds):
+    if track_budget.has_terms(nuisance_sds):
         bud = track_budget.track_budget(fit, meas[1], meas[2], mics, pairs, c, wind_mps,
                                         nuisance_sds)
         timing_cov = describe_fit(fit, mics, c, wind_mps, **describe_kw).covariance_m2
@@ -660,11 +666,15 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.covariance_m2 = timing_cov + bud["point_cov"]
         shares = {k: round(v, 4) for k, v in bud["components"].items()}
+        declared = track_budget.has_declared(nuisance_sds)
         result.uncertainty = {
-            "declared": True, "timing_only": False, "components_share": shares,
+            "declared": declared, "timing_only": not declared, "components_share": shares,
             "note": "includes the declared " + ", ".join(
                 f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
                 for k, v in shares.items()) + " uncertainties (first-order propagation)"}
+        if not declared:  # only the source height's sd: say that the rest is timing only
+            result.uncertainty["note"] = (track_budget.TIMING_ONLY_NOTE
+                                          + "; the stated source height's uncertainty is in")
     else:
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.uncertainty = {"declared": False, "timing_only": True,
