@@ -661,7 +661,8 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
             # one bad mic, or the ground reflection's bias at that mic?  A reflection inside
             # the correlation peak moves a mic's arrival by up to half its lag; when moving the
             # rejected mic's arrival within that bound restores consistency or fits as well as
-            # dropping the mic (the rule of the model errors above), the mic is kept (its misfit then widens the ellipse below) and the cause is named.
+            # dropping the mic (the rule of the model errors above), the mic is kept (its
+            # misfit then widens the ellipse below) and the cause is named.
             k = names.index(trial_rejected[0])
             width = _peak_half_width_s(delays)
             bound = reflection_bias_bound_s(
