@@ -5,8 +5,9 @@ Invented scenes on the exact simulator (locate.synth) with a ground reflection (
 in 3-D with a mast mic), mic positions written N(0, 5 cm) off and the air temperature
 N(0, 2 degC) off, both declared (see the benchmark's docstring).  The 95 % ellipse is
 chi-square with 2 dof (5.991, scipy.stats.chi2).  Fixed seeds, 30 trials per family (not
-tracks: about 20 s a trial, measured by the benchmark only): a family must cover 80-100 % (a true 95 % over 30 trials: binomial sd 4 %; issue 18 asks
-90-98 % over 200 trials, which the benchmark measures), the pooled one 88-99 %.
+tracks: about 20 s a trial, measured by the benchmark only): a family must cover 80-100 %
+(a true 95 % over 30 trials: binomial sd 4 %; issue 18 asks 90-98 % over 200 trials, which
+the benchmark measures), the pooled one 88-99 %.
 """
 
 import sys
