@@ -56,7 +56,7 @@ from locate.errors import ConvergenceError
 from locate.physics import air
 
 __all__ = [
-    "Waveform", "Emission", "StraightPath", "WaypointPath", "Simulation",
+    "Waveform", "recorded_waveform", "Emission", "StraightPath", "WaypointPath", "Simulation",
     "emitted_signal", "emission_time_s", "simulate_events", "simulate_moving",
 ]
 
@@ -65,7 +65,7 @@ _HALF_TAPS = 8           # kernel half-width, oversampled samples (16 taps)
 _KAISER_BETA = 18.0      # chosen by measurement (max error 1.1e-8 rms, module docstring)
 _PHASES = 8192           # kernel table resolution per tap
 _MAX_BAND = 0.45         # highest content as a fraction of the output sample rate
-_KINDS = ("noise", "impulse", "chirp", "tone")
+_KINDS = ("noise", "impulse", "chirp", "tone", "recorded")
 
 
 @dataclass(frozen=True)
@@ -90,6 +90,11 @@ class Waveform:
         Raised-cosine fade at each end, s (impulse: the fade at its end only).
     fundamental_hz, harmonics
         For ``kind='tone'``.
+    samples, samples_rate_hz
+        For ``kind='recorded'``: a recorded sound (mono samples at ``samples_rate_hz``), emitted
+        as it is - resampled to the output rate (polyphase, scipy.signal.resample_poly), cut
+        off at 0.45 of it and scaled to ``rms_pa_at_1m``; its length is ``duration_s`` when
+        that is shorter (``band_hz`` is ignored).
     """
 
     kind: str = "noise"
@@ -99,6 +104,18 @@ class Waveform:
     taper_s: float = 0.005
     fundamental_hz: float = 500.0
     harmonics: tuple[float, ...] = (1.0,)
+    samples: tuple[float, ...] = ()
+    samples_rate_hz: float = 0.0
+
+
+def recorded_waveform(samples, samples_rate_hz, rms_pa_at_1m=1.0) -> Waveform:
+    """A :class:`Waveform` that emits a recorded sound (mono), its whole length."""
+    x = np.asarray(samples, float).ravel()
+    if x.size < 2 or not np.all(np.isfinite(x)) or not float(samples_rate_hz) > 0:
+        raise ValueError("a recorded waveform needs finite mono samples and a sample rate")
+    return Waveform(kind="recorded", duration_s=x.size / float(samples_rate_hz),
+                    rms_pa_at_1m=float(rms_pa_at_1m), samples=tuple(x.tolist()),
+                    samples_rate_hz=float(samples_rate_hz))
 
 
 @dataclass(frozen=True)
@@ -188,6 +205,8 @@ def _one_waveform(wf, rate_hz, rng, duration_s, max_hz):
     n = int(round(duration_s * rate_hz))
     if n < 2:
         raise ValueError(f"waveform duration_s too short: {duration_s!r}")
+    if wf.kind == "recorded":
+        return _recorded(wf, rate_hz, n, max_hz)
     lo, hi = (float(b) for b in wf.band_hz)
     u = np.arange(n) / rate_hz
     n_taper = min(int(round(wf.taper_s * rate_hz)), n // 2)
@@ -213,6 +232,25 @@ def _one_waveform(wf, rate_hz, rng, duration_s, max_hz):
                          f"({_MAX_BAND} x the output sample rate)")
     x = x * fade
     ms = np.sum(x**2) / n
+    return x * (wf.rms_pa_at_1m / np.sqrt(ms)) if ms > 0 else x
+
+
+def _recorded(wf, rate_hz, n, max_hz):
+    """The recorded samples at ``rate_hz`` (polyphase resampling, then a zero-phase cut at
+    ``max_hz``), at most ``n`` long, scaled to the waveform's rms."""
+    from fractions import Fraction
+
+    from scipy import signal as ssig
+
+    x = np.asarray(wf.samples, float)
+    if x.size < 2 or not wf.samples_rate_hz > 0:
+        raise ValueError("a recorded waveform needs samples and samples_rate_hz")
+    ratio = Fraction(float(rate_hz) / float(wf.samples_rate_hz)).limit_denominator(1000)
+    if ratio != 1:
+        x = ssig.resample_poly(x, ratio.numerator, ratio.denominator)
+    sos = ssig.butter(8, max_hz / (0.5 * rate_hz) * 0.98, output="sos")
+    x = ssig.sosfiltfilt(sos, x)[:n]
+    ms = np.sum(x**2) / x.size
     return x * (wf.rms_pa_at_1m / np.sqrt(ms)) if ms > 0 else x
 
 

@@ -12,7 +12,9 @@ declared amounts:
 * source height uniform in 0..2 m, fixed with the default 1 m +- 0.6 m (not given);
 * a ground reflection with a coefficient uniform in 0.3..1 (hard to soft ground).
 
-Families: bursts (a bang inside the array), wall echo (the same plus a building face 8-15 m
+Families: recorded sounds (an impact, a dropped object, a crash, a lift machine or a cow,
+recorded: tests/data/sounds/stationary, LICENSES.md there; the whole sound analysed), bursts
+(a bang inside the array), wall echo (the same plus a building face 8-15 m
 beyond the array, coefficient 0.5-0.9), steady source (1 s of broadband noise), far field
 (a bang 1.5-3 array widths outside), 3-D with a mast mic (a seventh mic 8 m up at the
 array centre, the source 0-6 m up, solved in 3-D: ``--dims 3``).  ``--exact-mics`` writes the
@@ -29,6 +31,7 @@ from __future__ import annotations
 import argparse
 import sys
 import time
+from pathlib import Path
 from types import SimpleNamespace
 
 import numpy as np
@@ -55,7 +58,20 @@ TEMPERATURE_C, HUMIDITY = 12.0, 70.0
 POSITION_SD_M, TEMPERATURE_SD_C = 0.05, 2.0
 CHI2_95 = float(stats.chi2.ppf(0.95, 2))
 FAMILIES = ("bursts, ground reflection", "wall echo", "steady source", "far field",
-            "3-D, mast mic", "tracks")
+            "3-D, mast mic", "tracks", "recorded sounds")
+SOUNDS_DIR = Path(__file__).resolve().parents[1] / "data" / "sounds" / "stationary"
+_SOUNDS = {}
+
+
+def recorded_sounds():
+    """{name: Waveform} of the recorded sounds in tests/data/sounds/stationary (LICENSES.md)."""
+    if not _SOUNDS:
+        import soundfile as sf
+
+        for f in sorted(SOUNDS_DIR.glob("*.wav")):
+            x, fs = sf.read(f)
+            _SOUNDS[f.stem] = synth.recorded_waveform(x, fs, rms_pa_at_1m=2.0)
+    return _SOUNDS
 TRACK_RATE_HZ = 8000.0
 TRACK_Z_M, TRACK_Z_SD_M = 0.5, 0.3  # a road vehicle's sound: tyres to engine, 0-1 m
 MAST = np.array([[20.0, 18.0, 8.0]])  # a mic 8 m up a mast at the array centre (3-D family)
@@ -79,6 +95,12 @@ def _scene(family, rng):
         point, normal = [((40.0 + d, 0, 0), (1, 0, 0)), ((-d, 0, 0), (-1, 0, 0)),
                          ((0, 38.0 + d, 0), (0, 1, 0)), ((0, -d, 0), (0, -1, 0))][side]
         walls = ((np.array(point, float), np.array(normal, float), rng.uniform(0.5, 0.9)),)
+    if family == "recorded sounds":  # an impact, a machine or an animal, as recorded
+        sounds = recorded_sounds()
+        wave = sounds[sorted(sounds)[rng.integers(len(sounds))]]
+        far = np.max(np.linalg.norm(MICS - src, axis=1)) / 330.0
+        b = 0.3 + far + wave.duration_s
+        return src, wave, walls, (0.3, b), b + 0.1
     if family == "steady source":
         wave = Waveform(kind="noise", band_hz=(150.0, 3000.0), duration_s=1.6, rms_pa_at_1m=1.0)
         return src, wave, walls, (0.45, 1.45), 1.8
