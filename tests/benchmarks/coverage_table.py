@@ -22,7 +22,8 @@ array centre, the source 0-6 m up, solved in 3-D: ``--dims 3``), tracks (a road 
 0.5 m +- 0.3 m: half the trials (drawn) a straight pass 0-30 m from the array centre, the others a
 45-120 deg turn; 10 s of broadband sound at 8 kHz, SNR 10 dB; a trial's coverage is the share
 of its track points whose ellipse holds the true position at the point's emission time).
-``--exact-mics`` writes the mic positions without error and declares none (the timing part of the ellipse alone).
+``--exact-mics`` writes the mic positions without error and declares none (the timing part
+of the ellipse alone).
 Coverage = share of trials whose true horizontal position lies inside the reported 95 %
 ellipse (chi-square 2 dof, 5.991, scipy.stats.chi2); a trial that gives no fix counts as
 not covered.  The binomial standard error of a 95 % coverage over 200 trials is 1.5 %.
