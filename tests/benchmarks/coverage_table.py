@@ -224,9 +224,14 @@ def coverage(family, n_trials, seed, exact_mics=False, part=(0, 1)):
     of the parts, weighted by their trial counts, give the whole family's."""
     rng = np.random.default_rng([seed, FAMILIES.index(family)])
     if family == "tracks":
-        idx = range(part[0], n_trials, part[1])
-        hits = [track_trial(np.random.default_rng([seed, FAMILIES.index(family), i]),
-                            exact_mics) for i in idx]
+        hits = []
+        for i in range(part[0], n_trials, part[1]):
+            t0 = time.time()
+            hits.append(track_trial(np.random.default_rng([seed, FAMILIES.index(family), i]),
+                                    exact_mics))
+            # one line per trial (stderr): a long run can be read while it goes
+            print(f"  tracks trial {i}: {hits[-1]} ({time.time() - t0:.0f} s)", file=sys.stderr,
+                  flush=True)
         none = sum(h is None for h in hits)
         return sum(float(h or 0.0) for h in hits) / max(len(hits), 1), len(hits), none
     else:
