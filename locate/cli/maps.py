@@ -75,13 +75,20 @@ def track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z
 
 def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_z_m,
            sound_speed_mps, model, segment_s, speed_guess_mps, tone, json_path, map_path):
-    from locate.accuracy.inputs import declared_sds, with_source_height
+    from locate.accuracy.inputs import declared_sds
     from locate.io.audio import open_recordings
     from locate.results.documents import write_json
     from locate.track.tracker import track_recording, track_to_dict
-    from locate.workflows.fixing import add_clock_times, conditions_for, fix_result
+    from locate.workflows.fixing import (
+        add_clock_times,
+        conditions_for,
+        fix_result,
+        resolve_source_height,
+    )
 
     band_hz = parse_band(band)
+    # the same height rule as `fix`: given or assumed, with its uncertainty (2-D tracks)
+    source_z_m, source_z_sd_m, _ = resolve_source_height(source_z_m, None, dims)
     check_span_args(start_s, stop_s, window_s)
     if not (math.isfinite(speed_guess_mps) and speed_guess_mps > 0):
         raise OptionError(f"--speed-guess must be a positive speed, got {speed_guess_mps:g} m/s",
@@ -119,18 +126,18 @@ def _track(ctx, site_path, start_s, stop_s, window_s, hop_s, band, dims, source_
                 state["done"] += step
 
         sds = declared_sds(site)
-        z_sd = getattr(source_z_m, "sd", None)
-        if z_sd and dims == 2:  # --source-z Z+-S: the height's uncertainty enters the budget
-            sds = with_source_height(sds, z_sd)
         res = track_recording(signals, rec.sample_rate_hz, site.positions_m,
                               cond.sound_speed_mps, t0_s=start_s, window_s=window_s,
                               hop_s=hop_s, band_hz=band_hz, dims=dims, source_z_m=source_z_m,
+                              source_z_sd_m=source_z_sd_m if dims == 2 else None,
                               wind_mps=cond.wind_mps, model=model, segment_s=segment_s,
                               expected_speed_mps=speed_guess_mps, points_m=points,
                               bearing_from_m=bearing_from, tone_hz=tone_hz,
                               nuisance_sds=sds, progress=progress)
     doc = track_to_dict(res, site.mic_names, point_names=names)
     warnings = list(rec.warnings) + list(res.warnings)
+    if res.source_height is not None:
+        source_z_m = res.source_height["used_z_m"]
     if res.uncertainty.get("timing_only"):
         warnings.append("track uncertainties are " + res.uncertainty["note"])
     result = fix_result(site, cond, [], kind="track", warnings=warnings, dims=dims,
@@ -187,6 +194,11 @@ def _print_track(ctx, site, cond, doc, bearing_from_name):
     note = (doc.get("uncertainty") or {}).get("note")
     if note:
         echo(ctx, f"Uncertainty: {note}")
+    hgt = doc.get("source_height")
+    if hgt:
+        how = ("from the delays" if hgt["from_delays"] else
+               f"assumed or given; the delays agree: {hgt['z_m']:.2f} ± {hgt['sd_m']:.2f} m")
+        echo(ctx, f"Source height: {hgt['used_z_m']:.2f} ± {hgt['used_sd_m']:.2f} m ({how})")
     if pts:
         lag = max(p["lag_m"] for p in pts)
         ang = max(abs(p["lag_bearing_deg"]) for p in pts)

@@ -52,9 +52,9 @@ from locate.errors import OptionError
               help="How many new mics to propose (0: map the layout only).")
 @click.option("--dims", type=click.IntRange(2, 3), default=2, show_default=True,
               help="Plan for 2-D fixes (height given) or 3-D fixes.")
-@click.option("--source-z", "source_z_m", type=FINITE, default=0.0, show_default=True,
+@click.option("--source-z", "source_z_m", type=FINITE, default=1.0, show_default=True,
               help="Height of the mapped plane: the source height, metres (same datum as the "
-                   "mics).")
+                   "mics); the default is the height `fix` assumes when none is given.")
 @click.pass_context
 @transactional
 def plan(ctx, site_path, out_path, json_path, timing_sd_s, band, snr_db, duration_s,

@@ -3,8 +3,8 @@
 The windowed delays carry only the correlation (timing) noise.  The path also depends on
 nuisance inputs known to a declared standard deviation (the site's ``[survey]``; the dict of
 :func:`locate.accuracy.inputs.declared_sds`): mic positions, recorder clock offsets, the sound
-speed and a uniform wind.  They are common to every window, so their effect is a correlated
-shift of the whole path, not extra scatter per window.
+speed, a uniform wind and (2-D tracks) the source height.  They are common to every window,
+so their effect is a correlated shift of the whole path, not extra scatter per window.
 
 Method - law of propagation of uncertainty to first order (JCGM 100:2008, GUM, 5.1.2 eq. (10);
 5.2.2 eq. (13) for outputs that share inputs), as the stationary budget does:
@@ -19,14 +19,6 @@ Method - law of propagation of uncertainty to first order (JCGM 100:2008, GUM, 5
   the reference mic's position and its clock), again by central differences;
 * the covariances ``sum_k D_k diag(sd_k^2) D_k^T`` add to the timing covariances of the path
   parameters, the points and (through ``dtheta``) the velocity.
-
-The height of a 2-D path (``source_height_m`` in the sds, from ``--source-z Z+-S``) is not
-a smooth input: near the mics' height the delays depend on it to second order only, so a
-derivative at the stated height would miss it.  Its term is the mean square of the path's
-change over z0 -/+ sqrt(3) sd (the three-point rule with weights 1/6, 2/3, 1/6 of the
-stationary budget, :mod:`locate.accuracy.budget`; the middle point is the stated height and
-adds nothing), heights kept at or above the ground (z = 0 of the frame).  For a path
-linear in the height this is the first-order term exactly.
 """
 
 from __future__ import annotations
@@ -38,13 +30,17 @@ import numpy as np
 from locate.track.pathfit import whitening
 from locate.track.retarded import predict_delays
 
-__all__ = ["COMPONENTS", "has_declared", "has_terms", "window_covariance_s2", "nuisance_columns",
-           "track_budget", "TIMING_ONLY_NOTE"]
+__all__ = ["COMPONENTS", "has_declared", "timing_only", "nuisance_columns", "track_budget",
+           "window_covariance_s2", "TIMING_ONLY_NOTE", "TIMING_AND_HEIGHT_NOTE"]
 
 COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind", "source_height")
 TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertainty is declared "
                     "in the site file ([survey]), so the ellipses, heading and speed "
                     "uncertainties hold only if the mic positions, clocks and air are exact")
+TIMING_AND_HEIGHT_NOTE = ("timing only, plus the source height: no survey, clock, temperature "
+                          "or wind uncertainty is declared in the site file ([survey]), so the "
+                          "ellipses, heading and speed uncertainties hold only if the mic "
+                          "positions, clocks and air are exact")
 _H_POS = 0.01  # central-difference steps: m, s, m/s (the delays are smooth in all of them)
 _H_CLK = 1e-5
 _H_C = 0.05
@@ -52,15 +48,16 @@ _H_W = 0.05
 
 
 def has_declared(sds) -> bool:
-    """True when a survey, clock, air or wind uncertainty is declared (not the height)."""
-    return sds is not None and any(bool(v) for k, v in sds.get("declared", {}).items()
-                                   if k != "source_height")
+    """Any declared nuisance, the source height of a 2-D track included."""
+    return sds is not None and (any(bool(v) for v in sds.get("declared", {}).values())
+                                or float(sds.get("source_height_m", 0.0)) > 0)
 
 
-def has_terms(sds) -> bool:
-    """True when the budget adds anything: a declared uncertainty or a height sd."""
-    return has_declared(sds) or (sds is not None
-                                 and float(sds.get("source_height_m", 0.0) or 0.0) > 0)
+def timing_only(sds) -> bool:
+    """True when no survey, clock or air uncertainty is declared (the source height, which
+    a 2-D track always assumes or profiles, does not count)."""
+    d = {} if sds is None else sds.get("declared", {})
+    return not any(d.get(k) for k in ("mic_positions", "clocks", "sound_speed", "wind"))
 
 
 def nuisance_columns(sds, n_mics):
@@ -81,8 +78,8 @@ def nuisance_columns(sds, n_mics):
     if sds["wind_mps"] > 0:
         for axis in (0, 1):
             cols.append(("wind", "wind", axis, float(sds["wind_mps"])))
-    if float(sds.get("source_height_m", 0.0) or 0.0) > 0:
-        cols.append(("source_height", "height", None, float(sds["source_height_m"])))
+    if float(sds.get("source_height_m", 0.0)) > 0:  # the height of a 2-D track
+        cols.append(("source_height", "z", None, float(sds["source_height_m"])))
     return cols
 
 
@@ -99,32 +96,9 @@ def _perturbed(kind, index, h, mics, c, wind, t_h, ref):
         th = t_h + shift[ref]  # the reference mic's clock moves the heard times too
     elif kind == "c":
         cc = c + h
-    else:
+    elif kind == "wind":
         w[index] += h
-    return m, cc, w, th, shift
-
-
-def _height_term(par, theta, t_h, sel, mics, pairs, c, wind, kw, solve, m_w, t_emit, sd):
-    """(point covariance (W, 3, 3), parameter covariance) of an uncertain 2-D path height."""
-    z0 = float(par.source_z_m)
-    d0 = predict_delays(par, theta, t_h[sel], mics, pairs, c, wind, jacobian=False, **kw)[0]
-    p0 = par.path(theta).position_m(t_emit)
-    point = np.zeros((len(t_emit), 3, 3))
-    th_cov = np.zeros((par.n_params, par.n_params))
-    for sign in (1.0, -1.0):
-        z = max(z0 + sign * np.sqrt(3.0) * sd, 0.0)
-        if z == z0:
-            continue
-        pz = dataclasses.replace(par, source_z_m=z)
-        d = predict_delays(pz, theta, t_h[sel], mics, pairs, c, wind, jacobian=False, **kw)[0]
-        # the fit absorbs what it can of the height's delay change: the path moves by dtheta
-        dtheta = -solve @ np.einsum("wqp,wp->wq", m_w, d - d0).reshape(-1)
-        dp = pz.path(theta + dtheta).position_m(t_emit) - p0
-        dp[:, 2] = 0.0  # the stated height is the point's height; its sd is said apart
-        dp = np.where(np.isfinite(dp), dp, 0.0)
-        point += np.einsum("wi,wj->wij", dp, dp) / 6.0
-        th_cov += np.outer(dtheta, dtheta) / 6.0
-    return point, th_cov
+    return m, cc, w, th, shift  # "z": the path's height moves (track_budget)
 
 
 def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_speed_mps,
@@ -132,42 +106,37 @@ def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_sp
     """Each window's delay covariance from the declared nuisances, shape (W, P, P).
 
     ``sum_k sd_k^2 g_k g_k^T`` with ``g_k`` the change of the window's predicted delays per
-    unit nuisance k (the columns of :func:`nuisance_columns`; the height by the three-point
-    rule of the module docstring).  The fit weighs each window's delays with it besides the
+    unit nuisance k (the columns of :func:`nuisance_columns`, the same central differences
+    as :func:`track_budget`).  The tracker weighs each window's delays with it besides the
     correlation noise, so a misfit that the declared errors explain is not taken for a bad
-    model (chi-square scaling, window rejection, model adequacy); it is added per window as
-    if independent, while the shift it causes is common to all windows - that part is
-    :func:`track_budget`'s.
+    model (chi-square scaling, window rejection, model adequacy) and then counted twice;
+    it enters each window as if independent, while the shift it causes is common to all
+    windows - that part is :func:`track_budget`'s.
     """
     mics = np.asarray(mic_positions_m, float)
     pairs = np.asarray(pairs, int)
     c = float(sound_speed_mps)
     t_h = np.asarray(t_heard_s, float)
     kw = dict(reference_mic=reference_mic)
-    d0 = predict_delays(par, theta, t_h, mics, pairs, c, wind_mps, jacobian=False, **kw)[0]
-    out = np.zeros(d0.shape + (d0.shape[-1],))
+    out = None
     for _, kind, index, sd in nuisance_columns(sds, len(mics)):
-        if kind == "height":
-            if par.dims == 3:
-                continue
-            for sign in (1.0, -1.0):
-                z = max(float(par.source_z_m) + sign * np.sqrt(3.0) * sd, 0.0)
-                pz = dataclasses.replace(par, source_z_m=z)
-                g = predict_delays(pz, theta, t_h, mics, pairs, c, wind_mps, jacobian=False,
-                                   **kw)[0] - d0
-                g = np.where(np.isfinite(g), g, 0.0)
-                out += np.einsum("wp,wq->wpq", g, g) / 6.0
+        if kind == "z" and par.dims != 2:
             continue
-        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
+        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W, "z": _H_POS}[kind]
         d_pm = []
         for sign in (1.0, -1.0):
             m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h,
                                              reference_mic)
-            d = predict_delays(par, theta, th, m, pairs, cc, w, jacobian=False, **kw)[0]
+            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
+                   if kind == "z" else par)
+            d = predict_delays(p_k, theta, th, m, pairs, cc, w, jacobian=False, **kw)[0]
             d_pm.append(d + (shift[pairs[:, 1]] - shift[pairs[:, 0]]))
         g = (d_pm[0] - d_pm[1]) / (2 * h) * sd
         g = np.where(np.isfinite(g), g, 0.0)
-        out += np.einsum("wp,wq->wpq", g, g)
+        add = np.einsum("wp,wq->wpq", g, g)
+        out = add if out is None else out + add
+    if out is None:
+        out = np.zeros((len(t_h), len(pairs), len(pairs)))
     return out
 
 
@@ -208,27 +177,24 @@ def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed
     point_cov = np.zeros((n_w, 3, 3))
     by = {}
     for comp, kind, index, sd in nuisance_columns(sds, len(mics)):
-        if kind == "height":
-            if par.dims == 3:
-                continue  # a 3-D path solves its height
-            add, dth = _height_term(par, theta, t_h, sel, mics, pairs, c, wind_mps, kw, solve,
-                                    m_w, fit.t_emit_s, sd)
-            theta_cov += dth
-            point_cov += add
-            by[comp] = by.get(comp, 0.0) + add
-            continue
-        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
+        if kind == "z" and par.dims != 2:
+            continue  # a 3-D track solves its height
+        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W, "z": _H_POS}[kind]
         d_pred, d_pt = [], []
         for sign in (1.0, -1.0):
             m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h, ref)
-            d = predict_delays(par, theta, th[sel], m, pairs, cc, w, jacobian=False, **kw)[0]
+            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
+                   if kind == "z" else par)
+            d = predict_delays(p_k, theta, th[sel], m, pairs, cc, w, jacobian=False, **kw)[0]
             d = d + (shift[pairs[:, 1]] - shift[pairs[:, 0]])
             d_pred.append(d)
         g = (d_pred[0] - d_pred[1]) / (2 * h)  # (W_sel, P) per unit nuisance
         dtheta = -solve @ np.einsum("wqp,wp->wq", m_w, g).reshape(-1)  # (n,)
         for sign in (1.0, -1.0):
             # the point at its stated emission time (as locate.track.tracker.describe_fit)
-            d_pt.append(par.path(theta + sign * h * dtheta).position_m(fit.t_emit_s))
+            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
+                   if kind == "z" else par)
+            d_pt.append(p_k.path(theta + sign * h * dtheta).position_m(fit.t_emit_s))
         dp = (d_pt[0] - d_pt[1]) / (2 * h)  # (W, 3)
         dp = np.where(np.isfinite(dp), dp, 0.0)
         theta_cov += sd**2 * np.outer(dtheta, dtheta)

@@ -117,6 +117,7 @@ class TrackResult:
     uncertainty: dict = field(default_factory=dict)
     t_emit_sd_s: np.ndarray | None = None
     heard_covariance_m2: np.ndarray | None = None
+    source_height: dict | None = None
 
     def point_heading_speed(self):
         """Per point: heading, its sd, speed, its sd (arrays of shape (W,))."""
@@ -342,10 +343,105 @@ def overlap_factor(window_s, hop_s):
     return float(1.0 + 2.0 * np.sum(np.clip(1.0 - k * hop_s / window_s, 0.0, None)))
 
 
-def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, **kwargs):
+HEIGHT_PROFILE_SDS = tuple(np.linspace(-2.5, 2.5, 11))
+"""Heights tried around the given or assumed one of a 2-D track, in its sds."""
+HEIGHT_FLOOR_SD_M = 0.05
+"""Least sd of a height read from the delays: a vehicle or a person radiates from a body tens
+of centimetres across, so its acoustic height is not sharper than this (common practice)."""
+
+
+def height_profile(result: TrackResult, mic_positions_m, sound_speed_mps, wind_mps, z0_m,
+                   sd_m):
+    """The source height of a 2-D track from its delays, with the given/assumed height as prior.
+
+    The final delays of ``result`` are refitted (same windows, knots and degree, no outlier
+    rejection) at fixed heights: ``J(z) = chi2(z) / s + ((z - z0) / sd)^2`` is the negative
+    log posterior (up to a constant) of the height with the Gaussian prior N(z0, sd^2)
+    (e.g. Gelman et al., Bayesian Data Analysis, ch. 2), ``s`` the reduced chi-square at the
+    best height when above one times the variance factor of overlapping windows.  ``J`` is
+    tried on a grid (:data:`HEIGHT_PROFILE_SDS`), its lowest cell refined by a bounded scalar
+    search (scipy.optimize.minimize_scalar), and the sd taken from its curvature
+    (``sd_z = (J''/2)^-1/2``).  The grid matters: with every mic at one height the delays
+    cannot tell a height from its mirror image in the mics' plane, and the prior picks.
+
+    Returns
+    -------
+    dict
+        ``z_m``, ``sd_m``, ``prior_z_m``, ``prior_sd_m``, ``chi2_drop`` (chi-square at the
+        prior height minus at ``z_m``), ``heights_m``, ``chi2`` (the grid).
+    """
+    from scipy.optimize import minimize_scalar
+
+    fit = result.fit
+    meas = result.fit_inputs
+    mics = np.asarray(mic_positions_m, float)
+    usable = np.asarray(meas["usable"], bool) & fit.used[:, None]
+    z0, sd = float(z0_m), float(sd_m)
+    cache = {}
+
+    def chi2(z):
+        z = float(z)
+        if z not in cache:
+            par = dataclasses.replace(fit.par, source_z_m=z)
+            try:
+                f = fit_path(fit.t_heard_s, meas["absolute_delays_s"], meas["covariance_s2"],
+                             mics, meas["pairs"], sound_speed_mps, wind_mps=wind_mps, dims=2,
+                             source_z_m=z, usable=usable, initial=par.path(fit.theta),
+                             knots_s=fit.par.knot_times_s, degree=fit.par.degree,
+                             reference_mic=fit.reference_mic, reject=False)
+                cache[z] = float(f.chi2) if np.isfinite(f.chi2) else np.inf
+            except (TdoaError, ValueError, np.linalg.LinAlgError):
+                cache[z] = np.inf
+        return cache[z]
+
+    zs = z0 + sd * np.asarray(HEIGHT_PROFILE_SDS)
+    grid = np.array([chi2(z) for z in zs])
+    out = {"prior_z_m": z0, "prior_sd_m": sd, "z_m": z0, "sd_m": sd, "chi2_drop": 0.0,
+           "heights_m": zs.tolist(), "chi2": [float(v) for v in grid]}
+    if not np.any(np.isfinite(grid)):
+        return out
+    dof = max(int(fit.dof), 1)
+    factor = overlap_factor(meas.get("window_s", 1.0), meas.get("hop_s", 1.0))
+    scale = max(float(np.min(grid)) / dof, 1.0) * factor
+
+    def post(z):
+        return chi2(z) / scale + ((z - z0) / sd) ** 2
+
+    # every local minimum of the grid is refined (the chi-square of exact delays is narrow
+    # and may have a mirror basin); the lowest refined posterior wins
+    pg = np.array([post(z) for z in zs])
+    best = (np.inf, z0)
+    for k in range(len(zs)):
+        if pg[k] <= pg[max(k - 1, 0)] and pg[k] <= pg[min(k + 1, len(zs) - 1)]:
+            lo, hi = zs[max(k - 1, 0)], zs[min(k + 1, len(zs) - 1)]
+            zk = float(minimize_scalar(post, bounds=(lo, hi), method="bounded",
+                                       options={"xatol": 1e-3 * sd}).x)
+            best = min(best, (post(zk), zk))
+    z = best[1]
+    h = max(1e-3, 1e-2 * sd)
+    curv = (post(z + h) - 2.0 * post(z) + post(z - h)) / h**2
+    sd_z = float(np.sqrt(2.0 / curv)) if np.isfinite(curv) and curv > 2.0 / sd**2 else sd
+    out.update(z_m=z, sd_m=min(max(sd_z, HEIGHT_FLOOR_SD_M), sd),
+               chi2_drop=float(chi2(z0) - chi2(z)))
+    return out
+
+
+def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *,
+                    source_z_sd_m=None, **kwargs):
+    """Reconstruct a moving source's track (:func:`_track_recording` documents the parameters).
+
+    ``source_z_sd_m`` (2-D tracks): the uncertainty of ``source_z_m`` (given or assumed).
+    Then the height is also read from the delays (:func:`height_profile`): when they point
+    elsewhere the track is made again at that height, and the remaining height uncertainty
+    enters the points, heading and speed (:mod:`locate.track.budget`).  The result's
+    ``source_height`` says which.  None: the height is exact.
+    """
     try:
-        return _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
-                                **kwargs)
+        if source_z_sd_m is None or float(source_z_sd_m) <= 0 or kwargs.get("dims", 2) != 2:
+            return _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                                    **kwargs)
+        return _track_with_height(signals, sample_rate_hz, mic_positions_m, sound_speed_mps,
+                                  float(source_z_sd_m), kwargs)
     except NothingFoundError as exc:
         # found nothing with the automatic band: say which band the mics agree in
         if kwargs.get("band_hz") is not None or "stationary" in exc.message:
@@ -362,6 +458,46 @@ def track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *
                             f"(correlation peaks {best[2]:.0f} robust sd above the floor): "
                             f"try band_hz {best[0]:.0f}:{best[1]:.0f}")
         raise
+
+
+HEIGHT_MOVE_SDS = 0.25
+"""Make the track again at the delays' height when it is this many (final) sds away."""
+
+
+def _with_height_sd(sds, sd_m, n_mics):
+    zero = np.zeros(n_mics)
+    out = dict(sds) if sds else {"declared": {}, "position_m": zero, "height_m": zero,
+                                 "clock_s": zero, "clock_group": np.zeros(n_mics, int),
+                                 "sound_speed_mps": 0.0, "wind_mps": 0.0}
+    out["source_height_m"] = float(sd_m)
+    return out
+
+
+def _track_with_height(signals, fs, mics, c, sd_m, kwargs):
+    z0 = float(kwargs.get("source_z_m", 0.0))
+    base = kwargs.get("nuisance_sds")
+    first = _track_recording(signals, fs, mics, c,
+                             **dict(kwargs, nuisance_sds=_with_height_sd(base, sd_m, len(mics))))
+    prof = height_profile(first, mics, c, kwargs.get("wind_mps"), z0, sd_m)
+    result = first
+    moved = abs(prof["z_m"] - z0) > HEIGHT_MOVE_SDS * prof["sd_m"] and prof["chi2_drop"] > 4.0
+    if moved:
+        again = _track_recording(signals, fs, mics, c,
+                                 **dict(kwargs, source_z_m=prof["z_m"],
+                                        nuisance_sds=_with_height_sd(base, prof["sd_m"],
+                                                                     len(mics))))
+        if again.fit.chi2 <= first.fit.chi2 or not first.adequate:
+            result = again
+        else:
+            moved = False
+    result.source_height = dict(prof, used_z_m=float(prof["z_m"] if moved else z0),
+                                used_sd_m=float(prof["sd_m"] if moved else sd_m),
+                                from_delays=bool(moved))
+    if moved:
+        result.warnings.append(
+            f"the delays place the source at {prof['z_m']:.2f} ± {prof['sd_m']:.2f} m height, "
+            f"not the {z0:g} m given or assumed: the track was made at that height")
+    return result
 
 
 def coherent_band_hz(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, *,
@@ -553,7 +689,7 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
             x, fs, t0_s, centres, window_s, warp, mics, pairs, c, wind_mps=wind_mps,
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
-        if track_budget.has_terms(nuisance_sds):
+        if track_budget.has_declared(nuisance_sds):
             # the declared errors' share of each window's delay error (locate.track.budget)
             wpar = _par_of(warp, dims, source_z_m)
             cov_w = cov_w + track_budget.window_covariance_s2(
@@ -658,7 +794,7 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
     # Ann. Statist. 17(3)) sees them; the larger of the two covariances is kept.
     fit = _block_jackknife(fit, centres, meas, mics, pairs, c, fit_kw)
     describe_kw = dict(bearing_from_m=bearing_from_m, points_m=points_m, model=chosen.model)
-    if track_budget.has_terms(nuisance_sds):
+    if track_budget.has_declared(nuisance_sds):
         bud = track_budget.track_budget(fit, meas[1], meas[2], mics, pairs, c, wind_mps,
                                         nuisance_sds)
         timing_cov = describe_fit(fit, mics, c, wind_mps, **describe_kw).covariance_m2
@@ -666,15 +802,14 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.covariance_m2 = timing_cov + bud["point_cov"]
         shares = {k: round(v, 4) for k, v in bud["components"].items()}
-        declared = track_budget.has_declared(nuisance_sds)
-        result.uncertainty = {
-            "declared": declared, "timing_only": not declared, "components_share": shares,
-            "note": "includes the declared " + ", ".join(
-                f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
-                for k, v in shares.items()) + " uncertainties (first-order propagation)"}
-        if not declared:  # only the source height's sd: say that the rest is timing only
-            result.uncertainty["note"] = (track_budget.TIMING_ONLY_NOTE
-                                          + "; the stated source height's uncertainty is in")
+        note = ("includes the declared " + ", ".join(
+            f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
+            for k, v in shares.items()) + " uncertainties (first-order propagation)")
+        only = track_budget.timing_only(nuisance_sds)
+        if only:
+            note = track_budget.TIMING_AND_HEIGHT_NOTE
+        result.uncertainty = {"declared": not only, "timing_only": only,
+                              "components_share": shares, "note": note}
     else:
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.uncertainty = {"declared": False, "timing_only": True,
@@ -883,4 +1018,5 @@ def track_to_dict(result: TrackResult, mic_names, point_names=None) -> dict:
         "residual_rms_s": result.fit.residual_rms_s, "chi2": result.fit.chi2,
         "dof": result.fit.dof, "stationary": result.stationary,
         "doppler": result.doppler, "warnings": list(result.warnings),
+        "source_height": result.source_height,
     }

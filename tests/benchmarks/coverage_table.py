@@ -201,13 +201,12 @@ def track_trial(rng, exact_mics=False, ground=True):
     c = float(sound_speed_mps(t_written, HUMIDITY))
     sds = nuisance_sds(len(MICS), position_sd_m=position_sd,
                        sound_speed_sd_mps=abs(sound_speed_slope_mps_per_c(t_written, HUMIDITY))
-                       * TEMPERATURE_SD_C, temperature_sd_c=TEMPERATURE_SD_C,
-                       source_height_sd_m=TRACK_Z_SD_M)
+                       * TEMPERATURE_SD_C, temperature_sd_c=TEMPERATURE_SD_C)
     a, b = 1.0, 9.5
     x = sim.signals[:, int(a * TRACK_RATE_HZ):int(b * TRACK_RATE_HZ)]
     try:
         res = track_recording(x, TRACK_RATE_HZ, written, c, t0_s=a, source_z_m=TRACK_Z_M,
-                              model="auto", nuisance_sds=sds)
+                              source_z_sd_m=TRACK_Z_SD_M, model="auto", nuisance_sds=sds)
     except TdoaError:
         return None
     err = (res.position_m - path.position_m(res.t_emit_s))[:, :2]

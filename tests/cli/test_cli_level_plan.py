@@ -399,3 +399,12 @@ def test_the_demo_van_pass_by_is_within_1_db_or_bounded(tmp_path):
             assert up[b] >= lw_true[b], (BANDS[b], up[b], lw_true[b])
     assert np.isfinite(got[1:7]).all()  # the hum's bands too: a steady tone is a level
     assert abs(doc["source_lwa_db"] - float(levels.lwa_db(lw_true))) <= 1.0
+
+
+def test_plan_maps_the_plane_at_the_height_fix_assumes_by_default():
+    # One assumed source height for the whole tool (common practice: ground sources 0-2 m):
+    # the plan's default plane is where `fix` puts a source whose height is not given.
+    from locate.cli.plan import plan
+    from locate.workflows.fixing import ASSUMED_SOURCE_Z_M
+    (opt,) = [p for p in plan.params if p.name == "source_z_m"]
+    assert opt.default == ASSUMED_SOURCE_Z_M

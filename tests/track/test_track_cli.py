@@ -93,11 +93,11 @@ def _write(folder, name, seed=1, extra=""):
     return site, path, span, dims
 
 
-def _track(tmp_path, name, *extra_args, site_extra=""):
+def _track(tmp_path, name, *extra_args, site_extra="", height=("--source-z", "0.5")):
     site, path, span, dims = _write(tmp_path, name, extra=site_extra)
     out = tmp_path / "track.json"
     args = ["track", site, "--from", span[0], "--to", span[1], "--json", out]
-    args += ["--dims", "3"] if dims == 3 else ["--source-z", "0.5"]
+    args += ["--dims", "3"] if dims == 3 else list(height)
     code, stdout, stderr = run(args + list(extra_args))
     assert "Traceback" not in stderr
     doc = json.loads(out.read_text()) if code == 0 else None
@@ -259,25 +259,6 @@ def test_segments_model_and_declared_survey(tmp_path):
     assert np.median(sd) > 0.005  # m: survey error, not the ~0.1 mm timing error
 
 
-@pytest.mark.slow
-def test_a_stated_source_height_uncertainty_enters_the_track(tmp_path):
-    # issue 18: --source-z Z+-S in a track reaches the budget.  The car's sound is 0.5 m up;
-    # the user states 0.9 m +- 0.3 m (0.4 m off, within the stated range 0.9 -+ sqrt(3) 0.3).
-    # The note must say the height is in while nothing else was declared
-    # (docs/uncertainty.md), its share is the whole added variance, and the points' ellipses
-    # hold the truth (>= 85 %, the acceptance of issue 16; on this pass 30 m out the height
-    # moves the points by millimetres only - the Monte Carlo check of the term's size is
-    # tests/track/test_models.py).
-    code, _, stderr, doc, path = _track(tmp_path, "beside", "--source-z", "0.9+-0.3")
-    assert code == 0, stderr
-    tr = doc["track"]
-    assert "source height" in tr["uncertainty_note"] and "timing only" in tr["uncertainty_note"]
-    assert not tr["uncertainty"]["declared"]
-    assert tr["uncertainty"]["components_share"] == {"source_height": pytest.approx(1.0)}
-    err, m2, _ = _scores(doc, path)
-    assert np.mean(m2 < CHI2_95_2D) >= 0.85, (err.max(), np.median(m2))
-
-
 @pytest.mark.parametrize("guess", ["1e6", "-5", "0", "nan"])
 def test_unphysical_speed_guess_is_refused_in_one_line(tmp_path, guess):
     x = np.random.default_rng(0).normal(size=(6, 16000))
@@ -339,3 +320,24 @@ options = {{ source_z = 0.5 }}
     assert doc["kind"] == "track" and doc["track"]["model"] == "straight"
     err, m2, _ = _scores(doc, path)
     assert err.max() < 1.0 and np.mean(m2 < CHI2_95_2D) >= 0.85
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["beside", "turn"])
+def test_a_vehicle_tracked_without_its_height_is_read_from_the_delays(tmp_path, name):
+    # Source height is rarely known in the field: without --source-z a 2-D track assumes
+    # 1.0 +- 0.6 m (as `fix`), reads the height from the delays (the vehicles here radiate from
+    # 0.5 m), and stays unflagged with >= 85 % of the points inside their 95 % ellipses.
+    # Measured (seed 1): beside 0.51 m, turn 0.50 m; max error 2 mm, 0.44 m; inside 100 %, 93 %.
+    code, stdout, stderr, doc, path = _track(tmp_path, name, height=())
+    assert code == 0, stderr
+    tr = doc["track"]
+    hgt = tr["source_height"]
+    assert hgt["prior_z_m"] == 1.0 and hgt["prior_sd_m"] == 0.6
+    assert abs(hgt["used_z_m"] - 0.5) <= 0.15, hgt
+    assert doc["source_z_m"] == pytest.approx(hgt["used_z_m"])
+    assert "Source height:" in stdout
+    err, m2, _ = _scores(doc, path)
+    assert err.max() <= 1.0
+    assert np.mean(m2 < CHI2_95_2D) >= 0.85
+    assert not tr["flagged"], tr["misfit_chi2_reduced"]
