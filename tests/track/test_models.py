@@ -170,8 +170,9 @@ def test_declared_mic_position_sd_matches_a_monte_carlo_of_the_path():
 
 @pytest.mark.slow
 def test_declared_source_height_sd_matches_a_monte_carlo_of_the_path():
-    # JCGM 101:2008 style check of the height term of locate.track.budget (three-point mean
-    # square over z0 -+ sqrt(3) sd): true heights drawn uniformly over that range (sd 0.4 m),
+    # JCGM 101:2008 style check of the height term of locate.track.budget (first order, the
+    # path's change per metre of height): true heights drawn uniformly over z0 -+ sqrt(3) sd
+    # (sd 0.4 m),
     # exact delays plus 5 us timing noise, the path fitted at the stated 0.8 m; the rms error
     # of three track points against the budget's rms (timing and height components added).
     rng = np.random.default_rng(12)
