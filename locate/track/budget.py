@@ -106,7 +106,8 @@ def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_sp
     """Each window's delay covariance from the declared nuisances, shape (W, P, P).
 
     ``sum_k sd_k^2 g_k g_k^T`` with ``g_k`` the change of the window's predicted delays per
-    unit nuisance k (the columns of :func:`nuisance_columns`, the same central differences
+    unit nuisance k (the columns of :func:`nuisance_columns` but the source height, the same
+    central differences
     as :func:`track_budget`).  The tracker weighs each window's delays with it besides the
     correlation noise, so a misfit that the declared errors explain is not taken for a bad
     model (chi-square scaling, window rejection, model adequacy) and then counted twice;
@@ -120,9 +121,12 @@ def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_sp
     kw = dict(reference_mic=reference_mic)
     out = None
     for _, kind, index, sd in nuisance_columns(sds, len(mics)):
-        if kind == "z" and par.dims != 2:
+        if kind == "z":
+            # not the source height: the tracker reads it from the delays (a profile of the
+            # fit's chi-square over heights, locate.track.tracker.height_profile), which a
+            # height term in the weights would flatten; its common shift is in the budget
             continue
-        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W, "z": _H_POS}[kind]
+        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
         d_pm = []
         for sign in (1.0, -1.0):
             m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h,

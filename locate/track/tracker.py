@@ -689,7 +689,7 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
             x, fs, t0_s, centres, window_s, warp, mics, pairs, c, wind_mps=wind_mps,
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
-        if track_budget.has_declared(nuisance_sds):
+        if not track_budget.timing_only(nuisance_sds):
             # the declared errors' share of each window's delay error (locate.track.budget)
             wpar = _par_of(warp, dims, source_z_m)
             cov_w = cov_w + track_budget.window_covariance_s2(
