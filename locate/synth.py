@@ -56,7 +56,7 @@ from locate.errors import ConvergenceError
 from locate.physics import air
 
 __all__ = [
-    "Waveform", "Emission", "StraightPath", "WaypointPath", "Simulation",
+    "Waveform", "recorded_waveform", "Emission", "StraightPath", "WaypointPath", "Simulation",
     "emitted_signal", "emission_time_s", "simulate_events", "simulate_moving",
 ]
 
@@ -106,6 +106,17 @@ class Waveform:
     harmonics: tuple[float, ...] = (1.0,)
     samples: np.ndarray | None = field(default=None, compare=False, repr=False)
     samples_rate_hz: float = 0.0
+
+
+def recorded_waveform(samples, samples_rate_hz, rms_pa_at_1m=1.0) -> Waveform:
+    """A ``'recording'`` :class:`Waveform` that emits a recorded (mono) sound once, its whole
+    length (no loop, no fade: ``taper_s`` 0)."""
+    x = np.asarray(samples, float).ravel()
+    if x.size < 2 or not np.all(np.isfinite(x)) or not float(samples_rate_hz) > 0:
+        raise ValueError("a recorded waveform needs finite mono samples and a sample rate")
+    return Waveform(kind="recording", duration_s=x.size / float(samples_rate_hz),
+                    rms_pa_at_1m=float(rms_pa_at_1m), taper_s=0.0, samples=x,
+                    samples_rate_hz=float(samples_rate_hz))
 
 
 def _recorded(wf, rate_hz, n, max_hz):

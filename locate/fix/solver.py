@@ -476,6 +476,67 @@ def _model_explanation(pos, tau, cov, used, sound_speed_mps, wind_mps, dims, sou
     return best
 
 
+def reflection_bias_bound_s(mic_positions_m, source_m, sound_speed_mps, source_z_sd_m=0.0,
+                            ground_z_m=0.0, peak_width_s=None):
+    """Per mic, the largest shift a ground reflection can give its arrival, seconds.
+
+    The reflection reaches mic u a lag ``D_u = (|m_u - s'| - |m_u - s|) / c`` after the direct
+    sound (``s'``: the source mirrored in the ground plane z = ``ground_z_m``).  When ``D_u``
+    is within the correlation peak's width the two arrivals merge into one peak, whose maximum
+    for a symmetric pulse lies between the direct arrival and the midpoint of the two (equal
+    amplitudes, a reflection coefficient of 1): the arrival moves by at most ``D_u / 2``
+    (common practice for two merged equal pulses).  A reflection beyond the peak's width is
+    a separate peak and moves nothing (``peak_width_s``; None: no limit).  ``D_u`` is taken
+    at its largest over the source height +- 3 sds (heights kept above the ground)."""
+    mics = np.asarray(mic_positions_m, float)
+    src = np.asarray(source_m, float)
+    g = float(ground_z_m)
+    out = np.zeros(len(mics))
+    for t in (-3.0, 0.0, 3.0):
+        z = max(src[2] + t * float(source_z_sd_m), g)
+        s = np.array([src[0], src[1], z])
+        img = np.array([src[0], src[1], 2.0 * g - z])
+        d = (np.linalg.norm(mics - img, axis=1) - np.linalg.norm(mics - s, axis=1))
+        d = d / float(sound_speed_mps)
+        if peak_width_s is not None:
+            d = np.where(d <= peak_width_s, d, 0.0)
+        out = np.maximum(out, 0.5 * d)
+    return out
+
+
+def _peak_half_width_s(delays):
+    """Half-width of the correlation's main peak, 1 / (2 f_rms), with f_rms the rms frequency
+    of the pairs' spectral weights (the fine peak of a band-pass correlation is a cosine at
+    about that frequency under the envelope); None when the weights are not known."""
+    f = getattr(delays, "spectral_freqs_hz", None)
+    w = getattr(delays, "spectral_weight", None)
+    if f is None or w is None:
+        return None
+    w = np.abs(np.asarray(w, float)).reshape(-1, np.size(f)).sum(axis=0)
+    if not np.any(w > 0):
+        return None
+    f_rms = float(np.sqrt(np.sum(w * np.asarray(f, float) ** 2) / np.sum(w)))
+    return 0.5 / f_rms if f_rms > 0 else None
+
+
+def _reflection_explanation(pos, tau, cov, used, sound_speed_mps, wind_mps, dims, source_z_m,
+                            x, k, bound_s):
+    """Best misfit of all ``used`` mics with mic ``k``'s arrival moved within +-``bound_s``
+    (a 13-point profile, each point refined from ``x``): chi2 or None."""
+    best = None
+    for b in np.linspace(-1.0, 1.0, 13) * bound_s:
+        t2 = np.array(tau, float)
+        t2[k] = t2[k] - b
+        try:
+            prob = _Problem(pos, t2, cov, used, sound_speed_mps, wind_mps, dims, source_z_m)
+            _, chi2, _ = _refine(prob, x, max_iter=20)
+        except (np.linalg.LinAlgError, ValueError):
+            continue
+        if np.isfinite(chi2) and (best is None or chi2 < best):
+            best = float(chi2)
+    return best
+
+
 def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mps=None,
                   dims=2, source_z_m=0.0, reject=True, mic_names=None,
                   extra_covariance_s2=None, reject_p_value=REJECT_P_VALUE, model_sds=None):
@@ -595,6 +656,30 @@ def locate_source(mic_positions_m, delays: DelaySet, sound_speed_mps, *, wind_mp
                         f"uncertainty); likely cause: the {what}"
                         + (" - measure the air temperature on site" if what == "sound speed"
                            else " - give the source height if it is known"))
+        if (restored and len(trial_rejected) == 1 and model_sds
+                and model_sds.get("ground_z_m", None) is not None and dof > 1):
+            # one bad mic, or the ground reflection's bias at that mic?  A reflection inside
+            # the correlation peak moves a mic's arrival by up to half its lag; when moving the
+            # rejected mic's arrival within that bound restores consistency or fits as well as
+            # dropping the mic (the rule of the model errors above), the mic is kept (its
+            # misfit then widens the ellipse below) and the cause is named.
+            k = names.index(trial_rejected[0])
+            width = _peak_half_width_s(delays)
+            bound = reflection_bias_bound_s(
+                pos, prob.point(x), sound_speed_mps, model_sds.get("source_z_m", 0.0) or 0.0,
+                model_sds["ground_z_m"], width)[k]
+            if bound > 0:
+                chi2_b = _reflection_explanation(pos, tau, cov, used, sound_speed_mps, wind_mps,
+                                                 dims, source_z_m, x, k, bound)
+                p_mics = _log_p_value(state[3], state[5]) if state[5] > 0 else 0.0
+                p_b = None if chi2_b is None else _log_p_value(chi2_b, dof - 1)
+                if p_b is not None and (p_b >= math.log(reject_p_value) or p_b >= p_mics):
+                    restored = False
+                    warnings.append(
+                        f"mic {names[k]}'s timing disagrees with the others, but within what "
+                        f"a ground reflection arriving inside the correlation peak can do at "
+                        f"that mic (up to {1e6 * bound:.0f} us): kept; likely cause: the "
+                        "ground reflection")
         if restored:
             prob, sols, x, chi2, ok, dof = state
             used, rejected = trial_used, trial_rejected

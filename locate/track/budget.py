@@ -31,7 +31,7 @@ from locate.track.pathfit import whitening
 from locate.track.retarded import predict_delays
 
 __all__ = ["COMPONENTS", "has_declared", "timing_only", "nuisance_columns", "track_budget",
-           "TIMING_ONLY_NOTE", "TIMING_AND_HEIGHT_NOTE", "GROUND_NOTE"]
+           "window_covariance_s2", "TIMING_ONLY_NOTE", "TIMING_AND_HEIGHT_NOTE", "GROUND_NOTE"]
 
 COMPONENTS = ("mic_positions", "clocks", "sound_speed", "wind", "source_height")
 TIMING_ONLY_NOTE = ("timing only: no survey, clock, temperature or wind uncertainty is declared "
@@ -102,6 +102,49 @@ def _perturbed(kind, index, h, mics, c, wind, t_h, ref):
     elif kind == "wind":
         w[index] += h
     return m, cc, w, th, shift  # "z": the path's height moves (track_budget)
+
+
+def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_speed_mps,
+                         wind_mps, sds, reference_mic=0):
+    """Each window's delay covariance from the declared nuisances, shape (W, P, P).
+
+    ``sum_k sd_k^2 g_k g_k^T`` with ``g_k`` the change of the window's predicted delays per
+    unit nuisance k (the columns of :func:`nuisance_columns` but the source height, the same
+    central differences
+    as :func:`track_budget`).  The tracker weighs each window's delays with it besides the
+    correlation noise, so a misfit that the declared errors explain is not taken for a bad
+    model (chi-square scaling, window rejection, model adequacy) and then counted twice;
+    it enters each window as if independent, while the shift it causes is common to all
+    windows - that part is :func:`track_budget`'s.
+    """
+    mics = np.asarray(mic_positions_m, float)
+    pairs = np.asarray(pairs, int)
+    c = float(sound_speed_mps)
+    t_h = np.asarray(t_heard_s, float)
+    kw = dict(reference_mic=reference_mic)
+    out = None
+    for _, kind, index, sd in nuisance_columns(sds, len(mics)):
+        if kind == "z":
+            # not the source height: the tracker reads it from the delays (a profile of the
+            # fit's chi-square over heights, locate.track.tracker.height_profile), which a
+            # height term in the weights would flatten; its common shift is in the budget
+            continue
+        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
+        d_pm = []
+        for sign in (1.0, -1.0):
+            m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h,
+                                             reference_mic)
+            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
+                   if kind == "z" else par)
+            d = predict_delays(p_k, theta, th, m, pairs, cc, w, jacobian=False, **kw)[0]
+            d_pm.append(d + (shift[pairs[:, 1]] - shift[pairs[:, 0]]))
+        g = (d_pm[0] - d_pm[1]) / (2 * h) * sd
+        g = np.where(np.isfinite(g), g, 0.0)
+        add = np.einsum("wp,wq->wpq", g, g)
+        out = add if out is None else out + add
+    if out is None:
+        out = np.zeros((len(t_h), len(pairs), len(pairs)))
+    return out
 
 
 def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed_mps,

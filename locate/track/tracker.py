@@ -793,6 +793,12 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
             x, fs, t0_s, centres, window_s, warp, mics, pairs, c, wind_mps=wind_mps,
             band_hz=band_hz, max_lag_s=lag, reference_mic=reference_mic,
             tolerant=tolerant, progress=tick)
+        if not track_budget.timing_only(nuisance_sds):
+            # the declared errors' share of each window's delay error (locate.track.budget)
+            wpar = _par_of(warp, dims, source_z_m)
+            cov_w = cov_w + track_budget.window_covariance_s2(
+                wpar, wpar.theta(warp), centres, mics, pairs, c, wind_mps, nuisance_sds,
+                reference_mic=reference_mic)
         if ok_w.sum(axis=1).max(initial=0) < dims + 1:
             short = len(centres) < 2 * MIN_TRACK_WINDOWS
             raise NothingFoundError(

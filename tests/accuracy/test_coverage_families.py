@@ -4,9 +4,10 @@ Invented scenes on the exact simulator (locate.synth) with a ground reflection (
 0.3-1), the source height unknown (0-2 m, fixed with the default 1 m +- 0.6 m; 0-6 m solved
 in 3-D with a mast mic), mic positions written N(0, 5 cm) off and the air temperature
 N(0, 2 degC) off, both declared (see the benchmark's docstring).  The 95 % ellipse is
-chi-square with 2 dof (5.991, scipy.stats.chi2).  Fixed seeds, 30 trials per family: a
-family must cover 80-100 % (a true 95 % over 30 trials: binomial sd 4 %; issue 18 asks
-90-98 % over 200 trials, which the benchmark measures), the pooled one 88-99 %.
+chi-square with 2 dof (5.991, scipy.stats.chi2).  Fixed seeds, 30 trials per family (not
+tracks: about 20 s a trial, measured by the benchmark only): a family must cover 80-100 %
+(a true 95 % over 30 trials: binomial sd 4 %; issue 18 asks 90-98 % over 200 trials, which
+the benchmark measures), the pooled one 88-99 %.
 """
 
 import sys
@@ -22,7 +23,7 @@ N_TRIALS = 30
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("family", ct.FAMILIES)
+@pytest.mark.parametrize("family", [f for f in ct.FAMILIES if f != "tracks"])
 def test_coverage_of_the_95_percent_ellipse_per_family(family):
     share, n, _ = ct.coverage(family, N_TRIALS, seed=1818)
     assert 0.8 <= share <= 1.0, (family, share)
@@ -94,8 +95,10 @@ def _loud_bang_fixes(case, n_trials, seed):
 @pytest.mark.parametrize("case", ["speed", "height"])
 def test_a_declared_model_error_rejects_no_healthy_mic(case):
     # issue 18: a healthy mic is never rejected for an error the budget declares, and the
-    # fix moves less than its own ellipse.  Measured (seed 44, 15 trials): speed 1 rejection
-    # (a pair whose two correlation peaks tie, not the sound speed), height 0.
+    # fix moves less than its own ellipse.  Measured (seed 44, 15 trials): speed 0, height 0
+    # rejections (before the ground-reflection bound of locate.fix.solver: speed 1 - a mic
+    # 11 m from the source whose arrival the ground reflection moved by ~120 us, 4-8 times
+    # its modelled sd, inside the 310 us a merged reflection can do there).
     rejected, moved = _loud_bang_fixes(case, 8, seed=44)
-    assert rejected <= 1
+    assert rejected == 0
     assert moved == 0

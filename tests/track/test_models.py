@@ -166,3 +166,40 @@ def test_declared_mic_position_sd_matches_a_monte_carlo_of_the_path():
     # 50 draws: the sd of an sd estimate is ~10 %; allow 30 %
     np.testing.assert_allclose(scatter, pred, rtol=0.3)
     assert bud["components"] == {"mic_positions": pytest.approx(1.0)}
+
+
+@pytest.mark.slow
+def test_declared_source_height_sd_matches_a_monte_carlo_of_the_path():
+    # JCGM 101:2008 style check of the height term of locate.track.budget (first order, the
+    # path's change per metre of height): true heights drawn uniformly over z0 -+ sqrt(3) sd
+    # (sd 0.4 m),
+    # exact delays plus 5 us timing noise, the path fitted at the stated 0.8 m; the rms error
+    # of three track points against the budget's rms (timing and height components added).
+    rng = np.random.default_rng(12)
+    z0, z_sd = 0.8, 0.4
+    t_c = np.arange(0.5, 12.0, 0.5)
+    sds = nuisance_sds(6, source_height_sd_m=z_sd)
+    idx = [0, len(t_c) // 2, -1]
+    errs = []
+    for _ in range(40):
+        z = z0 + rng.uniform(-1.0, 1.0) * np.sqrt(3.0) * z_sd
+        path = straight_path([-100.0, -30.0, z], [18.0, 5.0, 0.0], 0.0, (0.0, 12.0))
+        par = Parametrisation(path.knot_times_s, 2, z, 1)
+        d = predict_delays(par, par.theta(path), t_c, MICS, PAIRS, C, jacobian=False)[0]
+        noise = rng.normal(size=(len(t_c), 6)) * 5e-6
+        d = d + noise[:, PAIRS[:, 1]] - noise[:, PAIRS[:, 0]]
+        cov = np.broadcast_to(25e-12 * DIFF @ DIFF.T, (len(t_c), len(PAIRS), len(PAIRS)))
+        fit = fit_path(t_c, d, cov, MICS, PAIRS, C, source_z_m=z0, reject=False)
+        errs.append((fit.path.position_m(fit.t_emit_s) - path.position_m(fit.t_emit_s))[idx])
+    rms = np.sqrt(np.mean(np.array(errs) ** 2, axis=0))[:, :2]  # (3 points, 2 axes)
+    path = straight_path([-100.0, -30.0, z0], [18.0, 5.0, 0.0], 0.0, (0.0, 12.0))
+    d, cov = _delays(path, t_c, rng, sd=5e-6)
+    fit = fit_path(t_c, d, cov, MICS, PAIRS, C, source_z_m=z0, reject=False)
+    bud = track_budget(fit, cov, np.ones(d.shape, bool), MICS, PAIRS, C, None, sds)
+    timing = describe_fit(fit, MICS, C).covariance_m2
+    pred = np.sqrt(np.diagonal(timing + bud["point_cov"], axis1=1, axis2=2)[idx, :2])
+    # the height term dominates (far above the 5 us timing part); 40 draws: allow 35 %
+    assert np.all(np.trace(bud["point_cov"][idx, :2, :2], axis1=1, axis2=2)
+                  > 3 * np.trace(timing[idx, :2, :2], axis1=1, axis2=2))
+    np.testing.assert_allclose(rms, pred, rtol=0.35)
+    assert bud["components"] == {"source_height": pytest.approx(1.0)}
