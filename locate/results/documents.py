@@ -18,7 +18,8 @@ from pathlib import Path
 
 import numpy as np
 
-from locate.common import atomic_target, format_length, write_atomic
+from locate import common
+from locate.common import format_length, write_atomic
 from locate.errors import OptionError, ResultFileError, TdoaError
 from locate.geometry.ellipses import ellipse
 
@@ -149,7 +150,8 @@ def write_json(path, obj, *, indent=1) -> Path:
         return write_atomic(path, json.dumps(jsonable(obj), indent=None, allow_nan=False)
                             + "\n")
     encoder = json.JSONEncoder(indent=indent, allow_nan=False)
-    with atomic_target(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
+    # through the module, so every output of a command goes through the one atomic_target
+    with common.atomic_target(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         for chunk in encoder.iterencode(_ready_for_stream(obj)):
             fh.write(chunk)
         fh.write("\n")
