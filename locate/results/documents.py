@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from locate import common
+import locate.common as common
 from locate.common import format_length, write_atomic
 from locate.errors import OptionError, ResultFileError, TdoaError
 from locate.geometry.ellipses import ellipse
