@@ -101,7 +101,29 @@ def _perturbed(kind, index, h, mics, c, wind, t_h, ref):
         cc = c + h
     elif kind == "wind":
         w[index] += h
-    return m, cc, w, th, shift  # "z": the path's height moves (track_budget)
+    return m, cc, w, th, shift  # "z": the path's height moves (_at_height)
+
+
+_STEP = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W, "z": _H_POS}
+
+
+def _at_height(par, kind, dz):
+    """``par`` with its height moved by ``dz`` for a source-height column, else ``par``."""
+    return dataclasses.replace(par, source_z_m=par.source_z_m + dz) if kind == "z" else par
+
+
+def _delay_gradient(par, theta, t_heard_s, mics, pairs, c, wind_mps, kind, index, ref):
+    """Change of the predicted delays per unit of one nuisance column, shape (W, P)
+    (central differences; a recorder's clock shifts its mics' delays by the pair incidence)."""
+    h = _STEP[kind]
+    d = []
+    for sign in (1.0, -1.0):
+        m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_heard_s,
+                                         ref)
+        pred = predict_delays(_at_height(par, kind, sign * h), theta, th, m, pairs, cc, w,
+                              jacobian=False, reference_mic=ref)[0]
+        d.append(pred + (shift[pairs[:, 1]] - shift[pairs[:, 0]]))
+    return (d[0] - d[1]) / (2 * h)
 
 
 def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_speed_mps,
@@ -119,9 +141,7 @@ def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_sp
     """
     mics = np.asarray(mic_positions_m, float)
     pairs = np.asarray(pairs, int)
-    c = float(sound_speed_mps)
     t_h = np.asarray(t_heard_s, float)
-    kw = dict(reference_mic=reference_mic)
     out = None
     for _, kind, index, sd in nuisance_columns(sds, len(mics)):
         if kind == "z":
@@ -129,16 +149,8 @@ def window_covariance_s2(par, theta, t_heard_s, mic_positions_m, pairs, sound_sp
             # fit's chi-square over heights, locate.track.tracker.height_profile), which a
             # height term in the weights would flatten; its common shift is in the budget
             continue
-        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W}[kind]
-        d_pm = []
-        for sign in (1.0, -1.0):
-            m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h,
-                                             reference_mic)
-            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
-                   if kind == "z" else par)
-            d = predict_delays(p_k, theta, th, m, pairs, cc, w, jacobian=False, **kw)[0]
-            d_pm.append(d + (shift[pairs[:, 1]] - shift[pairs[:, 0]]))
-        g = (d_pm[0] - d_pm[1]) / (2 * h) * sd
+        g = sd * _delay_gradient(par, theta, t_h, mics, pairs, float(sound_speed_mps),
+                                 wind_mps, kind, index, reference_mic)
         g = np.where(np.isfinite(g), g, 0.0)
         add = np.einsum("wp,wq->wpq", g, g)
         out = add if out is None else out + add
@@ -186,22 +198,14 @@ def track_budget(fit, covariance_s2, usable, mic_positions_m, pairs, sound_speed
     for comp, kind, index, sd in nuisance_columns(sds, len(mics)):
         if kind == "z" and par.dims != 2:
             continue  # a 3-D track solves its height
-        h = {"mic": _H_POS, "clock": _H_CLK, "c": _H_C, "wind": _H_W, "z": _H_POS}[kind]
-        d_pred, d_pt = [], []
-        for sign in (1.0, -1.0):
-            m, cc, w, th, shift = _perturbed(kind, index, sign * h, mics, c, wind_mps, t_h, ref)
-            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
-                   if kind == "z" else par)
-            d = predict_delays(p_k, theta, th[sel], m, pairs, cc, w, jacobian=False, **kw)[0]
-            d = d + (shift[pairs[:, 1]] - shift[pairs[:, 0]])
-            d_pred.append(d)
-        g = (d_pred[0] - d_pred[1]) / (2 * h)  # (W_sel, P) per unit nuisance
+        h = _STEP[kind]
+        g = _delay_gradient(par, theta, t_h[sel], mics, pairs, c, wind_mps, kind, index, ref)
         dtheta = -solve @ np.einsum("wqp,wp->wq", m_w, g).reshape(-1)  # (n,)
+        d_pt = []
         for sign in (1.0, -1.0):
             # the point at its stated emission time (as locate.track.tracker.describe_fit)
-            p_k = (dataclasses.replace(par, source_z_m=par.source_z_m + sign * h)
-                   if kind == "z" else par)
-            d_pt.append(p_k.path(theta + sign * h * dtheta).position_m(fit.t_emit_s))
+            d_pt.append(_at_height(par, kind, sign * h).path(theta + sign * h * dtheta)
+                        .position_m(fit.t_emit_s))
         dp = (d_pt[0] - d_pt[1]) / (2 * h)  # (W, 3)
         dp = np.where(np.isfinite(dp), dp, 0.0)
         theta_cov += sd**2 * np.outer(dtheta, dtheta)

@@ -350,6 +350,8 @@ HEIGHT_PROFILE_SDS = tuple(np.linspace(-2.5, 2.5, 11))
 HEIGHT_FLOOR_SD_M = 0.05
 """Least sd of a height read from the delays: a vehicle or a person radiates from a body tens
 of centimetres across, so its acoustic height is not sharper than this (common practice)."""
+HEIGHT_MOVE_SDS = 0.25
+"""Make the track again at the delays' height when it is this many (final) sds away."""
 
 
 def height_profile(result: TrackResult, mic_positions_m, sound_speed_mps, wind_mps, z0_m,
@@ -562,10 +564,6 @@ def _in_band(band, signals, sample_rate_hz, mic_positions_m, sound_speed_mps, so
         return None, exc.message.split(";")[0]
     res.band_hz = (float(band[0]), float(band[1]))
     return res, ""
-
-
-HEIGHT_MOVE_SDS = 0.25
-"""Make the track again at the delays' height when it is this many (final) sds away."""
 
 
 def _with_height_sd(sds, sd_m, n_mics):
@@ -906,12 +904,11 @@ def _track_recording(signals, sample_rate_hz, mic_positions_m, sound_speed_mps, 
         result = describe_fit(fit, mics, c, wind_mps, **describe_kw)
         result.covariance_m2 = timing_cov + bud["point_cov"]
         shares = {k: round(v, 4) for k, v in bud["components"].items()}
-        note = ("includes the declared " + ", ".join(
-            f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
-            for k, v in shares.items()) + " uncertainties (first-order propagation)")
         only = track_budget.timing_only(nuisance_sds)
-        if only:
-            note = track_budget.TIMING_AND_HEIGHT_NOTE
+        note = (track_budget.TIMING_AND_HEIGHT_NOTE if only else "includes the declared "
+                + ", ".join(f"{k.replace('_', ' ')} ({100 * v:.0f} % of the added variance)"
+                            for k, v in shares.items())
+                + " uncertainties (first-order propagation)")
         result.uncertainty = {"declared": not only, "timing_only": only,
                               "components_share": shares, "note": note}
     else:
