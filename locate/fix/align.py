@@ -22,8 +22,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["aligned_recordings", "arrival_shifts_s", "shifted_recordings", "sound_at_both_edges",
-           "MIN_SHIFT_SAMPLES", "EDGE_POWER_RATIO"]
+__all__ = ["aligned_recordings", "arrival_shifts_s", "shifted_recordings", "shifted_span_inside",
+           "sound_at_both_edges", "MIN_SHIFT_SAMPLES", "EDGE_POWER_RATIO"]
 
 MIN_SHIFT_SAMPLES = 2.0  # below this largest shift (samples) the first pass is kept
 EDGE_POWER_RATIO = 0.5  # the sound goes on across the span's ends: edges this loud vs the span
@@ -56,12 +56,18 @@ def arrival_shifts_s(delays, n_mics) -> np.ndarray | None:
     return shifts
 
 
+def shifted_span_inside(recordings, shifts_s, start_s, stop_s):
+    """Does the span ``start_s..stop_s``, read ``shifts_s[i]`` later for mic ``i``, stay in the
+    time that every mic covers?  ``start_s``/``stop_s`` may be arrays (one span each)."""
+    tol = 0.5 / recordings.sample_rate_hz
+    return ((np.asarray(start_s) + float(np.min(shifts_s)) >= recordings.start_s - tol)
+            & (np.asarray(stop_s) + float(np.max(shifts_s)) <= recordings.stop_s + tol))
+
+
 def shifted_recordings(recordings, shifts_s, start_s, stop_s):
     """``recordings`` read ``shifts_s[i]`` later for mic ``i``, or None if a shifted span
     would leave the time that every mic covers."""
-    if (start_s + float(np.min(shifts_s)) < recordings.start_s - 0.5 / recordings.sample_rate_hz
-            or stop_s + float(np.max(shifts_s))
-            > recordings.stop_s + 0.5 / recordings.sample_rate_hz):
+    if not shifted_span_inside(recordings, shifts_s, start_s, stop_s):
         return None
     return recordings.with_clocks(recordings.offsets_s - shifts_s, recordings.drift_ppm)
 

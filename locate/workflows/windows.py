@@ -31,7 +31,7 @@ from dataclasses import replace
 import numpy as np
 
 from locate.errors import NothingFoundError, TdoaError
-from locate.fix.align import arrival_shifts_s
+from locate.fix.align import arrival_shifts_s, shifted_span_inside
 from locate.fix.batched import locate_batch
 from locate.fix.solver import REJECT_P_VALUE, Fix, locate_source
 from locate.io.audio import check_signals
@@ -186,8 +186,7 @@ def window_fixes(recordings, site, cond, start_s, stop_s, window_s, hop_s=None, 
     starts = np.arange(int(np.floor((stop_s - start_s) * fs + 1e-6) - n) // hop + 1) * hop
     entries, notes = [], []
     t_a = start_s + starts / fs
-    inside = ((t_a + float(np.min(shifts)) >= recordings.start_s - 0.5 / fs)
-              & (t_a + n / fs + float(np.max(shifts)) <= recordings.stop_s + 0.5 / fs))
+    inside = shifted_span_inside(recordings, shifts, t_a, t_a + n / fs)
     edge_kw = dict(band_hz=band_hz, dims=dims, source_z_m=source_z_m, reject=reject,
                    source_z_sd_m=source_z_sd_m)
 
